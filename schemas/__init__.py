@@ -1,0 +1,13 @@
+"""Pydantic v2 models of the HTTP contract (requests and responses). No numpy types on the wire."""
+
+from schemas.assign import AssignResponse, AssignResult
+from schemas.common import ErrorItem, ErrorResponse
+from schemas.drift import DriftReport, DriftReportList
+from schemas.fit import FitReport, FitRequest, KRange, LabelUpdate, LiveUpdate, Segment
+from schemas.segmentation import SegmentationDetail, SegmentationList, SegmentationSummary, VersionSummary
+
+__all__ = [
+    "AssignResponse", "AssignResult", "DriftReport", "DriftReportList", "ErrorItem", "ErrorResponse",
+    "FitReport", "FitRequest", "KRange", "LabelUpdate", "LiveUpdate", "Segment", "SegmentationDetail",
+    "SegmentationList", "SegmentationSummary", "VersionSummary",
+]

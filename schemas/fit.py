@@ -1,0 +1,113 @@
+from __future__ import annotations
+
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+Record = dict[str, Any]
+
+
+class KRange(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    min: int = Field(2, ge=1)
+    max: int = Field(10, ge=1)
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "KRange":
+        if self.min > self.max:
+            raise ValueError(f"min ({self.min}) must not exceed max ({self.max})")
+        return self
+
+
+class FitRequest(BaseModel):
+    """Fit a new version. Only ``records`` is required."""
+
+    model_config = ConfigDict(extra="forbid")
+    records: list[Record] = Field(default_factory=list, description="one JSON object per customer")
+    features: list[str] | None = Field(None, min_length=1, description="null: every numeric column except id_column")
+    id_column: str | None = None
+    scaling: Literal["standard", "robust", "minmax", "none"] = "standard"
+    components: int | float | None = Field(
+        0.9, description="int: count; float in (0,1): variance share to keep; null: no PCA")
+    method: Literal["kmeans", "agglomerative"] = "kmeans"
+    linkage: Literal["complete", "average", "single", "ward"] = "complete"
+    k: int | KRange = Field(default_factory=KRange, description="an int, or a range to search")
+    selection: Literal["elbow", "silhouette"] = "elbow"
+    n_init: int = Field(10, ge=1, le=100)
+    seed: int = Field(0, ge=0, le=2**32 - 1)
+    outlier_quantile: float = Field(0.99, ge=0.5, lt=1.0)
+    make_live: bool | None = None
+
+
+class CurvePoint(BaseModel):
+    k: int
+    distortion: float
+    inertia: float
+    silhouette: float | None
+
+
+class Selection(BaseModel):
+    method: Literal["fixed", "elbow", "silhouette"]
+    chosen: int
+    kneedle_k: int | None = Field(None, description="Kneedle knee of the distortion curve, for comparison")
+    curve: list[CurvePoint]
+
+
+class FeatureProfile(BaseModel):
+    mean: float | None
+    median: float | None
+    std: float | None
+    z: float | None = Field(description="segment mean minus overall mean, in overall standard deviations")
+
+
+class Segment(BaseModel):
+    id: int
+    label: str | None
+    size: int
+    share: float
+    distance_threshold: float
+    centroid: dict[str, float]
+    profile: dict[str, FeatureProfile]
+
+
+class Quality(BaseModel):
+    inertia: float
+    distortion: float
+    silhouette: float | None
+    centroid_agreement: float
+
+
+class FitReport(BaseModel):
+    name: str
+    version: int
+    created_at: str
+    live: bool
+    n_records: int
+    features: list[str]
+    id_column: str | None
+    config: dict[str, Any]
+    components: int | None
+    explained_variance_ratio: list[float]
+    k: int
+    selection: Selection
+    distortion: float
+    inertia: float
+    segments: list[Segment]
+    quality: Quality
+    residual_threshold: float
+    residual_limit_jm: float
+    training_outlier_rate: float
+    imputation_medians: dict[str, float]
+    data_sha256: str
+    bundle_sha256: str
+    library_versions: dict[str, str]
+
+
+class LiveUpdate(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    version: int = Field(ge=1)
+
+
+class LabelUpdate(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    label: str | None = Field(max_length=200)

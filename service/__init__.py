@@ -1,0 +1,3 @@
+"""segscore: fit, version and serve customer segmentations."""
+
+__version__ = "0.1.0"

@@ -1,0 +1,110 @@
+"""Assign records to the nearest segment of a version, with outlier flags."""
+
+from __future__ import annotations
+
+from typing import Any, Literal
+
+import anyio
+import numpy as np
+import orjson
+from fastapi import APIRouter, Query, Request
+from fastapi.responses import Response
+
+from schemas import AssignResponse
+from schemas.assign import AssignRequest
+from service.api.payload import check_name, read_batch, too_many_missing
+from service.core.assign import Assignment, assign, impute
+from service.core.frame import MAX_LISTED_PROBLEMS, Batch
+from service.deps import AssignScope, SettingsDep, StoreDep
+from service.errors import InvalidRecords
+from service.store import LoadedVersion
+
+router = APIRouter(prefix="/segmentations", tags=["assign"])
+
+RECORDS_BODY = {
+    "requestBody": {
+        "required": True,
+        "content": {
+            "application/json": {"schema": AssignRequest.model_json_schema(ref_template="#/components/schemas/{model}")},
+            "text/csv": {"schema": {"type": "string", "description": "header row, then one row per record"}},
+        },
+    }
+}
+_REASONS = ([], ["distance"], ["residual"], ["distance", "residual"])
+_NO_IMPUTED: list[str] = []
+
+
+def split_good_rows(batch: Batch, skip_bad: bool) -> tuple[np.ndarray, list[dict[str, Any]]]:
+    """Row indices to compute, and the error items to return (raises unless ``skip_bad``)."""
+    if not batch.problems:
+        return np.arange(batch.values.shape[0]), []
+    if not skip_bad:
+        raise InvalidRecords(batch.problems[:MAX_LISTED_PROBLEMS])
+    good = np.ones(batch.values.shape[0], dtype=bool)
+    good[batch.bad_rows] = False
+    return np.flatnonzero(good), [p.as_dict() for p in batch.problems]
+
+
+def run_assignment(loaded: LoadedVersion, values: np.ndarray) -> tuple[Assignment, np.ndarray | None]:
+    filled, missing = impute(loaded.compiled, values)
+    return assign(loaded.compiled, filled), missing
+
+
+def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any], rows: np.ndarray,
+                  result: Assignment, missing: np.ndarray | None) -> list[dict[str, Any]]:
+    """Column arrays -> one JSON object per record (plain Python types only)."""
+    features = loaded.compiled.features
+    segment_labels = [labels.get(c) for c in range(loaded.compiled.k)]
+    n = rows.size
+    if n == len(ids):
+        ids_out = ids
+    else:
+        ids_out = [ids[i] for i in rows.tolist()]
+    segments = result.segment.tolist()
+    reasons = (result.far.astype(np.int8) + 2 * result.off_plane.astype(np.int8)).tolist()
+    runner_up = result.runner_up.tolist() if result.runner_up is not None else [None] * n
+    margin = result.margin.tolist() if result.margin is not None else [None] * n
+    if missing is None:
+        imputed = [_NO_IMPUTED] * n
+    else:
+        imputed = [[features[j] for j in np.flatnonzero(row)] if row.any() else _NO_IMPUTED for row in missing]
+    return [
+        {"id": i, "segment": s, "label": segment_labels[s], "distance": d, "outlier": r > 0,
+         "outlier_reasons": _REASONS[r], "runner_up": u, "margin": m, "residual": e, "imputed": imp}
+        for i, s, d, r, u, m, e, imp in zip(ids_out, segments, result.distance.tolist(), reasons, runner_up,
+                                            margin, result.residual.tolist(), imputed)
+    ]
+
+
+@router.post("/{name}/assign", response_model=AssignResponse, openapi_extra=RECORDS_BODY,
+             dependencies=[AssignScope], summary="Assign records to segments")
+async def assign_records(
+    name: str,
+    request: Request,
+    settings: SettingsDep,
+    store: StoreDep,
+    version: int | None = Query(None, ge=1, description="default: the live version"),
+    on_error: Literal["fail", "skip"] = Query("fail", description="skip: answer for the good records"),
+) -> Response:
+    check_name(name)
+    number = store.resolve_version(name, version)
+    loaded = store.load(name, number)
+    features = list(loaded.compiled.features)
+    batch = await read_batch(request, features, loaded.bundle.config.id_column,
+                             max_body=settings.max_body_bytes, max_rows=settings.max_assign_rows)
+    too_many_missing(batch, features)
+    rows, errors = split_good_rows(batch, on_error == "skip")
+    values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]
+    labels = store.labels(name, number)
+
+    def compute() -> list[dict[str, Any]]:
+        result, missing = run_assignment(loaded, values)
+        return build_results(loaded, labels, batch.ids, rows, result, missing)
+
+    if rows.size <= settings.inline_assign_rows:
+        results = compute()
+    else:
+        results = await anyio.to_thread.run_sync(compute)
+    request.app.state.metrics.assigned.inc(rows.size)
+    body = {"name": name, "version": number, "results": results, "errors": errors}
+    return Response(orjson.dumps(body), media_type="application/json")

@@ -1,0 +1,97 @@
+"""Request bodies -> Python objects or a Batch: size limits, JSON (orjson) or CSV, names in paths."""
+
+from __future__ import annotations
+
+import json
+import re
+from typing import Any
+
+import numpy as np
+import orjson
+from fastapi import Request
+
+from service.core.frame import Batch, batch_from_frame, batch_from_json, read_csv
+from service.errors import BadBody, InvalidInput, PayloadTooLarge, RecordProblem
+
+NAME_PATTERN = re.compile(r"^[a-z0-9][a-z0-9_-]{0,62}$")
+CSV_TYPES = ("text/csv", "application/csv")
+
+
+def check_name(name: str) -> str:
+    if not NAME_PATTERN.fullmatch(name):
+        raise InvalidInput(
+            f"segmentation name must match {NAME_PATTERN.pattern} (lower-case letters, digits, _ and -, "
+            f"at most 63 characters); got {name!r}", field="name")
+    return name
+
+
+def is_csv(request: Request) -> bool:
+    return request.headers.get("content-type", "").split(";")[0].strip().lower() in CSV_TYPES
+
+
+async def read_body(request: Request, limit: int) -> bytes:
+    declared = request.headers.get("content-length")
+    if declared is not None and declared.isdigit() and int(declared) > limit:
+        raise PayloadTooLarge(f"the body is {declared} bytes; the limit is {limit}")
+    chunks, size = [], 0
+    async for chunk in request.stream():
+        size += len(chunk)
+        if size > limit:
+            raise PayloadTooLarge(f"the body exceeds the limit of {limit} bytes")
+        chunks.append(chunk)
+    body = b"".join(chunks)
+    if not body.strip():
+        raise InvalidInput("the request body is empty", field="body")
+    return body
+
+
+def parse_json(body: bytes) -> Any:
+    """orjson first (fast); the standard parser as fallback so NaN/Infinity/1e999 reach the checks as values."""
+    try:
+        return orjson.loads(body)
+    except orjson.JSONDecodeError:
+        pass
+    try:
+        return json.loads(body)
+    except (ValueError, UnicodeDecodeError) as exc:
+        raise BadBody(f"the body is not valid JSON: {exc}") from None
+
+
+def records_of(document: Any) -> list[Any]:
+    if not isinstance(document, dict) or "records" not in document:
+        raise InvalidInput('expected a JSON object with a "records" list', field="records")
+    records = document["records"]
+    if not isinstance(records, list):
+        raise InvalidInput('"records" must be a list of objects', field="records")
+    return records
+
+
+async def read_batch(request: Request, features: list[str], id_column: str | None, *, max_body: int,
+                     max_rows: int) -> Batch:
+    """An assign/drift body (JSON or CSV) -> Batch of the version's features."""
+    body = await read_body(request, max_body)
+    if is_csv(request):
+        frame = read_csv(body)
+        n_rows = len(frame)
+        _check_rows(n_rows, max_rows)
+        return batch_from_frame(frame, features, id_column)
+    records = records_of(parse_json(body))
+    _check_rows(len(records), max_rows)
+    return batch_from_json(records, features, id_column)
+
+
+def _check_rows(n_rows: int, max_rows: int) -> None:
+    if n_rows == 0:
+        raise InvalidInput("the batch has no records", field="records")
+    if n_rows > max_rows:
+        raise PayloadTooLarge(f"the batch has {n_rows} records; the limit is {max_rows}")
+
+
+def too_many_missing(batch: Batch, features: list[str]) -> None:
+    """Mark records missing more than half of the features as problems (in place)."""
+    missing = np.isnan(batch.values).sum(axis=1)
+    half = len(features) / 2
+    for i in np.flatnonzero(missing > half):
+        batch.problems.append(RecordProblem(
+            int(i), "", f"{int(missing[i])} of {len(features)} features are missing; at most half may be"))
+    batch.problems.sort(key=lambda p: (p.record if p.record is not None else -1))

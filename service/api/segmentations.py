@@ -1,0 +1,186 @@
+"""Fit, list, read, promote and label segmentations."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import anyio
+from fastapi import APIRouter, Request
+from fastapi.responses import JSONResponse
+
+from schemas import FitReport, FitRequest, LabelUpdate, LiveUpdate, Segment, SegmentationDetail, SegmentationList
+from service.api.payload import check_name, is_csv, parse_json, read_body, records_of
+from service.api.validation import validate_model
+from service.core.bundle import FitConfig
+from service.core.fit import fit_bundle
+from service.core.frame import (
+    batch_from_frame,
+    batch_from_json,
+    numeric_csv_columns,
+    numeric_json_columns,
+    json_columns,
+    read_csv,
+)
+from service.deps import FitScope, ReadScope, SettingsDep, StoreDep
+from service.errors import InvalidInput, PayloadTooLarge, RecordProblem
+
+router = APIRouter(prefix="/segmentations", tags=["segmentations"])
+
+FIT_BODY = {
+    "requestBody": {
+        "required": True,
+        "content": {
+            "application/json": {"schema": FitRequest.model_json_schema(ref_template="#/components/schemas/{model}")},
+            "text/csv": {"schema": {"type": "string", "description": "header row, then one row per record; "
+                                    "parameters in the query string (features=a,b&k=2-10&components=none)"}},
+        },
+    }
+}
+
+
+def _query_parameters(request: Request) -> dict[str, Any]:
+    """The fit parameters of a CSV request, from the query string, in the JSON request's shape."""
+    query = request.query_params
+    params: dict[str, Any] = {}
+    for key in ("id_column", "scaling", "method", "linkage", "selection"):
+        if key in query:
+            params[key] = query[key]
+    if "features" in query:
+        params["features"] = [f.strip() for f in query["features"].split(",") if f.strip()]
+    for key in ("n_init", "seed"):
+        if key in query:
+            params[key] = query[key]
+    if "outlier_quantile" in query:
+        params["outlier_quantile"] = query["outlier_quantile"]
+    if "make_live" in query:
+        params["make_live"] = query["make_live"]
+    if "components" in query:
+        raw = query["components"].strip().lower()
+        if raw in ("none", "null", ""):
+            params["components"] = None
+        else:
+            try:
+                params["components"] = int(raw) if raw.lstrip("-").isdigit() else float(raw)
+            except ValueError:
+                raise InvalidInput(f"expected an int, a float in (0, 1) or 'none'; got {raw!r}",
+                                   field="components") from None
+    if "k" in query:
+        raw = query["k"].strip()
+        low, sep, high = raw.partition("-")
+        try:
+            params["k"] = {"min": int(low), "max": int(high)} if sep else int(raw)
+        except ValueError:
+            raise InvalidInput(f"expected an int or a range like 2-10; got {raw!r}", field="k") from None
+    return params
+
+
+def _fit_config(request_model: FitRequest, features: list[str], settings) -> FitConfig:
+    k = request_model.k
+    fixed = isinstance(k, int)
+    return FitConfig(
+        features=features,
+        id_column=request_model.id_column,
+        scaling=request_model.scaling,
+        components=request_model.components,
+        method=request_model.method,
+        linkage=request_model.linkage,
+        k_min=k if fixed else k.min,
+        k_max=k if fixed else k.max,
+        k_fixed=fixed,
+        selection=request_model.selection,
+        n_init=request_model.n_init,
+        seed=request_model.seed,
+        outlier_quantile=request_model.outlier_quantile,
+        silhouette_sample=settings.silhouette_sample,
+        reference_sample=settings.reference_sample,
+    )
+
+
+def _resolve_features(requested: list[str] | None, available: list[str], numeric: list[str],
+                      id_column: str | None) -> list[str]:
+    if id_column is not None and id_column not in available:
+        raise InvalidInput(f"id_column {id_column!r} is not a column of the records", field="id_column")
+    if requested is None:
+        if not numeric:
+            raise InvalidInput("no numeric columns found; name the features explicitly", field="features")
+        return numeric
+    problems = []
+    unknown = [f for f in requested if f not in available]
+    if unknown:
+        shown = ", ".join(sorted(available)[:30])
+        problems.append(RecordProblem(None, "features", f"unknown column(s) {unknown}; available: {shown}"))
+    if id_column is not None and id_column in requested:
+        problems.append(RecordProblem(None, "features", f"id_column {id_column!r} cannot also be a feature"))
+    if len(set(requested)) != len(requested):
+        problems.append(RecordProblem(None, "features", "features are listed more than once"))
+    if problems:
+        raise InvalidInput(problems)
+    return list(requested)
+
+
+@router.post("/{name}/fit", status_code=201, response_model=FitReport, openapi_extra=FIT_BODY,
+             dependencies=[FitScope], summary="Fit a new version from records")
+async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep) -> JSONResponse:
+    check_name(name)
+    body = await read_body(request, settings.max_body_bytes)
+    if is_csv(request):
+        params = validate_model(FitRequest, _query_parameters(request))
+        frame = read_csv(body)
+        n_rows = len(frame)
+        available = list(frame.columns)
+        numeric = numeric_csv_columns(frame, params.id_column)
+    else:
+        document = parse_json(body)
+        records = records_of(document)
+        params = validate_model(FitRequest, {k: v for k, v in document.items() if k != "records"})
+        n_rows = len(records)
+        available = json_columns(records)
+        numeric = numeric_json_columns(records, params.id_column)
+    if n_rows > settings.max_fit_rows:
+        raise PayloadTooLarge(f"{n_rows} records; the fit limit is {settings.max_fit_rows}")
+    if n_rows == 0:
+        raise InvalidInput("no records to fit", field="records")
+    features = _resolve_features(params.features, available, numeric, params.id_column)
+    if is_csv(request):
+        batch = batch_from_frame(frame, features, params.id_column)
+    else:
+        batch = batch_from_json(records, features, params.id_column)
+    batch.raise_if_problems()
+    config = _fit_config(params, features, settings)
+
+    def fit_and_save() -> dict[str, Any]:
+        bundle = fit_bundle(batch.values, config, max_agglomerative_rows=settings.max_agglomerative_rows)
+        return store.save_version(name, bundle, make_live=params.make_live)
+
+    report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
+    request.app.state.metrics.fits.inc()
+    return JSONResponse(report, status_code=201)
+
+
+@router.get("", response_model=SegmentationList, dependencies=[ReadScope], summary="List segmentations")
+def list_segmentations(store: StoreDep) -> dict[str, Any]:
+    return {"segmentations": store.list_segmentations()}
+
+
+@router.get("/{name}", response_model=SegmentationDetail, dependencies=[ReadScope],
+            summary="A segmentation with a summary row per version")
+def get_segmentation(name: str, store: StoreDep) -> dict[str, Any]:
+    return store.get_segmentation(check_name(name))
+
+
+@router.get("/{name}/versions/{version}", response_model=FitReport, dependencies=[ReadScope],
+            summary="The fit report of one version")
+def get_version(name: str, version: int, store: StoreDep) -> dict[str, Any]:
+    return store.version_report(check_name(name), version)
+
+
+@router.put("/{name}/live", response_model=SegmentationDetail, dependencies=[FitScope],
+            summary="Make a version live (promote or roll back)")
+def set_live(name: str, update: LiveUpdate, store: StoreDep) -> dict[str, Any]:
+    return store.set_live(check_name(name), update.version)
+
+
+@router.patch("/{name}/versions/{version}/segments/{segment}", response_model=Segment, dependencies=[FitScope],
+              summary="Label a segment (metadata only)")
+def label_segment(name: str, version: int, segment: int, update: LabelUpdate, store: StoreDep) -> dict[str, Any]:
+    return store.set_label(check_name(name), version, segment, update.label)

@@ -1,0 +1,1 @@
+"""Numerical core: numpy, pandas and scikit-learn only (no web framework imports)."""

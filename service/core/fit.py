@@ -1,0 +1,372 @@
+"""Fit a bundle: median imputation -> scaling -> PCA -> clustering, then describe the segments.
+
+``fit_bundle`` checks its inputs once and raises ``InvalidInput`` naming the field; the helpers
+after it trust their arguments.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import platform
+from dataclasses import replace
+from typing import Any
+
+import joblib
+import numpy as np
+import pandas as pd
+import scipy
+import sklearn
+from kneed import KneeLocator
+from scipy.stats import norm
+from sklearn.cluster import AgglomerativeClustering, KMeans
+from sklearn.decomposition import PCA
+from sklearn.impute import SimpleImputer
+from sklearn.metrics import silhouette_score
+from sklearn.preprocessing import MinMaxScaler, RobustScaler, StandardScaler
+
+from service.core.bundle import Bundle, FitConfig, ReferenceProfile
+from service.errors import InvalidInput, RecordProblem
+
+SCALERS = {"standard": StandardScaler, "robust": RobustScaler, "minmax": MinMaxScaler, "none": None}
+METHODS = ("kmeans", "agglomerative")
+LINKAGES = ("complete", "average", "single", "ward")
+SELECTIONS = ("elbow", "silhouette")
+DECILES = np.linspace(0.1, 0.9, 9)
+
+
+# --------------------------------------------------------------------------- checks at the door
+def check_fit_inputs(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int) -> None:
+    """Raise InvalidInput for anything that would make the fit meaningless or fail inside sklearn."""
+    n_records, n_features = values.shape
+    problems: list[RecordProblem] = []
+    if config.scaling not in SCALERS:
+        problems.append(RecordProblem(None, "scaling", f"must be one of {list(SCALERS)}, got {config.scaling!r}"))
+    if config.method not in METHODS:
+        problems.append(RecordProblem(None, "method", f"must be one of {list(METHODS)}, got {config.method!r}"))
+    if config.linkage not in LINKAGES:
+        problems.append(RecordProblem(None, "linkage", f"must be one of {list(LINKAGES)}, got {config.linkage!r}"))
+    if config.selection not in SELECTIONS:
+        problems.append(RecordProblem(None, "selection", f"must be one of {list(SELECTIONS)}, got {config.selection!r}"))
+    if n_features == 0:
+        problems.append(RecordProblem(None, "features", "no numeric feature columns to fit on"))
+    if n_records < 2:
+        problems.append(RecordProblem(None, "records", f"need at least 2 records, got {n_records}"))
+    if problems:
+        raise InvalidInput(problems)
+
+    observed = ~np.isnan(values)
+    for j, name in enumerate(config.features):
+        column = values[observed[:, j], j]
+        if column.size == 0:
+            problems.append(RecordProblem(None, name, "feature has no values (all missing)"))
+        elif np.ptp(column) == 0:
+            problems.append(RecordProblem(None, name, f"feature is constant ({column[0]:g}); it has zero variance"))
+
+    if not 1 <= config.k_min <= config.k_max:
+        problems.append(RecordProblem(None, "k", f"need 1 <= min <= max, got min={config.k_min}, max={config.k_max}"))
+    elif config.k_max > n_records - 1 and not (config.k_fixed and config.k_min == 1):
+        problems.append(RecordProblem(
+            None, "k", f"k must lie in [1, n_records - 1] = [1, {n_records - 1}]; got max {config.k_max}"))
+    if config.selection == "silhouette" and not config.k_fixed and config.k_max < 2:
+        problems.append(RecordProblem(None, "k", "silhouette selection needs a range reaching k >= 2"))
+
+    components = config.components
+    if components is not None:
+        if isinstance(components, bool):
+            problems.append(RecordProblem(None, "components", "must be an int, a float in (0, 1), or null"))
+        elif isinstance(components, int):
+            limit = min(n_features, n_records)
+            if not 1 <= components <= limit:
+                problems.append(RecordProblem(
+                    None, "components",
+                    f"must lie in [1, min(n_features, n_records)] = [1, {limit}]; got {components}"))
+        elif not 0.0 < components < 1.0:
+            problems.append(RecordProblem(None, "components", f"a variance share must lie in (0, 1); got {components}"))
+
+    if not 0.5 <= config.outlier_quantile < 1.0:
+        problems.append(RecordProblem(None, "outlier_quantile", f"must lie in [0.5, 1); got {config.outlier_quantile}"))
+    if config.n_init < 1:
+        problems.append(RecordProblem(None, "n_init", f"must be >= 1; got {config.n_init}"))
+    if config.method == "agglomerative" and n_records > max_agglomerative_rows:
+        problems.append(RecordProblem(
+            None, "method",
+            f"agglomerative clustering needs O(n^2) memory; at most {max_agglomerative_rows} records "
+            f"(got {n_records}); use kmeans for larger data"))
+    if problems:
+        raise InvalidInput(problems)
+
+
+# --------------------------------------------------------------------------- k selection
+def elbow_k(ks: list[int], distortions: list[float]) -> int:
+    """Point of the (k, distortion) curve nearest the origin after scaling both axes to [0, 1]."""
+    k = np.asarray(ks, dtype=float)
+    d = np.asarray(distortions, dtype=float)
+    if k.size == 1:
+        return int(k[0])
+    k_unit = (k - k.min()) / (k.max() - k.min())
+    spread = d.max() - d.min()
+    d_unit = (d - d.min()) / spread if spread > 0 else np.zeros_like(d)
+    return int(k[np.argmin(np.hypot(k_unit, d_unit))])
+
+
+def kneedle_k(ks: list[int], distortions: list[float]) -> int | None:
+    """Kneedle knee of a decreasing convex curve (Satopaa et al., 2011); None when it finds none."""
+    if len(ks) < 3:
+        return None
+    knee = KneeLocator(ks, distortions, curve="convex", direction="decreasing").knee
+    return None if knee is None else int(knee)
+
+
+def _cluster(space: np.ndarray, k: int, config: FitConfig) -> tuple[Any, np.ndarray, np.ndarray]:
+    """Fit one clusterer; return it, its labels and the centroids (member means for agglomerative)."""
+    if config.method == "kmeans":
+        model = KMeans(n_clusters=k, n_init=config.n_init, random_state=config.seed).fit(space)
+        return model, model.labels_, model.cluster_centers_
+    if k == 1:
+        labels = np.zeros(space.shape[0], dtype=np.intp)
+        model = None
+    else:
+        model = AgglomerativeClustering(n_clusters=k, linkage=config.linkage).fit(space)
+        labels = model.labels_
+    centroids = np.vstack([space[labels == c].mean(axis=0) for c in range(k)])
+    return model, labels, centroids
+
+
+def _silhouette(space: np.ndarray, labels: np.ndarray, config: FitConfig) -> float | None:
+    n_labels = np.unique(labels).size
+    if not 2 <= n_labels <= space.shape[0] - 1:
+        return None
+    sample = config.silhouette_sample if space.shape[0] > config.silhouette_sample else None
+    return float(silhouette_score(space, labels, sample_size=sample, random_state=config.seed))
+
+
+def _squared_distances(space: np.ndarray, centroids: np.ndarray) -> np.ndarray:
+    """(n, k) squared Euclidean distances, computed directly (exact, no expansion)."""
+    return ((space[:, None, :] - centroids[None, :, :]) ** 2).sum(axis=2)
+
+
+def _own_sq_distances(space: np.ndarray, centroids: np.ndarray, labels: np.ndarray) -> np.ndarray:
+    diff = space - centroids[labels]
+    return np.einsum("ij,ij->i", diff, diff)
+
+
+def _nearest(space: np.ndarray, centroids: np.ndarray, chunk: int = 8192) -> np.ndarray:
+    out = np.empty(space.shape[0], dtype=np.intp)
+    for start in range(0, space.shape[0], chunk):
+        out[start:start + chunk] = _squared_distances(space[start:start + chunk], centroids).argmin(axis=1)
+    return out
+
+
+# --------------------------------------------------------------------------- residual limit
+def jackson_mudholkar_limit(discarded_eigenvalues: np.ndarray, quantile: float) -> float:
+    """Upper ``quantile`` limit of the PCA squared residual Q (SPE).
+
+    Jackson, J.E. & Mudholkar, G.S. (1979), Technometrics 21(3): with theta_i the sum of the
+    discarded eigenvalues to the power i and h0 = 1 - 2 theta1 theta3 / (3 theta2^2),
+    Q = theta1 [c sqrt(2 theta2 h0^2) / theta1 + 1 + theta2 h0 (h0 - 1) / theta1^2]^(1/h0),
+    c the standard normal quantile. Returned as sqrt(Q): the same units as the residual distance.
+    """
+    lam = np.asarray(discarded_eigenvalues, dtype=float)
+    lam = lam[lam > 0]
+    if lam.size == 0:
+        return 0.0
+    t1, t2, t3 = (float(np.sum(lam ** i)) for i in (1, 2, 3))
+    h0 = 1.0 - 2.0 * t1 * t3 / (3.0 * t2 ** 2)
+    c = float(norm.ppf(quantile))
+    base = c * np.sqrt(2.0 * t2 * h0 ** 2) / t1 + 1.0 + t2 * h0 * (h0 - 1.0) / t1 ** 2
+    return float(np.sqrt(t1 * base ** (1.0 / h0)))
+
+
+# --------------------------------------------------------------------------- the fit
+def data_sha256(values: np.ndarray) -> str:
+    """SHA-256 of the training matrix: float64, C order, NaN for missing, shape prefixed."""
+    digest = hashlib.sha256(f"{values.shape[0]}x{values.shape[1]}:".encode())
+    digest.update(np.ascontiguousarray(values, dtype=np.float64).tobytes())
+    return digest.hexdigest()
+
+
+def library_versions() -> dict[str, str]:
+    return {
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "scipy": scipy.__version__,
+        "scikit-learn": sklearn.__version__,
+        "pandas": pd.__version__,
+        "joblib": joblib.__version__,
+    }
+
+
+def _quantile_threshold(distances: np.ndarray, q: float) -> float:
+    return float(np.quantile(distances, q)) if distances.size else 0.0
+
+
+def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int = 20_000) -> Bundle:
+    """Fit the whole bundle on ``values`` (n_records, n_features), NaN = missing."""
+    check_fit_inputs(values, config, max_agglomerative_rows=max_agglomerative_rows)
+    n_records, n_features = values.shape
+    q = config.outlier_quantile
+
+    imputer = SimpleImputer(strategy="median").fit(values)
+    imputed = imputer.transform(values)
+    scaler_cls = SCALERS[config.scaling]
+    scaler = scaler_cls().fit(imputed) if scaler_cls is not None else None
+    scaled = imputed if scaler is None else scaler.transform(imputed)
+
+    pca = None
+    space = scaled
+    if config.components is not None:
+        pca = PCA(n_components=config.components, svd_solver="full", random_state=config.seed).fit(scaled)
+        space = pca.transform(scaled)
+
+    # Search k; keep the clusterer of the chosen k.
+    ks = list(range(config.k_min, config.k_max + 1))
+    curve: list[dict[str, Any]] = []
+    fitted: dict[int, tuple[Any, np.ndarray, np.ndarray]] = {}
+    for k in ks:
+        model, labels, centroids = _cluster(space, k, config)
+        inertia = float(_own_sq_distances(space, centroids, labels).sum())
+        curve.append({"k": k, "distortion": inertia / n_records, "inertia": inertia,
+                      "silhouette": _silhouette(space, labels, config)})
+        fitted[k] = (model, labels, centroids)
+    distortions = [row["distortion"] for row in curve]
+    if config.k_fixed:
+        chosen, method = config.k_min, "fixed"
+    elif config.selection == "elbow":
+        chosen, method = elbow_k(ks, distortions), "elbow"
+    else:
+        scored = [(row["silhouette"], -row["k"]) for row in curve if row["silhouette"] is not None]
+        chosen, method = -max(scored)[1], "silhouette"
+    clusterer, labels, centroids = fitted[chosen]
+    del fitted
+
+    # Distances and thresholds follow the assign rule: nearest centroid in the clustering space.
+    nearest = _nearest(space, centroids)
+    distances = np.sqrt(_own_sq_distances(space, centroids, nearest))
+    thresholds = np.array([
+        _quantile_threshold(distances[nearest == c], q) if np.any(nearest == c) else _quantile_threshold(distances, q)
+        for c in range(chosen)
+    ])
+
+    residuals = np.zeros(n_records)
+    residual_threshold = 0.0
+    residual_limit = 0.0
+    if pca is not None and pca.n_components_ < n_features:
+        centred = scaled - pca.mean_
+        residuals = np.linalg.norm(centred - (centred @ pca.components_.T) @ pca.components_, axis=1)
+        residual_threshold = _quantile_threshold(residuals, q)
+        # All eigenvalues of the scaled data's covariance (ddof=1, as PCA.explained_variance_).
+        eigenvalues = np.linalg.svd(centred, compute_uv=False) ** 2 / (n_records - 1)
+        residual_limit = jackson_mudholkar_limit(eigenvalues[pca.n_components_:], q)
+
+    flagged = (distances > thresholds[nearest]) | (residuals > residual_threshold)
+    rng = np.random.default_rng(config.seed)
+    sample_rows = np.sort(rng.choice(n_records, size=min(n_records, config.reference_sample), replace=False))
+    reference = _reference_profile(values, nearest, chosen, flagged, residuals, sample_rows)
+
+    silhouette = next(row["silhouette"] for row in curve if row["k"] == chosen)
+    inertia = float(_own_sq_distances(space, centroids, labels).sum())
+    report: dict[str, Any] = {
+        "n_records": n_records,
+        "features": list(config.features),
+        "id_column": config.id_column,
+        "config": config.as_request(),
+        "components": None if pca is None else int(pca.n_components_),
+        "explained_variance_ratio": [] if pca is None else [float(v) for v in pca.explained_variance_ratio_],
+        "k": chosen,
+        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, distortions),
+                      "curve": curve},
+        "distortion": inertia / n_records,
+        "inertia": inertia,
+        "segments": _describe_segments(values, labels, centroids, thresholds, chosen, imputer, scaler, pca, config),
+        "quality": {
+            "inertia": inertia,
+            "distortion": inertia / n_records,
+            "silhouette": silhouette,
+            "centroid_agreement": float(np.mean(nearest == labels)),
+        },
+        "residual_threshold": residual_threshold,
+        "residual_limit_jm": residual_limit,
+        "training_outlier_rate": float(flagged.mean()),
+        "imputation_medians": dict(zip(config.features, (float(v) for v in imputer.statistics_))),
+        "data_sha256": data_sha256(values),
+        "library_versions": library_versions(),
+    }
+    return Bundle(
+        features=list(config.features),
+        config=config,
+        imputer=imputer,
+        scaler=scaler,
+        pca=pca,
+        clusterer=clusterer,
+        centroids=np.ascontiguousarray(centroids, dtype=np.float64),
+        distance_thresholds=thresholds,
+        residual_threshold=residual_threshold,
+        residual_limit_jm=residual_limit,
+        reference=reference,
+        report=report,
+    )
+
+
+def _reference_profile(values: np.ndarray, nearest: np.ndarray, k: int, flagged: np.ndarray,
+                       residuals: np.ndarray, sample_rows: np.ndarray) -> ReferenceProfile:
+    edges, counts = [], []
+    for j in range(values.shape[1]):
+        column = values[:, j]
+        column = column[~np.isnan(column)]
+        inner = np.unique(np.quantile(column, DECILES))
+        edges.append(inner)
+        counts.append(np.bincount(np.searchsorted(inner, column, side="left"), minlength=inner.size + 1))
+    return ReferenceProfile(
+        n_records=values.shape[0],
+        bin_edges=edges,
+        bin_counts=counts,
+        means=np.nanmean(values, axis=0),
+        stds=np.nanstd(values, axis=0),
+        missing_share=np.isnan(values).mean(axis=0),
+        sample=values[sample_rows].copy(),
+        segment_shares=np.bincount(nearest, minlength=k) / values.shape[0],
+        outlier_rate=float(flagged.mean()),
+        residual_sample=residuals[sample_rows].copy(),
+        residual_median=float(np.median(residuals)),
+    )
+
+
+def _describe_segments(values, labels, centroids, thresholds, k, imputer, scaler, pca, config) -> list[dict[str, Any]]:
+    """Per segment: size, share, threshold, centroid and profile in ORIGINAL units."""
+    overall_mean = np.nanmean(values, axis=0)
+    overall_std = np.nanstd(values, axis=0)
+    # Centroids back to original units: inverse PCA (a back-projection when components were
+    # dropped), then inverse scaling.
+    back = centroids if pca is None else pca.inverse_transform(centroids)
+    back = back if scaler is None else scaler.inverse_transform(back)
+    frame = pd.DataFrame(values, columns=config.features)
+    grouped = frame.groupby(labels)
+    means, medians = grouped.mean(), grouped.median()
+    stds = grouped.std(ddof=0)
+    sizes = np.bincount(labels, minlength=k)
+    segments = []
+    for c in range(k):
+        profile = {}
+        for j, name in enumerate(config.features):
+            mean = means.at[c, name] if c in means.index else np.nan
+            profile[name] = {
+                "mean": _finite(mean),
+                "median": _finite(medians.at[c, name] if c in medians.index else np.nan),
+                "std": _finite(stds.at[c, name] if c in stds.index else np.nan),
+                "z": _finite((mean - overall_mean[j]) / overall_std[j]),
+            }
+        segments.append({
+            "id": c,
+            "label": None,
+            "size": int(sizes[c]),
+            "share": float(sizes[c] / values.shape[0]),
+            "distance_threshold": float(thresholds[c]),
+            "centroid": {name: float(back[c, j]) for j, name in enumerate(config.features)},
+            "profile": profile,
+        })
+    return segments
+
+
+def _finite(value: float) -> float | None:
+    value = float(value)
+    return value if np.isfinite(value) else None

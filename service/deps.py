@@ -1,0 +1,53 @@
+"""Named dependencies: a route signature reads as a list of what it needs."""
+
+from __future__ import annotations
+
+import hmac
+from typing import Annotated, Callable
+
+from fastapi import Depends, Request
+
+from service.errors import MissingKey, ScopeDenied
+from service.settings import Settings
+from service.store import FilesystemStore
+
+
+def get_app_settings(request: Request) -> Settings:
+    return request.app.state.settings
+
+
+def get_store(request: Request) -> FilesystemStore:
+    return request.app.state.store
+
+
+SettingsDep = Annotated[Settings, Depends(get_app_settings)]
+StoreDep = Annotated[FilesystemStore, Depends(get_store)]
+
+
+def require_scope(scope: str) -> Callable[[Request], None]:
+    """Dependency factory: the request's bearer key must carry ``scope`` (no-op when auth is off)."""
+
+    def check(request: Request) -> None:
+        settings: Settings = request.app.state.settings
+        if not settings.auth_enabled:
+            return
+        header = request.headers.get("authorization", "")
+        scheme, _, key = header.partition(" ")
+        if scheme.lower() != "bearer" or not key:
+            raise MissingKey()
+        scopes = None
+        for known, granted in settings.api_keys.items():
+            if hmac.compare_digest(known.encode(), key.strip().encode()):
+                scopes = granted
+        if scopes is None:
+            raise MissingKey()
+        if scope not in scopes:
+            raise ScopeDenied(scope)
+
+    return Depends(check)
+
+
+FitScope = require_scope("fit")
+ReadScope = require_scope("read")
+AssignScope = require_scope("assign")
+DriftScope = require_scope("drift")

@@ -1,0 +1,141 @@
+"""Errors the service raises on purpose. ``service.app`` alone maps each class to an HTTP status.
+
+    ServiceError
+    ├── BadBody                  body is not valid JSON or CSV
+    ├── AuthError
+    │   ├── MissingKey           no or unknown API key
+    │   └── ScopeDenied          key lacks the scope
+    ├── NotFound
+    │   ├── SegmentationNotFound
+    │   ├── VersionNotFound
+    │   └── SegmentNotFound
+    ├── Conflict
+    │   └── NoLiveVersion
+    ├── PayloadTooLarge
+    ├── InvalidInput             well-formed body, unusable content
+    │   ├── InvalidRecords       per-record problems (index and field)
+    │   └── FeatureMismatch      columns the version needs are absent
+    ├── BundleCorrupt            stored artifact fails its SHA-256 check
+    └── StoreUnavailable
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+
+class ServiceError(Exception):
+    """Base of every deliberate error; ``detail`` is what the client sees."""
+
+    def __init__(self, detail: Any = None) -> None:
+        self.detail = detail if detail is not None else (self.__doc__ or "").strip()
+        super().__init__(self.detail)
+
+    def __repr__(self) -> str:
+        return f"{type(self).__name__}(detail={self.detail!r})"
+
+
+class BadBody(ServiceError):
+    """The request body is not valid JSON or CSV."""
+
+
+class AuthError(ServiceError):
+    """Authentication failed."""
+
+
+class MissingKey(AuthError):
+    """No API key, or an unknown one; send 'Authorization: Bearer <key>'."""
+
+
+class ScopeDenied(AuthError):
+    """The API key lacks the scope this endpoint needs."""
+
+    def __init__(self, scope: str) -> None:
+        super().__init__(f"this API key lacks the '{scope}' scope")
+
+
+class NotFound(ServiceError):
+    """Not found."""
+
+
+class SegmentationNotFound(NotFound):
+    """No such segmentation."""
+
+    def __init__(self, name: str) -> None:
+        super().__init__(f"segmentation '{name}' does not exist")
+
+
+class VersionNotFound(NotFound):
+    """No such version."""
+
+    def __init__(self, name: str, version: int) -> None:
+        super().__init__(f"segmentation '{name}' has no version {version}")
+
+
+class SegmentNotFound(NotFound):
+    """No such segment."""
+
+    def __init__(self, name: str, version: int, segment: int, k: int) -> None:
+        super().__init__(f"'{name}' version {version} has segments 0..{k - 1}; got {segment}")
+
+
+class Conflict(ServiceError):
+    """The request conflicts with the current state."""
+
+
+class NoLiveVersion(Conflict):
+    """No live version; name one with ?version= or make one live."""
+
+    def __init__(self, name: str) -> None:
+        super().__init__(
+            f"segmentation '{name}' has no live version; pass ?version=N or PUT .../live first"
+        )
+
+
+class PayloadTooLarge(ServiceError):
+    """The request is larger than the configured limit."""
+
+
+@dataclass(frozen=True)
+class RecordProblem:
+    """One bad value: ``record`` is the 0-based row index (None for a request-level field)."""
+
+    record: int | None
+    field: str
+    message: str
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"record": self.record, "field": self.field, "message": self.message}
+
+
+class InvalidInput(ServiceError):
+    """Valid JSON/CSV whose content cannot be used. ``problems`` says where."""
+
+    def __init__(self, problems: list[RecordProblem] | str, field: str | None = None) -> None:
+        if isinstance(problems, str):
+            problems = [RecordProblem(None, field or "body", problems)]
+        self.problems = problems
+        super().__init__([p.as_dict() for p in problems])
+
+
+class InvalidRecords(InvalidInput):
+    """Some records have missing, non-numeric or non-finite values."""
+
+
+class FeatureMismatch(InvalidInput):
+    """The batch lacks columns that the version was fitted on."""
+
+
+class BundleCorrupt(ServiceError):
+    """A stored artifact does not match its recorded SHA-256; that version cannot be loaded."""
+
+    def __init__(self, name: str, version: int) -> None:
+        super().__init__(
+            f"the stored artifact of '{name}' version {version} fails its SHA-256 check; "
+            "the version cannot be used (other versions are unaffected)"
+        )
+
+
+class StoreUnavailable(ServiceError):
+    """The model store cannot be read or written."""

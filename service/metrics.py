@@ -1,0 +1,56 @@
+"""Prometheus metrics, one registry per app (so test apps do not share counters)."""
+
+from __future__ import annotations
+
+import time
+
+from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
+from prometheus_client.exposition import CONTENT_TYPE_LATEST
+
+__all__ = ["CONTENT_TYPE_LATEST", "Metrics", "MetricsMiddleware"]
+
+
+class Metrics:
+    def __init__(self) -> None:
+        self.registry = CollectorRegistry()
+        self.requests = Counter("segscore_http_requests", "HTTP requests by route and status",
+                                ["method", "route", "status"], registry=self.registry)
+        self.latency = Histogram("segscore_http_request_seconds", "HTTP request time by route",
+                                 ["route"], registry=self.registry,
+                                 buckets=(0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5,
+                                          5, 10, 30, 60))
+        self.assigned = Counter("segscore_records_assigned", "Records assigned to a segment", registry=self.registry)
+        self.fits = Counter("segscore_fits", "Versions fitted", registry=self.registry)
+        self.drift_reports = Counter("segscore_drift_reports", "Drift reports computed", ["status"],
+                                     registry=self.registry)
+
+    def exposition(self) -> bytes:
+        return generate_latest(self.registry)
+
+
+class MetricsMiddleware:
+    """Pure ASGI middleware: counts and times every HTTP request by its route template."""
+
+    def __init__(self, app, metrics: Metrics) -> None:
+        self.app = app
+        self.metrics = metrics
+
+    async def __call__(self, scope, receive, send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        started = time.perf_counter()
+        status = [500]
+
+        async def send_wrapper(message) -> None:
+            if message["type"] == "http.response.start":
+                status[0] = message["status"]
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_wrapper)
+        finally:
+            route = scope.get("route")
+            template = getattr(route, "path", "unmatched")
+            self.metrics.requests.labels(scope["method"], template, str(status[0])).inc()
+            self.metrics.latency.labels(template).observe(time.perf_counter() - started)

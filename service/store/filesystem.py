@@ -1,0 +1,325 @@
+"""Local store: one directory per segmentation, joblib artifacts, JSON reports, a SQLite index.
+
+Layout under the store root::
+
+    index.sqlite3                      segmentations, versions, labels, live pointer, drift reports
+    segmentations/<name>/v000003.joblib    the immutable fitted bundle
+    segmentations/<name>/v000003.json      its fit report (identity fields included)
+
+A version becomes visible only when its index row commits, and that happens last: artifact and
+report are written to temporary files, fsynced and renamed into place first. A crash before the
+commit leaves at most an unlisted file that the next fit of that number overwrites. Version numbers
+come from a per-segmentation counter bumped inside the same ``BEGIN IMMEDIATE`` transaction, so
+concurrent fits (threads or processes) never share a number.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import sqlite3
+import tempfile
+import threading
+import uuid
+from collections import OrderedDict
+from contextlib import contextmanager
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Iterator
+
+import joblib
+
+from service.core.assign import compile_bundle
+from service.core.bundle import Bundle
+from service.errors import (
+    BundleCorrupt,
+    NoLiveVersion,
+    SegmentationNotFound,
+    SegmentNotFound,
+    StoreUnavailable,
+    VersionNotFound,
+)
+from service.store.base import LoadedVersion
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS segmentations (
+    name TEXT PRIMARY KEY,
+    live_version INTEGER,
+    last_version INTEGER NOT NULL DEFAULT 0,
+    created_at TEXT NOT NULL,
+    updated_at TEXT NOT NULL
+);
+CREATE TABLE IF NOT EXISTS versions (
+    name TEXT NOT NULL REFERENCES segmentations(name),
+    version INTEGER NOT NULL,
+    created_at TEXT NOT NULL,
+    k INTEGER NOT NULL,
+    n_records INTEGER NOT NULL,
+    data_sha256 TEXT NOT NULL,
+    bundle_sha256 TEXT NOT NULL,
+    artifact TEXT NOT NULL,
+    report TEXT NOT NULL,
+    PRIMARY KEY (name, version)
+);
+CREATE TABLE IF NOT EXISTS labels (
+    name TEXT NOT NULL,
+    version INTEGER NOT NULL,
+    segment INTEGER NOT NULL,
+    label TEXT,
+    PRIMARY KEY (name, version, segment)
+);
+CREATE TABLE IF NOT EXISTS drift_reports (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT,
+    id TEXT NOT NULL UNIQUE,
+    name TEXT NOT NULL,
+    version INTEGER NOT NULL,
+    created_at TEXT NOT NULL,
+    report TEXT NOT NULL
+);
+CREATE INDEX IF NOT EXISTS drift_by_name ON drift_reports (name, version, seq);
+"""
+
+
+def utc_now() -> str:
+    return datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def _fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _write_atomic(target: Path, write) -> str:
+    """Write via ``write(file)`` to a temp file beside ``target``, fsync, rename; return its SHA-256."""
+    fd, tmp = tempfile.mkstemp(dir=target.parent, prefix=".tmp-", suffix=target.suffix)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            write(handle)
+            handle.flush()
+            os.fsync(handle.fileno())
+        digest = _sha256_file(Path(tmp))
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    _fsync_dir(target.parent)
+    return digest
+
+
+def _sha256_file(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+class FilesystemStore:
+    """The default store. Safe for threads of one process and for several processes on one disk."""
+
+    def __init__(self, root: Path | str, *, cache_size: int = 16) -> None:
+        self.root = Path(root)
+        self._local = threading.local()
+        self._cache: OrderedDict[tuple[str, int], LoadedVersion] = OrderedDict()
+        self._cache_lock = threading.Lock()
+        self._cache_size = cache_size
+        try:
+            (self.root / "segmentations").mkdir(parents=True, exist_ok=True)
+            self._db().executescript(SCHEMA)  # idempotent; executescript manages its own transaction
+        except (OSError, sqlite3.Error) as exc:
+            raise StoreUnavailable(f"cannot open the store at {self.root}: {exc}") from None
+
+    # ----------------------------------------------------------------- connections
+    def _db(self) -> sqlite3.Connection:
+        db = getattr(self._local, "db", None)
+        if db is None:
+            db = sqlite3.connect(self.root / "index.sqlite3", timeout=60, isolation_level=None)
+            db.execute("PRAGMA journal_mode=WAL")
+            db.execute("PRAGMA synchronous=FULL")
+            db.row_factory = sqlite3.Row
+            self._local.db = db
+        return db
+
+    @contextmanager
+    def _transaction(self) -> Iterator[sqlite3.Connection]:
+        db = self._db()
+        db.execute("BEGIN IMMEDIATE")
+        try:
+            yield db
+        except BaseException:
+            db.execute("ROLLBACK")
+            raise
+        db.execute("COMMIT")
+
+    def _query(self, sql: str, params: tuple = ()) -> list[sqlite3.Row]:
+        try:
+            return self._db().execute(sql, params).fetchall()
+        except sqlite3.Error as exc:
+            raise StoreUnavailable(f"the store index cannot be read: {exc}") from None
+
+    def check(self) -> None:
+        self._query("SELECT 1")
+        if not os.access(self.root, os.W_OK):
+            raise StoreUnavailable(f"the store directory {self.root} is not writable")
+
+    # ----------------------------------------------------------------- writes
+    def save_version(self, name: str, bundle: Bundle, *, make_live: bool | None) -> dict[str, Any]:
+        """Persist ``bundle`` as the next version of ``name``; return its report."""
+        folder = self.root / "segmentations" / name
+        folder.mkdir(parents=True, exist_ok=True)
+        staged = folder / f".staged-{uuid.uuid4().hex}.joblib"
+        # The heavy write happens outside the index lock; the rename to the numbered name inside it.
+        bundle_sha = _write_atomic(staged, lambda handle: joblib.dump(bundle, handle, compress=3))
+        try:
+            with self._transaction() as db:
+                now = utc_now()
+                row = db.execute("SELECT last_version, live_version FROM segmentations WHERE name=?",
+                                 (name,)).fetchone()
+                if row is None:
+                    db.execute("INSERT INTO segmentations (name, live_version, last_version, created_at, updated_at)"
+                               " VALUES (?, NULL, 0, ?, ?)", (name, now, now))
+                    last, live = 0, None
+                else:
+                    last, live = row["last_version"], row["live_version"]
+                version = last + 1
+                go_live = (live is None and version == 1) if make_live is None else make_live
+                report = {
+                    "name": name, "version": version, "created_at": now[:19] + "Z",
+                    **bundle.report, "bundle_sha256": bundle_sha,
+                }
+                artifact = folder / f"v{version:06d}.joblib"
+                os.replace(staged, artifact)
+                _write_atomic(folder / f"v{version:06d}.json",
+                              lambda handle: handle.write(json.dumps(report).encode()))
+                _fsync_dir(folder)
+                db.execute(
+                    "INSERT INTO versions (name, version, created_at, k, n_records, data_sha256, bundle_sha256,"
+                    " artifact, report) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                    (name, version, report["created_at"], bundle.k, bundle.report["n_records"],
+                     bundle.report["data_sha256"], bundle_sha, artifact.name, json.dumps(report)))
+                db.execute("UPDATE segmentations SET last_version=?, updated_at=?,"
+                           " live_version=CASE WHEN ? THEN ? ELSE live_version END WHERE name=?",
+                           (version, now, go_live, version, name))
+        except BaseException:
+            staged.unlink(missing_ok=True)
+            raise
+        return self.version_report(name, version)
+
+    def set_live(self, name: str, version: int) -> dict[str, Any]:
+        with self._transaction() as db:
+            self._require_version(db, name, version)
+            db.execute("UPDATE segmentations SET live_version=?, updated_at=? WHERE name=?",
+                       (version, utc_now(), name))
+        return self.get_segmentation(name)
+
+    def set_label(self, name: str, version: int, segment: int, label: str | None) -> dict[str, Any]:
+        with self._transaction() as db:
+            row = self._require_version(db, name, version)
+            if not 0 <= segment < row["k"]:
+                raise SegmentNotFound(name, version, segment, row["k"])
+            db.execute("INSERT INTO labels (name, version, segment, label) VALUES (?, ?, ?, ?)"
+                       " ON CONFLICT (name, version, segment) DO UPDATE SET label=excluded.label",
+                       (name, version, segment, label))
+            db.execute("UPDATE segmentations SET updated_at=? WHERE name=?", (utc_now(), name))
+        report = self.version_report(name, version)
+        return report["segments"][segment]
+
+    def save_drift_report(self, report: dict[str, Any]) -> None:
+        with self._transaction() as db:
+            db.execute("INSERT INTO drift_reports (id, name, version, created_at, report) VALUES (?, ?, ?, ?, ?)",
+                       (report["id"], report["name"], report["version"], report["created_at"], json.dumps(report)))
+
+    # ----------------------------------------------------------------- reads
+    def _require_version(self, db: sqlite3.Connection, name: str, version: int) -> sqlite3.Row:
+        row = db.execute("SELECT * FROM versions WHERE name=? AND version=?", (name, version)).fetchone()
+        if row is None:
+            if db.execute("SELECT 1 FROM segmentations WHERE name=?", (name,)).fetchone() is None:
+                raise SegmentationNotFound(name)
+            raise VersionNotFound(name, version)
+        return row
+
+    @staticmethod
+    def _segmentation_row(row: sqlite3.Row) -> dict[str, Any]:
+        return {"name": row["name"], "live_version": row["live_version"], "latest_version": row["last_version"],
+                "created_at": row["created_at"][:19] + "Z", "updated_at": row["updated_at"][:19] + "Z"}
+
+    def list_segmentations(self) -> list[dict[str, Any]]:
+        rows = self._query("SELECT * FROM segmentations WHERE last_version > 0 ORDER BY name")
+        return [self._segmentation_row(r) for r in rows]
+
+    def get_segmentation(self, name: str) -> dict[str, Any]:
+        rows = self._query("SELECT * FROM segmentations WHERE name=?", (name,))
+        if not rows:
+            raise SegmentationNotFound(name)
+        result = self._segmentation_row(rows[0])
+        live = rows[0]["live_version"]
+        result["versions"] = [
+            {"version": v["version"], "created_at": v["created_at"], "live": v["version"] == live, "k": v["k"],
+             "n_records": v["n_records"], "data_sha256": v["data_sha256"]}
+            for v in self._query("SELECT version, created_at, k, n_records, data_sha256 FROM versions"
+                                 " WHERE name=? ORDER BY version", (name,))
+        ]
+        return result
+
+    def version_report(self, name: str, version: int) -> dict[str, Any]:
+        row = self._require_version(self._db(), name, version)
+        live = self._query("SELECT live_version FROM segmentations WHERE name=?", (name,))[0]["live_version"]
+        report = json.loads(row["report"])
+        report["live"] = live == version
+        labels = self.labels(name, version)
+        for segment in report["segments"]:
+            segment["label"] = labels.get(segment["id"])
+        return report
+
+    def labels(self, name: str, version: int) -> dict[int, str]:
+        rows = self._query("SELECT segment, label FROM labels WHERE name=? AND version=?", (name, version))
+        return {r["segment"]: r["label"] for r in rows if r["label"] is not None}
+
+    def resolve_version(self, name: str, version: int | None) -> int:
+        if version is not None:
+            self._require_version(self._db(), name, version)
+            return version
+        rows = self._query("SELECT live_version FROM segmentations WHERE name=?", (name,))
+        if not rows:
+            raise SegmentationNotFound(name)
+        if rows[0]["live_version"] is None:
+            raise NoLiveVersion(name)
+        return int(rows[0]["live_version"])
+
+    def load(self, name: str, version: int) -> LoadedVersion:
+        """The verified, compiled bundle of a version (cached in memory, LRU)."""
+        key = (name, version)
+        with self._cache_lock:
+            hit = self._cache.get(key)
+            if hit is not None:
+                self._cache.move_to_end(key)
+                return hit
+        row = self._require_version(self._db(), name, version)
+        path = self.root / "segmentations" / name / row["artifact"]
+        try:
+            if _sha256_file(path) != row["bundle_sha256"]:
+                raise BundleCorrupt(name, version)
+            bundle = joblib.load(path)
+        except FileNotFoundError:
+            raise BundleCorrupt(name, version) from None
+        loaded = LoadedVersion(name, version, bundle, compile_bundle(bundle))
+        with self._cache_lock:
+            self._cache[key] = loaded
+            while len(self._cache) > self._cache_size:
+                self._cache.popitem(last=False)
+        return loaded
+
+    def list_drift_reports(self, name: str, *, version: int | None, limit: int) -> list[dict[str, Any]]:
+        if not self._query("SELECT 1 FROM segmentations WHERE name=?", (name,)):
+            raise SegmentationNotFound(name)
+        if version is None:
+            rows = self._query("SELECT report FROM drift_reports WHERE name=? ORDER BY seq DESC LIMIT ?",
+                               (name, limit))
+        else:
+            rows = self._query("SELECT report FROM drift_reports WHERE name=? AND version=? ORDER BY seq DESC"
+                               " LIMIT ?", (name, version, limit))
+        return [json.loads(r["report"]) for r in rows]

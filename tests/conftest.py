@@ -1,0 +1,45 @@
+"""Shared fixtures. Reference data sets ship with scikit-learn (no download)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from fastapi.testclient import TestClient
+from sklearn.datasets import load_iris, load_wine
+
+from service.app import create_app
+from service.settings import Settings
+
+
+@pytest.fixture(scope="session")
+def iris():
+    """Fisher's Iris (150 x 4) via sklearn.datasets.load_iris."""
+    return load_iris()
+
+
+@pytest.fixture(scope="session")
+def wine():
+    """UCI Wine (178 x 13) via sklearn.datasets.load_wine."""
+    return load_wine()
+
+
+def records_from(data, feature_names=None, id_prefix=None) -> list[dict]:
+    """A scikit-learn Bunch or an array -> JSON records (plain floats)."""
+    values = data.data if hasattr(data, "data") else np.asarray(data)
+    names = feature_names or list(getattr(data, "feature_names", [f"f{j}" for j in range(values.shape[1])]))
+    rows = [dict(zip(names, map(float, row))) for row in values]
+    if id_prefix is not None:
+        for i, row in enumerate(rows):
+            row["id"] = f"{id_prefix}{i}"
+    return rows
+
+
+@pytest.fixture
+def settings(tmp_path) -> Settings:
+    return Settings(store_dir=tmp_path / "store")
+
+
+@pytest.fixture
+def client(settings):
+    with TestClient(create_app(settings)) as test_client:
+        yield test_client

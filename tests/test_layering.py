@@ -1,0 +1,45 @@
+"""Architecture guards: the numerical core stays free of web imports; every error maps to a status."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+from service.app import STATUS_BY_ERROR, status_for
+from service.errors import ServiceError
+
+
+def test_core_imports_no_web_framework():
+    code = (
+        "import sys, service.core.fit, service.core.assign, service.core.frame, service.core.bundle;"
+        "import importlib.util;"
+        "drift = importlib.util.find_spec('service.core.drift');"
+        "drift and __import__('service.core.drift');"
+        "bad = [m for m in ('fastapi', 'starlette', 'pydantic', 'schemas', 'service.store') if m in sys.modules];"
+        "print(','.join(bad))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == ""
+
+
+def _all_subclasses(cls):
+    for sub in cls.__subclasses__():
+        yield sub
+        yield from _all_subclasses(sub)
+
+
+def test_every_service_error_has_an_http_status():
+    for cls in _all_subclasses(ServiceError):
+        assert any(base in STATUS_BY_ERROR for base in cls.__mro__), cls
+    # The specific ones the contract names.
+    from service.errors import BadBody, BundleCorrupt, InvalidRecords, MissingKey, NoLiveVersion, \
+        PayloadTooLarge, ScopeDenied, SegmentationNotFound, StoreUnavailable
+    assert status_for(BadBody()) == 400
+    assert status_for(MissingKey()) == 401
+    assert status_for(ScopeDenied("fit")) == 403
+    assert status_for(SegmentationNotFound("x")) == 404
+    assert status_for(NoLiveVersion("x")) == 409
+    assert status_for(PayloadTooLarge()) == 413
+    assert status_for(InvalidRecords([])) == 422
+    assert status_for(BundleCorrupt("x", 1)) == 500
+    assert status_for(StoreUnavailable()) == 503
