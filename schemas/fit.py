@@ -2,7 +2,7 @@ from __future__ import annotations
 
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 Record = dict[str, Any]
 
@@ -37,6 +37,14 @@ class FitRequest(BaseModel):
     seed: int = Field(0, ge=0, le=2**32 - 1)
     outlier_quantile: float = Field(0.99, ge=0.5, lt=1.0)
     make_live: bool | None = None
+
+    @field_validator("components", "k", mode="before")
+    @classmethod
+    def _not_a_boolean(cls, value: Any) -> Any:
+        # JSON true/false would otherwise pass as 1/0 (one component, k = 1) without a word.
+        if isinstance(value, bool):
+            raise ValueError("expected a number, got a boolean")
+        return value
 
 
 class CurvePoint(BaseModel):

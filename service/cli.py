@@ -23,17 +23,17 @@ def fit_csv_into_store(settings: Settings, name: str, csv_bytes: bytes, params: 
     """Fit a CSV file into the store with the same checks as the HTTP fit endpoint."""
     from schemas import FitRequest
     from service.api.payload import check_name
-    from service.api.segmentations import _fit_config, _resolve_features
+    from service.api.segmentations import _fit_config, _resolve_features, csv_feature_candidates
     from service.api.validation import validate_model
     from service.core.fit import fit_bundle
-    from service.core.frame import batch_from_frame, numeric_csv_columns, read_csv
+    from service.core.frame import batch_from_frame, read_csv
     from service.store import FilesystemStore
 
     check_name(name)
     request = validate_model(FitRequest, params)
     frame = read_csv(csv_bytes)
     features = _resolve_features(request.features, list(frame.columns),
-                                 numeric_csv_columns(frame, request.id_column), request.id_column)
+                                 csv_feature_candidates(frame, request.id_column), request.id_column)
     batch = batch_from_frame(frame, features, request.id_column)
     batch.raise_if_problems()
     bundle = fit_bundle(batch.values, _fit_config(request, features, settings),
@@ -98,6 +98,26 @@ def demo_data(rows: int, seed: int, out: Path) -> None:
         click.echo(f"wrote {rows} customers to {out}", err=True)
 
 
+def _parse_components(text: str) -> int | float | None:
+    if text.strip().lower() == "none":
+        return None
+    for kind in (int, float):
+        try:
+            return kind(text)
+        except ValueError:
+            pass
+    raise click.BadParameter(f"expected a count, a variance share in (0, 1) or 'none'; got {text!r}",
+                             param_hint="--components")
+
+
+def _parse_k(text: str) -> int | dict[str, int]:
+    low, sep, high = text.strip().partition("-")
+    try:
+        return {"min": int(low), "max": int(high)} if sep else int(low)
+    except ValueError:
+        raise click.BadParameter(f"expected an int or a range like 2-10; got {text!r}", param_hint="--k") from None
+
+
 @main.command()
 @click.argument("name")
 @click.argument("csv_file", type=click.Path(exists=True, dir_okay=False, path_type=Path))
@@ -117,13 +137,10 @@ def fit(name, csv_file, store_dir, features, id_column, scaling, components, met
     """Fit a new version of NAME from CSV_FILE into the local store; print the fit report."""
     from service.errors import ServiceError
 
-    low, sep, high = k_text.partition("-")
-    comp = None if components.lower() == "none" else (float(components) if "." in components else int(components))
     params = {
         "features": features.split(",") if features else None, "id_column": id_column, "scaling": scaling,
-        "components": comp, "method": method, "linkage": linkage,
-        "k": {"min": int(low), "max": int(high)} if sep else int(low),
-        "selection": selection, "seed": seed, "make_live": make_live,
+        "components": _parse_components(components), "method": method, "linkage": linkage,
+        "k": _parse_k(k_text), "selection": selection, "seed": seed, "make_live": make_live,
     }
     try:
         report = fit_csv_into_store(_settings(store_dir=store_dir), name, csv_file.read_bytes(), params)

@@ -52,5 +52,8 @@ class MetricsMiddleware:
         finally:
             route = scope.get("route")
             template = getattr(route, "path", "unmatched")
+            # Routers are mounted under /v1 and report their path without the mount prefix.
+            if scope["path"].startswith("/v1/") and template.startswith("/segmentations"):
+                template = "/v1" + template
             self.metrics.requests.labels(scope["method"], template, str(status[0])).inc()
             self.metrics.latency.labels(template).observe(time.perf_counter() - started)

@@ -5,7 +5,7 @@ from __future__ import annotations
 from functools import lru_cache
 from pathlib import Path
 
-from pydantic import Field, field_validator
+from pydantic import Field, field_validator, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 SCOPES = ("fit", "read", "assign", "drift")
@@ -41,6 +41,9 @@ class Settings(BaseSettings):
     # Material effect sizes for the items that have no PSI.
     drift_outlier_rate_ratio: float = Field(2.0, gt=1)
     drift_residual_median_ratio: float = Field(1.5, gt=1)
+    # The "watch" analogues of the two ratios above (PSI's is drift_psi_watch); each at most its alert level.
+    drift_outlier_rate_watch_ratio: float = Field(1.5, gt=1)
+    drift_residual_median_watch_ratio: float = Field(1.2, gt=1)
 
     access_log: bool = False
     log_level: str = "info"
@@ -55,6 +58,16 @@ class Settings(BaseSettings):
             if unknown:
                 raise ValueError(f"unknown scope(s) {unknown}; allowed: {list(SCOPES)}")
         return value
+
+    @model_validator(mode="after")
+    def _drift_bands_ordered(self) -> "Settings":
+        pairs = (("drift_psi_watch", "drift_psi_alert"),
+                 ("drift_outlier_rate_watch_ratio", "drift_outlier_rate_ratio"),
+                 ("drift_residual_median_watch_ratio", "drift_residual_median_ratio"))
+        for watch, alert in pairs:
+            if getattr(self, watch) > getattr(self, alert):
+                raise ValueError(f"{watch} ({getattr(self, watch)}) must not exceed {alert} ({getattr(self, alert)})")
+        return self
 
     @property
     def auth_enabled(self) -> bool:

@@ -7,7 +7,7 @@ from typing import Any, Literal
 import anyio
 import numpy as np
 import orjson
-from fastapi import APIRouter, Query, Request
+from fastapi import APIRouter, Depends, Query, Request
 from fastapi.responses import Response
 
 from schemas import AssignResponse
@@ -15,9 +15,10 @@ from schemas.assign import AssignRequest
 from service.api.payload import check_name, read_batch, too_many_missing
 from service.core.assign import Assignment, assign, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
-from service.deps import AssignScope, SettingsDep, StoreDep
+from service.deps import AssignScope
 from service.errors import InvalidRecords
-from service.store import LoadedVersion
+from service.settings import Settings
+from service.store import FilesystemStore, LoadedVersion
 
 router = APIRouter(prefix="/segmentations", tags=["assign"])
 
@@ -64,10 +65,10 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
     reasons = (result.far.astype(np.int8) + 2 * result.off_plane.astype(np.int8)).tolist()
     runner_up = result.runner_up.tolist() if result.runner_up is not None else [None] * n
     margin = result.margin.tolist() if result.margin is not None else [None] * n
-    if missing is None:
-        imputed = [_NO_IMPUTED] * n
-    else:
-        imputed = [[features[j] for j in np.flatnonzero(row)] if row.any() else _NO_IMPUTED for row in missing]
+    imputed = [_NO_IMPUTED] * n
+    if missing is not None:
+        for i in np.flatnonzero(missing.any(axis=1)).tolist():
+            imputed[i] = [features[j] for j in np.flatnonzero(missing[i]).tolist()]
     return [
         {"id": i, "segment": s, "label": segment_labels[s], "distance": d, "outlier": r > 0,
          "outlier_reasons": _REASONS[r], "runner_up": u, "margin": m, "residual": e, "imputed": imp}
@@ -76,16 +77,24 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
     ]
 
 
+async def _assign_scope(request: Request) -> None:
+    """``AssignScope``'s check, run on the event loop: FastAPI runs a plain ``def`` dependency in its thread
+    pool, a round trip that cost more than the whole single-record computation (bench/http)."""
+    AssignScope.dependency(request)
+
+
 @router.post("/{name}/assign", response_model=AssignResponse, openapi_extra=RECORDS_BODY,
-             dependencies=[AssignScope], summary="Assign records to segments")
+             dependencies=[Depends(_assign_scope)], summary="Assign records to segments")
 async def assign_records(
     name: str,
     request: Request,
-    settings: SettingsDep,
-    store: StoreDep,
     version: int | None = Query(None, ge=1, description="default: the live version"),
     on_error: Literal["fail", "skip"] = Query("fail", description="skip: answer for the good records"),
 ) -> Response:
+    # Settings and store straight from the app state (what SettingsDep and StoreDep return), for the same
+    # reason as _assign_scope: those dependencies are plain functions, each a thread-pool round trip.
+    settings: Settings = request.app.state.settings
+    store: FilesystemStore = request.app.state.store
     check_name(name)
     number = store.resolve_version(name, version)
     loaded = store.load(name, number)

@@ -1,5 +1,117 @@
-"""Drift reports (being built; see issue 4)."""
+"""Drift reports: compare a batch with a version's training distribution, store the report, list them."""
 
-from fastapi import APIRouter
+from __future__ import annotations
+
+import uuid
+from datetime import datetime, timezone
+from typing import Any, Literal
+
+import anyio
+import orjson
+from fastapi import APIRouter, Query, Request
+from fastapi.responses import Response
+
+from schemas import DriftReport, DriftReportList
+from schemas.assign import AssignRequest
+from service.api.assign import run_assignment, split_good_rows
+from service.api.payload import check_name, read_batch
+from service.core.drift import DriftRules, compute_drift, has_residual
+from service.core.frame import MAX_LISTED_PROBLEMS
+from service.deps import DriftScope, SettingsDep, StoreDep
+from service.errors import InvalidInput, RecordProblem
+from service.settings import Settings
+from service.store import FilesystemStore, LoadedVersion
 
 router = APIRouter(prefix="/segmentations", tags=["drift"])
+
+DEFAULT_LIST_LIMIT = 20
+MAX_LIST_LIMIT = 500
+
+DRIFT_BODY = {
+    "requestBody": {
+        "required": True,
+        "content": {
+            "application/json": {"schema": AssignRequest.model_json_schema(ref_template="#/components/schemas/{model}")},
+            "text/csv": {"schema": {"type": "string", "description": "header row, then one row per record"}},
+        },
+    }
+}
+
+
+def drift_rules(settings: Settings) -> DriftRules:
+    return DriftRules(
+        alpha=settings.drift_alpha,
+        psi_watch=settings.drift_psi_watch,
+        psi_alert=settings.drift_psi_alert,
+        outlier_ratio_watch=settings.drift_outlier_rate_watch_ratio,
+        outlier_ratio_alert=settings.drift_outlier_rate_ratio,
+        residual_ratio_watch=settings.drift_residual_median_watch_ratio,
+        residual_ratio_alert=settings.drift_residual_median_ratio,
+    )
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def build_and_store(store: FilesystemStore, loaded: LoadedVersion, values, rules: DriftRules,
+                    errors: list[dict[str, Any]]) -> dict[str, Any]:
+    """Assign (fast path), compute the report, check it against the schema, store it. CPU-bound: run in a thread."""
+    assignment, _ = run_assignment(loaded, values)
+    body = compute_drift(loaded.bundle.reference, loaded.bundle.features, values, assignment, rules=rules,
+                         residual_available=has_residual(loaded.bundle))
+    report = {"id": uuid.uuid4().hex, "name": loaded.name, "version": loaded.version, "created_at": _now(),
+              **body, "skipped_records": len({e["record"] for e in errors}), "errors": errors[:MAX_LISTED_PROBLEMS]}
+    # A report that breaks the contract (e.g. a NaN) fails here, before anything is stored.
+    DriftReport.model_validate(report)
+    store.save_drift_report(report)
+    return report
+
+
+@router.post("/{name}/drift", response_model=DriftReport, openapi_extra=DRIFT_BODY, dependencies=[DriftScope],
+             summary="Compare a batch with the training distribution; the report is stored")
+async def create_drift_report(
+    name: str,
+    request: Request,
+    settings: SettingsDep,
+    store: StoreDep,
+    version: int | None = Query(None, ge=1, description="default: the live version"),
+    on_error: Literal["fail", "skip"] = Query("fail", description="skip: leave bad records out and list them"),
+) -> Response:
+    check_name(name)
+    number = store.resolve_version(name, version)
+    loaded = store.load(name, number)
+    features = list(loaded.compiled.features)
+    # Ids are not echoed in a drift report, so an id_column need not be present. Missing values are kept
+    # (no "too many missing" rule as in assign): a feed sending nulls is what the missing-share test is for.
+    batch = await read_batch(request, features, None, max_body=settings.max_body_bytes,
+                             max_rows=settings.max_drift_rows)
+    rows, errors = split_good_rows(batch, on_error == "skip")
+    if rows.size < settings.drift_min_rows:
+        usable = "usable records" if errors else "records"
+        raise InvalidInput([RecordProblem(
+            None, "records", f"the batch has {rows.size} {usable}; a drift report needs at least "
+            f"{settings.drift_min_rows} (setting SEGSCORE_DRIFT_MIN_ROWS)")])
+    values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]
+    report = await anyio.to_thread.run_sync(build_and_store, store, loaded, values, drift_rules(settings), errors)
+    request.app.state.metrics.drift_reports.labels(report["status"]).inc()
+    return Response(orjson.dumps(report), media_type="application/json")
+
+
+@router.get("/{name}/drift", response_model=DriftReportList, dependencies=[DriftScope],
+            summary="Stored drift reports, newest first")
+async def list_drift_reports(
+    name: str,
+    store: StoreDep,
+    version: int | None = Query(None, ge=1, description="only reports computed against this version"),
+    limit: int = Query(DEFAULT_LIST_LIMIT, ge=1, le=MAX_LIST_LIMIT, description="at most this many reports"),
+) -> Response:
+    check_name(name)
+
+    def read() -> list[dict[str, Any]]:
+        if version is not None:
+            store.resolve_version(name, version)  # 404 for an unknown segmentation or version
+        return store.list_drift_reports(name, version=version, limit=limit)
+
+    reports = await anyio.to_thread.run_sync(read)
+    return Response(orjson.dumps({"reports": reports}), media_type="application/json")

@@ -46,15 +46,16 @@ async def read_body(request: Request, limit: int) -> bytes:
 
 
 def parse_json(body: bytes) -> Any:
-    """orjson first (fast); the standard parser as fallback so NaN/Infinity/1e999 reach the checks as values."""
+    """orjson first (fast); the standard parser as fallback so NaN/Infinity/1e999 reach the checks as values
+    (and become 422 items naming record and field) instead of a bare 400."""
     try:
         return orjson.loads(body)
     except orjson.JSONDecodeError:
         pass
     try:
         return json.loads(body)
-    except (ValueError, UnicodeDecodeError) as exc:
-        raise BadBody(f"the body is not valid JSON: {exc}") from None
+    except (ValueError, RecursionError) as exc:  # UnicodeDecodeError is a ValueError; RecursionError: deep nesting
+        raise BadBody(f"the body is not valid JSON: {str(exc)[:200]}") from None
 
 
 def records_of(document: Any) -> list[Any]:
@@ -88,10 +89,24 @@ def _check_rows(n_rows: int, max_rows: int) -> None:
 
 
 def too_many_missing(batch: Batch, features: list[str]) -> None:
-    """Mark records missing more than half of the features as problems (in place)."""
+    """Mark records missing more than half of the features as problems (in place).
+
+    A value already reported as bad is NaN in the matrix but not *missing*, and a record already reported
+    as a whole (not an object) gets no second item.
+    """
     missing = np.isnan(batch.values).sum(axis=1)
+    if batch.problems:
+        names = set(features)
+        for problem in batch.problems:
+            if problem.record is None:
+                continue
+            if problem.field in names:
+                missing[problem.record] -= 1
+            else:
+                missing[problem.record] = 0
     half = len(features) / 2
-    for i in np.flatnonzero(missing > half):
-        batch.problems.append(RecordProblem(
-            int(i), "", f"{int(missing[i])} of {len(features)} features are missing; at most half may be"))
-    batch.problems.sort(key=lambda p: (p.record if p.record is not None else -1))
+    added = [RecordProblem(int(i), "", f"{int(missing[i])} of {len(features)} features are missing; at most half may be")
+             for i in np.flatnonzero(missing > half)]
+    if added:
+        batch.problems.extend(added)
+        batch.problems.sort(key=lambda p: (p.record if p.record is not None else -1))

@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Mapping
 
 import anyio
+import pandas as pd
 from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse
 
@@ -16,9 +17,8 @@ from service.core.fit import fit_bundle
 from service.core.frame import (
     batch_from_frame,
     batch_from_json,
-    numeric_csv_columns,
-    numeric_json_columns,
     json_columns,
+    numeric_csv_columns,
     read_csv,
 )
 from service.deps import FitScope, ReadScope, SettingsDep, StoreDep
@@ -38,9 +38,17 @@ FIT_BODY = {
 }
 
 
-def _query_parameters(request: Request) -> dict[str, Any]:
+QUERY_PARAMETERS = frozenset(set(FitRequest.model_fields) - {"records"})
+
+
+def _query_parameters(query: Mapping[str, str]) -> dict[str, Any]:
     """The fit parameters of a CSV request, from the query string, in the JSON request's shape."""
-    query = request.query_params
+    unknown = sorted(set(query) - QUERY_PARAMETERS)
+    if unknown:
+        # The CSV twin of the JSON body's "extra fields are not permitted": a misspelt option must not be
+        # silently replaced by its default.
+        raise InvalidInput([RecordProblem(None, key, f"unknown query parameter; known: {sorted(QUERY_PARAMETERS)}")
+                            for key in unknown])
     params: dict[str, Any] = {}
     for key in ("id_column", "scaling", "method", "linkage", "selection"):
         if key in query:
@@ -96,6 +104,36 @@ def _fit_config(request_model: FitRequest, features: list[str], settings) -> Fit
     )
 
 
+def json_feature_candidates(records: list[Any], id_column: str | None) -> list[str]:
+    """Default features of a JSON fit: every column that holds at least one number (booleans are not).
+
+    A column that mixes numbers with other values stays a candidate, so its bad values are reported
+    by record index instead of the whole column being dropped without a word.
+    """
+    candidates = []
+    for name in json_columns(records):
+        if name != id_column and any(type(r.get(name)) in (int, float) for r in records if isinstance(r, dict)):
+            candidates.append(name)
+    return candidates
+
+
+def csv_feature_candidates(frame: pd.DataFrame, id_column: str | None) -> list[str]:
+    """Default features of a CSV fit: numeric columns, plus text columns in which some cells are numbers
+    (so a stray bad cell is reported by row instead of the column silently disappearing)."""
+    numeric = set(numeric_csv_columns(frame, id_column))
+    candidates = []
+    for name in frame.columns:
+        if name == id_column:
+            continue
+        column = frame[name]
+        if name in numeric or (
+            not pd.api.types.is_numeric_dtype(column) and not pd.api.types.is_bool_dtype(column)
+            and pd.to_numeric(column, errors="coerce").notna().any()
+        ):
+            candidates.append(name)
+    return candidates
+
+
 def _resolve_features(requested: list[str] | None, available: list[str], numeric: list[str],
                       id_column: str | None) -> list[str]:
     if id_column is not None and id_column not in available:
@@ -123,38 +161,45 @@ def _resolve_features(requested: list[str] | None, available: list[str], numeric
 async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep) -> JSONResponse:
     check_name(name)
     body = await read_body(request, settings.max_body_bytes)
-    if is_csv(request):
-        params = validate_model(FitRequest, _query_parameters(request))
+    # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
+    values, config, make_live = await anyio.to_thread.run_sync(
+        _prepare_fit, body, is_csv(request), request.query_params, settings)
+
+    def fit_and_save() -> dict[str, Any]:
+        bundle = fit_bundle(values, config, max_agglomerative_rows=settings.max_agglomerative_rows)
+        return store.save_version(name, bundle, make_live=make_live)
+
+    report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
+    request.app.state.metrics.fits.inc()
+    return JSONResponse(report, status_code=201)
+
+
+def _prepare_fit(body: bytes, csv: bool, query: Mapping[str, str], settings) -> tuple[Any, FitConfig, bool | None]:
+    """A fit body (JSON, or CSV with parameters in the query) -> (training matrix, config, make_live)."""
+    if csv:
+        params = validate_model(FitRequest, _query_parameters(query))
         frame = read_csv(body)
         n_rows = len(frame)
         available = list(frame.columns)
-        numeric = numeric_csv_columns(frame, params.id_column)
+        numeric = csv_feature_candidates(frame, params.id_column)
     else:
         document = parse_json(body)
         records = records_of(document)
         params = validate_model(FitRequest, {k: v for k, v in document.items() if k != "records"})
         n_rows = len(records)
         available = json_columns(records)
-        numeric = numeric_json_columns(records, params.id_column)
+        numeric = json_feature_candidates(records, params.id_column)
     if n_rows > settings.max_fit_rows:
         raise PayloadTooLarge(f"{n_rows} records; the fit limit is {settings.max_fit_rows}")
     if n_rows == 0:
         raise InvalidInput("no records to fit", field="records")
     features = _resolve_features(params.features, available, numeric, params.id_column)
-    if is_csv(request):
+    if csv:
         batch = batch_from_frame(frame, features, params.id_column)
     else:
         batch = batch_from_json(records, features, params.id_column)
     batch.raise_if_problems()
-    config = _fit_config(params, features, settings)
-
-    def fit_and_save() -> dict[str, Any]:
-        bundle = fit_bundle(batch.values, config, max_agglomerative_rows=settings.max_agglomerative_rows)
-        return store.save_version(name, bundle, make_live=params.make_live)
-
-    report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
-    request.app.state.metrics.fits.inc()
-    return JSONResponse(report, status_code=201)
+    return batch.values, _fit_config(params, features, settings), params.make_live
 
 
 @router.get("", response_model=SegmentationList, dependencies=[ReadScope], summary="List segmentations")

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import platform
+import warnings
 from dataclasses import replace
 from typing import Any
 
@@ -111,9 +112,12 @@ def elbow_k(ks: list[int], distortions: list[float]) -> int:
 
 def kneedle_k(ks: list[int], distortions: list[float]) -> int | None:
     """Kneedle knee of a decreasing convex curve (Satopaa et al., 2011); None when it finds none."""
-    if len(ks) < 3:
+    if len(ks) < 3 or np.ptp(np.asarray(distortions, dtype=float)) == 0:
         return None
-    knee = KneeLocator(ks, distortions, curve="convex", direction="decreasing").knee
+    # The knee is reported for comparison only: the library's warnings (no knee found) must not fail a fit.
+    with warnings.catch_warnings(), np.errstate(all="ignore"):
+        warnings.simplefilter("ignore")
+        knee = KneeLocator(ks, distortions, curve="convex", direction="decreasing").knee
     return None if knee is None else int(knee)
 
 
@@ -137,7 +141,14 @@ def _silhouette(space: np.ndarray, labels: np.ndarray, config: FitConfig) -> flo
     if not 2 <= n_labels <= space.shape[0] - 1:
         return None
     sample = config.silhouette_sample if space.shape[0] > config.silhouette_sample else None
-    return float(silhouette_score(space, labels, sample_size=sample, random_state=config.seed))
+    try:
+        return float(silhouette_score(space, labels, sample_size=sample, random_state=config.seed))
+    except ValueError:
+        # The seeded sample can miss a tiny segment (say, one far outlier) and hold a single label;
+        # the silhouette of that sample is undefined.
+        if sample is None:
+            raise
+        return None
 
 
 def _squared_distances(space: np.ndarray, centroids: np.ndarray) -> np.ndarray:
@@ -235,6 +246,10 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
         chosen, method = elbow_k(ks, distortions), "elbow"
     else:
         scored = [(row["silhouette"], -row["k"]) for row in curve if row["silhouette"] is not None]
+        if not scored:
+            raise InvalidInput(
+                f"the silhouette is undefined for every k in [{config.k_min}, {config.k_max}] (each clustering, or its "
+                "seeded sample, has a single segment); use selection 'elbow' or another k range", field="selection")
         chosen, method = -max(scored)[1], "silhouette"
     clusterer, labels, centroids = fitted[chosen]
     del fitted

@@ -5,8 +5,9 @@ Two inputs arrive here: a list of JSON objects (already parsed) and CSV bytes. B
 absent key, or empty CSV cell), the ids to echo back, and a list of per-record problems. Values
 that are present but non-numeric or non-finite are problems, never silently missing.
 
-Columns are validated as whole arrays; only a column that fails the fast check is walked
-value by value to name the offending records.
+JSON records are converted as one table (one type check over every value, one array build); only
+a column that fails that check is walked value by value to name the offending records. CSV columns
+are validated as whole arrays the same way.
 """
 
 from __future__ import annotations
@@ -14,6 +15,8 @@ from __future__ import annotations
 import io
 import math
 from dataclasses import dataclass, field
+from itertools import chain
+from operator import itemgetter
 from typing import Any, Sequence
 
 import numpy as np
@@ -68,7 +71,11 @@ def _column_from_objects(column: list[Any], name: str, problems: list[RecordProb
         if value is None:
             continue
         if type(value) in (int, float):
-            number = float(value) if abs(value) < 1.8e308 else math.inf
+            try:
+                number = float(value)
+            except OverflowError:
+                problems.append(RecordProblem(i, name, "value must be finite; this integer is beyond the float64 range"))
+                continue
             if math.isfinite(number):
                 array[i] = number
                 continue
@@ -100,6 +107,41 @@ def numeric_json_columns(records: Sequence[Any], exclude: str | None) -> list[st
     return numeric
 
 
+def _table(rows: list[dict[str, Any]], features: Sequence[str]) -> list[tuple[Any, ...]]:
+    """One tuple of feature values per record (None where a key is absent)."""
+    if len(features) > 1:
+        try:
+            return list(map(itemgetter(*features), rows))   # every record has every key: the common case
+        except KeyError:
+            pass
+    return [tuple(map(row.get, features)) for row in rows]
+
+
+def _matrix_from_table(table: list[tuple[Any, ...]], features: Sequence[str],
+                       problems: list[RecordProblem]) -> np.ndarray:
+    """Rows of JSON values -> (n, p) float64, None -> NaN. Checked as a whole; a column with a value that
+    is not a finite number (or None) is redone by ``_column_from_objects``, which names the records."""
+    n, p = len(table), len(features)
+    kinds = set(map(type, chain.from_iterable(table)))
+    values = None
+    if kinds <= _NUMBER_TYPES:
+        try:
+            if type(None) in kinds:
+                values = np.array(table, dtype=np.float64).reshape(n, p)     # None -> NaN
+            else:
+                values = np.fromiter(chain.from_iterable(table), np.float64, count=n * p).reshape(n, p)
+        except OverflowError:  # an int beyond float64 range
+            values = None
+    if values is None:
+        redo = range(p)
+        values = np.empty((n, p), dtype=np.float64)
+    else:
+        redo = np.flatnonzero(~np.isfinite(values).all(axis=0)).tolist()
+    for j in redo:
+        values[:, j] = _column_from_objects([row[j] for row in table], features[j], problems)
+    return values
+
+
 def batch_from_json(
     records: Sequence[Any],
     features: Sequence[str],
@@ -114,9 +156,7 @@ def batch_from_json(
         else:
             problems.append(RecordProblem(i, "", "each record must be a JSON object"))
             rows.append({})
-    values = np.empty((len(rows), len(features)), dtype=np.float64)
-    for j, name in enumerate(features):
-        values[:, j] = _column_from_objects([r.get(name) for r in rows], name, problems)
+    values = _matrix_from_table(_table(rows, features), features, problems)
     if id_column is None:
         ids: list[Any] = list(range(len(rows)))
     else:
@@ -159,14 +199,17 @@ def batch_from_frame(frame: pd.DataFrame, features: Sequence[str], id_column: st
     for j, name in enumerate(features):
         column = frame[name]
         if pd.api.types.is_numeric_dtype(column) and not pd.api.types.is_bool_dtype(column):
-            array = column.to_numpy(dtype=np.float64, na_value=np.nan)
-            for i in np.flatnonzero(np.isinf(array)):
-                problems.append(RecordProblem(int(i), name, f"value must be finite, got {array[i]}"))
-            values[:, j] = array
+            values[:, j] = column.to_numpy(dtype=np.float64, na_value=np.nan)
+            for i in np.flatnonzero(np.isinf(values[:, j])):
+                problems.append(RecordProblem(int(i), name, f"value must be finite, got {values[i, j]}"))
+                values[i, j] = np.nan       # a bad value is NaN in the matrix, as in the JSON path
             continue
         array = np.full(len(column), np.nan)
         for i, raw in enumerate(column.tolist()):
             if raw is None or (isinstance(raw, float) and math.isnan(raw)):
+                continue
+            if isinstance(raw, bool):  # pandas reads a column of True/False as booleans
+                problems.append(RecordProblem(i, name, "expected a number, got a boolean"))
                 continue
             try:
                 number = float(raw)

@@ -229,9 +229,17 @@ class FilesystemStore:
         return report["segments"][segment]
 
     def save_drift_report(self, report: dict[str, Any]) -> None:
-        with self._transaction() as db:
-            db.execute("INSERT INTO drift_reports (id, name, version, created_at, report) VALUES (?, ?, ?, ?, ?)",
-                       (report["id"], report["name"], report["version"], report["created_at"], json.dumps(report)))
+        """Append a drift report; its ``seq`` (autoincrement, under the write lock) orders the list."""
+        text = json.dumps(report, allow_nan=False)  # the contract has no NaN/Infinity; fail before writing
+        try:
+            with self._transaction() as db:
+                db.execute("INSERT INTO drift_reports (id, name, version, created_at, report) VALUES (?, ?, ?, ?, ?)",
+                           (report["id"], report["name"], report["version"], report["created_at"], text))
+        except sqlite3.Error as exc:
+            db = self._db()
+            if db.in_transaction:  # a failed COMMIT leaves the transaction open on this thread's connection
+                db.execute("ROLLBACK")
+            raise StoreUnavailable(f"the drift report could not be stored: {exc}") from None
 
     # ----------------------------------------------------------------- reads
     def _require_version(self, db: sqlite3.Connection, name: str, version: int) -> sqlite3.Row:

@@ -1,0 +1,316 @@
+"""The assign fast path (service.core.assign) against the stored scikit-learn objects.
+
+Outside references, named beside each check:
+- the fitted scikit-learn objects stored in the bundle: SimpleImputer.transform, the scaler's transform,
+  PCA.transform / PCA.inverse_transform, KMeans.transform / KMeans.predict, and sklearn.pipeline.Pipeline.predict
+  built from those same objects;
+- for agglomerative bundles (no ``predict`` in scikit-learn): sklearn.neighbors.NearestCentroid fitted on
+  the clusterer's labels (its centroids are the member means, as API.md defines them) and
+  scipy.spatial.distance.cdist for direct Euclidean distances;
+- data: Wine (UCI, via sklearn.datasets.load_wine) and Iris (Fisher 1936, via sklearn.datasets.load_iris);
+  calibration data drawn with sklearn.datasets.make_blobs (seeded) and checked against the binomial
+  sampling error of a quantile rule (common practice, no single source).
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+
+import numpy as np
+import pytest
+from scipy.spatial.distance import cdist
+from sklearn.datasets import load_iris, load_wine, make_blobs
+from sklearn.neighbors import NearestCentroid
+from sklearn.pipeline import Pipeline
+
+import service.core.assign as core_assign
+from service.core.assign import assign, compile_bundle, impute
+from service.core.bundle import Bundle, FitConfig
+from service.core.fit import fit_bundle
+
+SCALINGS = ["standard", "robust", "minmax", "none"]
+COMPONENTS = {"components-2": 2, "share-0.8": 0.8, "no-pca": None, "all-features": "all"}
+METHODS = ["kmeans", "agglomerative"]
+DATASETS = {"wine": load_wine, "iris": load_iris}
+CONFIGS = [
+    pytest.param(data, scaling, components, method, id=f"{data}-{scaling}-{components}-{method}")
+    for data in DATASETS for scaling in SCALINGS for components in COMPONENTS for method in METHODS
+]
+RTOL = 1e-9
+
+
+# --------------------------------------------------------------------------- shared helpers
+def config_for(features, *, scaling="standard", components=0.9, method="kmeans", k=3, **extra) -> FitConfig:
+    return FitConfig(features=list(features), scaling=scaling, components=components, method=method,
+                     k_min=k, k_max=k, k_fixed=True, **extra)
+
+
+@lru_cache(maxsize=None)
+def fitted(data: str, scaling: str, components: str, method: str) -> tuple[Bundle, np.ndarray]:
+    """A bundle fitted by the service on a scikit-learn data set, and its training matrix."""
+    values = DATASETS[data]().data
+    count = COMPONENTS[components]
+    count = values.shape[1] if count == "all" else count
+    return fit_bundle(values, config_for(range(values.shape[1]), scaling=scaling, components=count,
+                                         method=method)), values
+
+
+def evaluation_rows(values: np.ndarray, seed: int = 0) -> np.ndarray:
+    """The training rows plus the same rows moved by seeded noise of half a column std (fresh records)."""
+    rng = np.random.default_rng(seed)
+    moved = values + rng.normal(scale=0.5 * values.std(axis=0), size=values.shape)
+    return np.vstack([values, moved])
+
+
+def reference_estimator(bundle: Bundle, training: np.ndarray):
+    """The fitted final step scikit-learn predicts with: the stored KMeans, or for agglomerative bundles a
+    NearestCentroid fitted on the clusterer's own labels (its centroids_ are the member means)."""
+    if bundle.config.method == "kmeans":
+        return bundle.clusterer
+    space = bundle.project(bundle.scaled(training))
+    return NearestCentroid().fit(space, bundle.clusterer.labels_)
+
+
+def sklearn_reference(bundle: Bundle, training: np.ndarray, x: np.ndarray) -> dict[str, np.ndarray]:
+    """Everything assign returns, recomputed with the stored scikit-learn objects (NaN = missing)."""
+    imputed = bundle.imputer.transform(x)                                      # SimpleImputer(median)
+    scaled = imputed if bundle.scaler is None else bundle.scaler.transform(imputed)
+    space = scaled if bundle.pca is None else bundle.pca.transform(scaled)     # PCA.transform
+    estimator = reference_estimator(bundle, training)
+    if bundle.config.method == "kmeans":
+        all_distances = estimator.transform(space)                            # KMeans.transform
+    else:
+        all_distances = cdist(space, estimator.centroids_)                    # direct Euclidean
+    labels = estimator.predict(space)                                         # KMeans / NearestCentroid.predict
+    pipeline = Pipeline([
+        ("impute", bundle.imputer),
+        ("scale", bundle.scaler if bundle.scaler is not None else "passthrough"),
+        ("pca", bundle.pca if bundle.pca is not None else "passthrough"),
+        ("cluster", estimator),
+    ])
+    order = np.argsort(all_distances, axis=1, kind="stable")
+    rows = np.arange(x.shape[0])
+    if bundle.pca is None:
+        residual = np.zeros(x.shape[0])
+    else:                                                                      # PCA.inverse_transform
+        residual = np.linalg.norm(scaled - bundle.pca.inverse_transform(space), axis=1)
+    return {
+        "labels": labels,
+        "pipeline_labels": pipeline.predict(x),                                # Pipeline.predict
+        "distance": all_distances[rows, labels],
+        "runner_up": order[:, 1] if bundle.k > 1 else None,
+        "runner_distance": all_distances[rows, order[:, 1]] if bundle.k > 1 else None,
+        "residual": residual,
+        "scaled_norm": np.linalg.norm(scaled, axis=1),
+    }
+
+
+def assert_matches_reference(bundle: Bundle, result, ref: dict[str, np.ndarray]) -> None:
+    np.testing.assert_array_equal(result.segment, ref["labels"])
+    np.testing.assert_array_equal(result.segment, ref["pipeline_labels"])
+    np.testing.assert_allclose(result.distance, ref["distance"], rtol=RTOL, atol=0)
+    np.testing.assert_array_equal(result.runner_up, ref["runner_up"])
+    # margin: a difference of two distances, so its error is relative to the larger one.
+    np.testing.assert_allclose(result.margin, ref["runner_distance"] - ref["distance"], rtol=0,
+                               atol=RTOL * ref["runner_distance"].max())
+    # residual: 0 exactly when PCA keeps every dimension; scikit-learn's difference of vectors then leaves
+    # rounding noise of order 1e-16 * ||scaled row||, hence the small absolute tolerance.
+    np.testing.assert_allclose(result.residual, ref["residual"], rtol=RTOL, atol=RTOL * ref["scaled_norm"].max())
+    # Flags follow from the distances and the stored thresholds (rows within rounding of a threshold skipped).
+    thresholds = bundle.distance_thresholds[ref["labels"]]
+    clear = np.abs(ref["distance"] - thresholds) > RTOL * thresholds
+    np.testing.assert_array_equal(result.far[clear], (ref["distance"] > thresholds)[clear])
+    if bundle.pca is not None and bundle.pca.n_components_ < len(bundle.features):
+        clear = np.abs(ref["residual"] - bundle.residual_threshold) > RTOL * bundle.residual_threshold
+        np.testing.assert_array_equal(result.off_plane[clear], (ref["residual"] > bundle.residual_threshold)[clear])
+    else:
+        assert not result.off_plane.any()
+
+
+# --------------------------------------------------------------------------- every supported config
+@pytest.mark.parametrize("data, scaling, components, method", CONFIGS)
+def test_assign_matches_stored_sklearn_objects(data, scaling, components, method, monkeypatch):
+    # Reference: the bundle's own fitted scikit-learn objects and Pipeline.predict (see sklearn_reference).
+    bundle, training = fitted(data, scaling, components, method)
+    compiled = compile_bundle(bundle)
+    x = evaluation_rows(training)
+    ref = sklearn_reference(bundle, training, x)
+
+    # The batch path (chunks), the few-rows path (direct distances) and many small chunks must all agree.
+    assert_matches_reference(bundle, assign(compiled, x), ref)
+    for start in range(0, x.shape[0], core_assign.DIRECT_ROWS):
+        part = slice(start, start + core_assign.DIRECT_ROWS)
+        assert_matches_reference(bundle, assign(compiled, x[part]), {k: (v[part] if v is not None else None)
+                                                                     for k, v in ref.items()})
+    monkeypatch.setattr(core_assign, "CHUNK_ROWS", 37)
+    assert_matches_reference(bundle, assign(compiled, x), ref)
+
+
+def test_agglomerative_centroids_are_member_means():
+    # Reference: sklearn.neighbors.NearestCentroid computes each class's mean; API.md defines an agglomerative
+    # centroid as the mean of its members in the clustering space.
+    bundle, training = fitted("wine", "standard", "components-2", "agglomerative")
+    reference = reference_estimator(bundle, training)
+    np.testing.assert_allclose(bundle.centroids, reference.centroids_, rtol=1e-12, atol=1e-12)
+
+
+def test_single_record_matches_pipeline_predict():
+    # Reference: Pipeline.predict and KMeans.transform of the stored objects, one Wine row at a time.
+    bundle, training = fitted("wine", "standard", "share-0.8", "kmeans")
+    compiled = compile_bundle(bundle)
+    for i in (0, 59, 130, 177):                         # one row of each cultivar block and the last row
+        row = training[i:i + 1]
+        result = assign(compiled, row)
+        ref = sklearn_reference(bundle, training, row)
+        assert result.segment.shape == (1,)
+        assert_matches_reference(bundle, result, ref)
+
+
+# --------------------------------------------------------------------------- imputation
+def test_impute_uses_training_medians_like_simple_imputer():
+    # Reference: numpy.nanmedian of the training columns, and the stored SimpleImputer(strategy="median").
+    bundle, training = fitted("wine", "robust", "share-0.8", "kmeans")
+    compiled = compile_bundle(bundle)
+    np.testing.assert_array_equal(compiled.medians, np.nanmedian(training, axis=0))
+    rng = np.random.default_rng(3)
+    x = evaluation_rows(training)
+    holes = rng.random(x.shape) < 0.15
+    x[holes] = np.nan
+    filled, missing = impute(compiled, x)
+    np.testing.assert_array_equal(missing, holes)
+    np.testing.assert_array_equal(filled, bundle.imputer.transform(x))
+    assert_matches_reference(bundle, assign(compiled, filled), sklearn_reference(bundle, training, x))
+
+
+def test_impute_without_missing_values_returns_input_and_no_mask():
+    # Reference: the input itself (nothing to fill) - common practice (no single source).
+    bundle, training = fitted("iris", "standard", "components-2", "kmeans")
+    filled, missing = impute(compile_bundle(bundle), training)
+    assert missing is None
+    assert filled is training
+
+
+# --------------------------------------------------------------------------- exact geometry
+def test_records_on_centroids_and_midpoints():
+    # Reference: records built from the centroids with the stored objects' inverse_transform (PCA, then
+    # scaler) sit at distance 0 of their centroid (up to rounding); a midpoint of two centroids is
+    # equidistant from both (margin 0). These rows take the direct-recompute branch of the batch path.
+    bundle, _ = fitted("iris", "standard", "components-2", "kmeans")
+    compiled = compile_bundle(bundle)
+    raw_centroids = bundle.scaler.inverse_transform(bundle.pca.inverse_transform(bundle.centroids))
+    midpoint = (raw_centroids[0] + raw_centroids[1]) / 2
+    x = np.vstack([raw_centroids, midpoint[None, :]] * 10)              # 40 rows: the chunked path
+    scale = np.abs(bundle.centroids).max()
+    for result in (assign(compiled, x), assign(compiled, x[:4])):
+        n = result.segment.size
+        kinds = np.arange(n) % 4
+        on_centroid = kinds < 3
+        np.testing.assert_array_equal(result.segment[on_centroid], kinds[on_centroid])
+        assert np.all(result.distance[on_centroid] < 1e-9 * scale)
+        assert np.all(result.margin[~on_centroid] < 1e-9 * scale)
+        assert all({s, r} == {0, 1} for s, r in zip(result.segment[~on_centroid], result.runner_up[~on_centroid]))
+        # The midpoint's distance is half the distance between the two centroids (cdist reference).
+        half = cdist(bundle.centroids[:1], bundle.centroids[1:2])[0, 0] / 2
+        np.testing.assert_allclose(result.distance[~on_centroid], half, rtol=RTOL)
+
+
+def test_single_segment_has_no_runner_up():
+    # Reference: KMeans(n_clusters=1).transform of the stored object; with one segment there is no runner-up.
+    values = load_iris().data
+    bundle = fit_bundle(values, config_for(range(4), components=2, k=1))
+    result = assign(compile_bundle(bundle), evaluation_rows(values))
+    ref = bundle.clusterer.transform(bundle.project(bundle.scaled(evaluation_rows(values))))[:, 0]
+    assert result.runner_up is None and result.margin is None
+    np.testing.assert_array_equal(result.segment, 0)
+    np.testing.assert_allclose(result.distance, ref, rtol=RTOL)
+
+
+def test_off_plane_record_is_flagged_for_residual_only():
+    # Reference: the stored PCA's components_, transform and inverse_transform: a scaled record moved
+    # orthogonally to every kept axis has the same PCA scores (so the same nearest centroid and distance);
+    # its reconstruction error becomes the old one plus the move, whose length is 10x the residual threshold.
+    bundle, training = fitted("wine", "standard", "share-0.8", "kmeans")
+    compiled = compile_bundle(bundle)
+    scaled = bundle.scaler.transform(training[:1])
+    axes = bundle.pca.components_
+    rng = np.random.default_rng(5)
+    direction = rng.normal(size=scaled.shape[1])
+    direction -= axes.T @ (axes @ direction)
+    direction /= np.linalg.norm(direction)
+    original_error = scaled - bundle.pca.inverse_transform(bundle.pca.transform(scaled))
+    move = 10 * bundle.residual_threshold * direction
+    moved_raw = bundle.scaler.inverse_transform(scaled + move)
+    np.testing.assert_allclose(bundle.pca.transform(bundle.scaler.transform(moved_raw)),
+                               bundle.pca.transform(scaled), atol=1e-9)
+    before, after = assign(compiled, training[:1]), assign(compiled, moved_raw)
+    assert after.segment[0] == before.segment[0]
+    np.testing.assert_allclose(after.distance, before.distance, rtol=1e-9)
+    np.testing.assert_allclose(after.residual[0], np.linalg.norm(original_error + move), rtol=1e-9)
+    assert after.off_plane[0] and not after.far[0] and after.outlier[0]
+
+
+def test_far_along_a_kept_axis_is_flagged_for_distance_only():
+    # Reference: the stored PCA: a move along a kept axis changes the scores by the move's length and leaves
+    # the reconstruction error as it was.
+    bundle, training = fitted("wine", "standard", "share-0.8", "kmeans")
+    compiled = compile_bundle(bundle)
+    scaled = bundle.scaler.transform(training[:1])
+    moved_raw = bundle.scaler.inverse_transform(scaled + 50 * bundle.pca.components_[0])
+    before, after = assign(compiled, training[:1]), assign(compiled, moved_raw)
+    np.testing.assert_allclose(after.residual, before.residual, rtol=1e-9, atol=1e-12)
+    assert after.far[0] and not after.off_plane[0]
+
+
+# --------------------------------------------------------------------------- calibration
+CALIBRATION_FEATURES = 6
+LATENT_CENTERS = np.array([[0.0, 0.0], [8.0, 0.0], [0.0, 8.0], [8.0, 8.0]])
+# A fixed full-rank map of the 2-D latent plane into 6 features (so the features are correlated and PCA(2)
+# recovers the plane), plus isotropic noise off the plane.
+MIXING = np.random.default_rng(0).normal(size=(2, CALIBRATION_FEATURES))
+NOISE_SD = 0.3
+
+
+def draw(n: int, seed: int) -> np.ndarray:
+    """Four unit-variance Gaussian blobs on a plane (sklearn.datasets.make_blobs, seeded), mapped into 6
+    features, plus N(0, 0.3^2) noise in every feature: a known distribution to draw fresh records from."""
+    latent, _ = make_blobs(n_samples=n, n_features=2, centers=LATENT_CENTERS, cluster_std=1.0, random_state=seed)
+    return latent @ MIXING + np.random.default_rng(seed).normal(scale=NOISE_SD, size=(n, CALIBRATION_FEATURES))
+
+
+@pytest.fixture(scope="module", params=[0.99, 0.95], ids=["q0.99", "q0.95"])
+def calibrated(request):
+    q = request.param
+    training = draw(20_000, seed=1)
+    bundle = fit_bundle(training, config_for(range(CALIBRATION_FEATURES), components=2, k=4,
+                                             outlier_quantile=q, n_init=3))
+    return q, training, bundle, compile_bundle(bundle)
+
+
+def test_flag_rates_on_fresh_records_match_the_quantile(calibrated):
+    # Reference: a quantile rule. Each segment's threshold is the q-quantile of ~5,000 training distances, so a
+    # fresh record from the same distribution exceeds it with probability 1 - q; the same holds for the
+    # residual rule. Sampling error (binomial, common practice): for q = 0.99, the rate over 20,000 fresh
+    # records has sd ~0.07 %, and the thresholds' own coverage error adds ~0.07 %; the accepted band
+    # [0.5, 2] x (1 - q) is more than 3.5 sd wide below and 7 sd above, so a fixed seed cannot flip it.
+    q, _, _, compiled = calibrated
+    result = assign(compiled, draw(20_000, seed=2))
+    expected = 1 - q
+    distance_rate = result.far.mean()
+    residual_rate = result.off_plane.mean()
+    overall_rate = result.outlier.mean()
+    assert 0.5 * expected <= distance_rate <= 2 * expected, distance_rate
+    assert 0.5 * expected <= residual_rate <= 2 * expected, residual_rate
+    # The flag is the union of two rules of rate 1 - q each (here nearly independent: one looks at the plane,
+    # the other off it), so its rate is at most about 2 (1 - q); the 25 % allowance covers the sampling error.
+    assert max(distance_rate, residual_rate) <= overall_rate <= 2 * expected * 1.25, overall_rate
+
+
+def test_records_ten_sd_from_all_data_are_all_flagged(calibrated):
+    # Reference: each feature moved 10 population standard deviations (numpy std of the training data) from
+    # the training mean, sign chosen at random: no training record is anywhere near (common practice: a
+    # 10-sigma point lies outside any 0.95/0.99 quantile of Gaussian data).
+    _, training, _, compiled = calibrated
+    signs = np.random.default_rng(4).choice([-1.0, 1.0], size=(1_000, CALIBRATION_FEATURES))
+    far = training.mean(axis=0) + 10 * training.std(axis=0) * signs
+    result = assign(compiled, far)
+    assert result.outlier.all()

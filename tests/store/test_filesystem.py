@@ -1,0 +1,270 @@
+"""The local store: versions, integrity (SHA-256), crash safety, concurrency, restart, cache.
+
+References: hashlib for digests; SQLite's own ``PRAGMA integrity_check``; process crashes are real
+(SIGKILL of a child process stopped at a known point of a save, see ``store_child.py``).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import joblib
+import numpy as np
+import pytest
+
+from service.core.bundle import FitConfig
+from service.core.fit import fit_bundle
+from service.errors import BundleCorrupt, SegmentationNotFound, SegmentNotFound, VersionNotFound
+from service.store import FilesystemStore
+
+REPO = Path(__file__).resolve().parents[2]
+CHILD_TIMEOUT = 120
+
+
+@pytest.fixture(scope="module")
+def bundles(iris):
+    """Two small iris bundles (k = 2 and k = 3)."""
+    def one(k):
+        return fit_bundle(iris.data, FitConfig(features=list(iris.feature_names), k_min=k, k_max=k, k_fixed=True))
+    return one(2), one(3)
+
+
+@pytest.fixture
+def store(tmp_path):
+    return FilesystemStore(tmp_path / "store")
+
+
+@pytest.fixture(scope="module")
+def bundle_file(tmp_path_factory, bundles):
+    path = tmp_path_factory.mktemp("bundle") / "bundle.joblib"
+    joblib.dump(bundles[1], path)
+    return path
+
+
+def artifact_path(store: FilesystemStore, name: str, version: int) -> Path:
+    return store.root / "segmentations" / name / f"v{version:06d}.joblib"
+
+
+def sha256_of(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def flip_a_byte(path: Path) -> None:
+    data = bytearray(path.read_bytes())
+    data[len(data) // 3] ^= 0x01
+    path.write_bytes(bytes(data))
+
+
+# --------------------------------------------------------------------------- basics
+def test_save_records_the_sha256_of_the_artifact(store, bundles):
+    report = store.save_version("shop", bundles[0], make_live=None)
+    assert (report["version"], report["live"]) == (1, True)
+    # Reference: hashlib.sha256 of the file as stored.
+    assert report["bundle_sha256"] == sha256_of(artifact_path(store, "shop", 1))
+    loaded = store.load("shop", 1)
+    np.testing.assert_array_equal(loaded.bundle.centroids, bundles[0].centroids)
+    assert loaded.bundle.report == bundles[0].report
+
+
+def test_a_save_leaves_only_numbered_files(store, bundles):
+    store.save_version("shop", bundles[0], make_live=None)
+    store.save_version("shop", bundles[1], make_live=None)
+    names = sorted(p.name for p in (store.root / "segmentations" / "shop").iterdir())
+    assert names == ["v000001.joblib", "v000001.json", "v000002.joblib", "v000002.json"]
+
+
+def test_versions_count_up_per_segmentation(store, bundles):
+    assert [store.save_version("a", bundles[0], make_live=None)["version"] for _ in range(3)] == [1, 2, 3]
+    assert store.save_version("b", bundles[0], make_live=None)["version"] == 1
+
+
+def test_lookups_of_unknown_things_raise_not_found(store, bundles):
+    store.save_version("shop", bundles[0], make_live=None)
+    with pytest.raises(SegmentationNotFound):
+        store.get_segmentation("nobody")
+    with pytest.raises(VersionNotFound):
+        store.load("shop", 2)
+    with pytest.raises(SegmentNotFound):
+        store.set_label("shop", 1, 5, "x")
+
+
+# --------------------------------------------------------------------------- integrity
+def test_tampered_artifact_is_a_clear_error_for_that_version_only(tmp_path, bundles):
+    store = FilesystemStore(tmp_path / "store")
+    for bundle in bundles:
+        store.save_version("shop", bundle, make_live=None)
+    store.save_version("other", bundles[0], make_live=None)
+    flip_a_byte(artifact_path(store, "shop", 1))
+
+    fresh = FilesystemStore(tmp_path / "store")          # nothing cached
+    with pytest.raises(BundleCorrupt) as caught:
+        fresh.load("shop", 1)
+    assert "'shop' version 1" in str(caught.value.detail) and "SHA-256" in str(caught.value.detail)
+    # Other versions still load; the tampered version's report (index data) is still readable.
+    assert fresh.load("shop", 2).bundle.k == 3
+    assert fresh.load("other", 1).bundle.k == 2
+    assert fresh.version_report("shop", 1)["version"] == 1
+    # The error does not stick: each attempt re-verifies (still corrupt, still the same error).
+    with pytest.raises(BundleCorrupt):
+        fresh.load("shop", 1)
+
+
+def test_missing_artifact_is_a_clear_error(store, bundles):
+    store.save_version("shop", bundles[0], make_live=None)
+    artifact_path(store, "shop", 1).unlink()
+    with pytest.raises(BundleCorrupt):
+        store.load("shop", 1)
+
+
+def test_loaded_bundles_are_cached_lru(tmp_path, bundles):
+    store = FilesystemStore(tmp_path / "store", cache_size=2)
+    for _ in range(3):
+        store.save_version("shop", bundles[0], make_live=None)
+    first = store.load("shop", 1)
+    assert store.load("shop", 1) is first
+    store.load("shop", 2)
+    store.load("shop", 3)                 # evicts version 1 (least recently used)
+    assert store.load("shop", 1) is not first
+
+
+# --------------------------------------------------------------------------- restart
+def test_versions_labels_and_live_pointer_survive_a_new_store_instance(tmp_path, bundles):
+    store = FilesystemStore(tmp_path / "store")
+    for bundle in bundles:
+        store.save_version("shop", bundle, make_live=None)
+    store.set_live("shop", 2)
+    store.set_label("shop", 2, 1, "gift buyers")
+    before = store.get_segmentation("shop")
+    del store
+
+    restarted = FilesystemStore(tmp_path / "store")
+    assert restarted.get_segmentation("shop") == before
+    assert restarted.version_report("shop", 2)["segments"][1]["label"] == "gift buyers"
+    assert restarted.version_report("shop", 2)["live"] is True
+    assert restarted.load("shop", 1).bundle.k == 2
+    assert restarted.save_version("shop", bundles[0], make_live=None)["version"] == 3
+
+
+# --------------------------------------------------------------------------- failures inside a save
+def test_an_exception_during_save_leaves_no_version_and_no_files(store, bundles, monkeypatch):
+    store.save_version("shop", bundles[0], make_live=None)
+    import service.store.filesystem as filesystem
+
+    def broken_dump(value, handle, **kwargs):
+        handle.write(b"partial")
+        raise OSError("disk full (simulated)")
+
+    monkeypatch.setattr(filesystem.joblib, "dump", broken_dump)
+    with pytest.raises(OSError):
+        store.save_version("shop", bundles[1], make_live=True)
+    monkeypatch.undo()
+    assert [v["version"] for v in store.get_segmentation("shop")["versions"]] == [1]
+    assert store.get_segmentation("shop")["live_version"] == 1
+    assert sorted(p.name for p in (store.root / "segmentations" / "shop").iterdir()) == [
+        "v000001.joblib", "v000001.json"]
+    assert store.save_version("shop", bundles[1], make_live=None)["version"] == 2
+
+
+# --------------------------------------------------------------------------- crash (SIGKILL) safety
+def _run_child(*arguments: str) -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", "tests.store.store_child", *arguments], cwd=REPO,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
+def _wait_for(path: Path, process: subprocess.Popen, timeout: float = CHILD_TIMEOUT) -> None:
+    deadline = time.monotonic() + timeout
+    while not path.exists():
+        if process.poll() is not None:
+            raise AssertionError(f"child exited early ({process.returncode}): {process.stderr.read()}")
+        if time.monotonic() > deadline:
+            process.kill()
+            process.wait(30)
+            raise AssertionError(f"child did not reach its hold point within {timeout} s")
+        time.sleep(0.02)
+
+
+@pytest.mark.parametrize("point", ["dump", "artifact-renamed", "report-renamed", "commit"])
+def test_a_save_killed_mid_write_leaves_the_store_readable(tmp_path, bundles, bundle_file, point):
+    root = tmp_path / "store"
+    store = FilesystemStore(root)
+    store.save_version("crash", bundles[0], make_live=None)
+    before = store.get_segmentation("crash")
+
+    signal_file = tmp_path / "holding"
+    child = _run_child("crash", str(root), str(bundle_file), point, str(signal_file))
+    try:
+        _wait_for(signal_file, child)
+        os.kill(child.pid, signal.SIGKILL)
+    finally:
+        child.wait(30)
+        child.stdout.close()
+        child.stderr.close()
+    assert child.returncode == -signal.SIGKILL
+    # The crash really happened where intended: it left files behind that no index row points to.
+    leftovers = {p.name for p in (root / "segmentations" / "crash").iterdir()}
+    if point == "dump":
+        assert any(name.startswith(".tmp-") for name in leftovers), leftovers
+    else:
+        assert "v000002.joblib" in leftovers, leftovers
+
+    # Readable by a new instance (as after a restart): no partial version is listed.
+    after = FilesystemStore(root)
+    assert after.get_segmentation("crash") == before
+    assert [r["latest_version"] for r in after.list_segmentations()] == [1]
+    assert after.load("crash", 1).bundle.k == 2
+    # SQLite's own check of the index (reference: PRAGMA integrity_check).
+    with sqlite3.connect(root / "index.sqlite3") as db:
+        assert db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    # The next save works, gets the next unused number, and its artifact verifies (any file the crash left
+    # under that number was replaced).
+    report = after.save_version("crash", bundles[1], make_live=None)
+    assert report["version"] == 2 and report["live"] is False
+    assert report["bundle_sha256"] == sha256_of(artifact_path(after, "crash", 2))
+    assert FilesystemStore(root).load("crash", 2).bundle.k == 3
+
+
+# --------------------------------------------------------------------------- concurrency
+def test_ten_processes_saving_to_one_name_get_versions_1_to_10(tmp_path, bundle_file):
+    root = tmp_path / "store"                   # not created yet: the ten processes race to create it too
+    go = tmp_path / "go"
+    children = []
+    try:
+        for i in range(10):
+            ready = tmp_path / f"ready-{i}"
+            children.append((ready, _run_child("save", str(root), str(bundle_file), "shop", str(ready), str(go))))
+        for ready, child in children:
+            _wait_for(ready, child)
+        go.write_text("go")
+        outputs = []
+        for _, child in children:
+            out, err = child.communicate(timeout=CHILD_TIMEOUT)
+            assert child.returncode == 0, err
+            outputs.append(int(out.strip()))
+    finally:
+        for _, child in children:
+            if child.poll() is None:
+                child.kill()
+                child.wait(30)
+    assert sorted(outputs) == list(range(1, 11))
+    store = FilesystemStore(root)
+    detail = store.get_segmentation("shop")
+    assert [v["version"] for v in detail["versions"]] == list(range(1, 11))
+    assert detail["live_version"] == 1
+    for version in range(1, 11):
+        assert store.load("shop", version).version == version
+
+
+def test_ten_threads_saving_to_one_store_get_versions_1_to_10(store, bundles):
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=10) as pool:
+        versions = list(pool.map(lambda i: store.save_version("shop", bundles[i % 2], make_live=None)["version"],
+                                 range(10)))
+    assert sorted(versions) == list(range(1, 11))

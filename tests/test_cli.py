@@ -1,0 +1,150 @@
+"""The ``segscore`` command: demo-data, fit, list, and serve (a real server process on a loopback port)."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import time
+import urllib.error
+import urllib.request
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+
+from service.cli import main
+from service.demo import FEATURES
+
+SERVER_START_TIMEOUT = 180      # the demo fit runs first; the machine may be busy
+HTTP_TIMEOUT = 10
+
+
+def run(*arguments: str):
+    return CliRunner().invoke(main, list(arguments), catch_exceptions=False)
+
+
+@pytest.fixture
+def demo_csv(tmp_path) -> Path:
+    out = tmp_path / "customers.csv"
+    result = run("demo-data", "--rows", "600", "--seed", "3", "--out", str(out))
+    assert result.exit_code == 0, result.output
+    return out
+
+
+def test_demo_data_writes_a_csv(demo_csv):
+    frame = pd.read_csv(demo_csv)
+    assert list(frame.columns) == ["customer_id", *FEATURES]
+    assert len(frame) == 600 and frame["customer_id"].is_unique
+    assert frame[FEATURES].isna().any().any()            # a few missing cells, to exercise imputation
+
+
+def test_demo_data_is_seeded(tmp_path, demo_csv):
+    again = tmp_path / "again.csv"
+    run("demo-data", "--rows", "600", "--seed", "3", "--out", str(again))
+    assert again.read_bytes() == demo_csv.read_bytes()
+    other = tmp_path / "other.csv"
+    run("demo-data", "--rows", "600", "--seed", "4", "--out", str(other))
+    assert other.read_bytes() != demo_csv.read_bytes()
+
+
+def test_fit_into_a_temp_store_and_list(tmp_path, demo_csv):
+    store = tmp_path / "store"
+    result = run("fit", "tea", str(demo_csv), "--store", str(store), "--id-column", "customer_id", "--k", "2-5")
+    assert result.exit_code == 0, result.output
+    report = json.loads(result.output)
+    assert (report["name"], report["version"], report["live"]) == ("tea", 1, True)
+    assert report["features"] == FEATURES and report["n_records"] == 600
+    assert [row["k"] for row in report["selection"]["curve"]] == [2, 3, 4, 5]
+    assert (store / "index.sqlite3").exists()
+
+    second = run("fit", "tea", str(demo_csv), "--store", str(store), "--id-column", "customer_id", "--k", "3",
+                 "--components", "none", "--features", "tenure_months,orders_per_year", "--not-live")
+    assert second.exit_code == 0, second.output
+    report = json.loads(second.output)
+    assert (report["version"], report["live"], report["components"]) == (2, False, None)
+    assert report["features"] == ["tenure_months", "orders_per_year"]
+
+    listing = run("list", "--store", str(store))
+    assert listing.exit_code == 0
+    assert listing.output.split("\t")[:3] == ["tea", "live=1", "latest=2"]
+
+
+@pytest.mark.parametrize(
+    "arguments, field",
+    [(["--features", "tenure_months,colour"], "features"), (["--k", "0"], "k"), (["--components", "9"], "components")],
+    ids=["unknown-feature", "k-zero", "components-over-features"],
+)
+def test_fit_bad_input_fails_naming_the_field_and_writes_nothing(tmp_path, demo_csv, arguments, field):
+    store = tmp_path / "store"
+    result = CliRunner().invoke(main, ["fit", "tea", str(demo_csv), "--store", str(store),
+                                       "--id-column", "customer_id", *arguments])
+    assert result.exit_code != 0
+    assert f'"field": "{field}' in result.output
+    listing = run("list", "--store", str(store))
+    assert listing.output == ""
+
+
+@pytest.mark.parametrize("arguments", [["--k", "two"], ["--components", "most"]], ids=["k", "components"])
+def test_fit_unparseable_option_is_a_usage_error(tmp_path, demo_csv, arguments):
+    result = CliRunner().invoke(main, ["fit", "tea", str(demo_csv), "--store", str(tmp_path / "s"), *arguments])
+    assert result.exit_code == 2            # click's usage-error exit status, not a traceback
+    assert arguments[0] in result.output
+
+
+def _free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
+        probe.bind(("127.0.0.1", 0))
+        return probe.getsockname()[1]
+
+
+def _get(url: str):
+    with urllib.request.urlopen(url, timeout=HTTP_TIMEOUT) as response:
+        return response.status, json.loads(response.read())
+
+
+def test_serve_demo_answers_readyz_and_lists_demo(tmp_path):
+    port = _free_port()
+    store = tmp_path / "store"
+    env = {k: v for k, v in os.environ.items() if not k.startswith("SEGSCORE_")}
+    segscore = Path(sys.executable).with_name("segscore")
+    log = (tmp_path / "server.log").open("w")
+    server = subprocess.Popen([str(segscore), "serve", "--demo", "--port", str(port), "--store", str(store)],
+                              stdout=log, stderr=subprocess.STDOUT, env=env, cwd=tmp_path)
+    base = f"http://127.0.0.1:{port}"
+    try:
+        deadline = time.monotonic() + SERVER_START_TIMEOUT
+        status = None
+        while time.monotonic() < deadline:
+            assert server.poll() is None, (tmp_path / "server.log").read_text()
+            try:
+                status, body = _get(f"{base}/readyz")
+                break
+            except (urllib.error.URLError, ConnectionError, TimeoutError):
+                time.sleep(0.25)
+        assert status == 200, (tmp_path / "server.log").read_text()
+        assert body["status"] == "ready"
+        status, listing = _get(f"{base}/v1/segmentations")
+        assert status == 200
+        assert [row["name"] for row in listing["segmentations"]] == ["demo"]
+        assert listing["segmentations"][0]["live_version"] == 1
+        status, report = _get(f"{base}/v1/segmentations/demo/versions/1")
+        assert report["features"] == FEATURES and report["id_column"] == "customer_id"
+    finally:
+        server.send_signal(signal.SIGTERM)
+        try:
+            server.wait(30)
+        except subprocess.TimeoutExpired:
+            server.kill()
+            server.wait(30)
+        log.close()
+    # The store outlives the server, and --demo does not fit again when 'demo' exists.
+    from service.cli import ensure_demo
+    from service.settings import Settings
+
+    ensure_demo(Settings(store_dir=store))
+    assert sorted(p.name for p in (store / "segmentations" / "demo").glob("v*.joblib")) == ["v000001.joblib"]
