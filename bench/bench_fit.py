@@ -17,7 +17,10 @@ overhead being measured, so each service run also times the scikit-learn calls i
 estimators in service.core.fit are wrapped with timers) and reports the rest, the service's own work, as a
 share of them: a figure measured within one run, which load from outside shifts far less.
 
-    python bench/bench_fit.py [--repeats 3] [--rows 100000] [--profile]
+    python bench/bench_fit.py [--repeats 3] [--rows 100000] [--threads N] [--profile]
+
+--threads N caps the BLAS and OpenMP pools (threadpoolctl) for both sides alike; with 1 thread the runs
+are steadier on a busy 2-vCPU machine, where spinning OpenMP threads compete with other processes.
 """
 
 from __future__ import annotations
@@ -34,6 +37,7 @@ import time
 
 import numpy as np
 import sklearn
+from threadpoolctl import threadpool_limits
 from sklearn.cluster import KMeans
 from sklearn.datasets import make_blobs
 from sklearn.decomposition import PCA
@@ -132,14 +136,18 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--rows", type=int, default=100_000)
+    parser.add_argument("--threads", type=int, default=None, help="cap BLAS/OpenMP threads (default: libraries' own)")
     parser.add_argument("--profile", action="store_true", help="profile one service fit and print the top calls")
     args = parser.parse_args()
+    if args.threads is not None:
+        threadpool_limits(limits=args.threads)
 
     x = make_data(args.rows)
     print(f"CPU: {cpu_model()} ({__import__('os').cpu_count()} logical CPUs); Python {platform.python_version()}, "
           f"numpy {np.__version__}, scikit-learn {sklearn.__version__}")
     print(f"data: {x.shape[0]} x {x.shape[1]}; k {K_RANGE.start}..{K_RANGE.stop - 1}, elbow, components 0.9, "
-          f"n_init 10, silhouette sample 10,000; {args.repeats} runs each, alternating")
+          f"n_init 10, silhouette sample 10,000; {args.repeats} runs each, alternating; "
+          f"threads: {args.threads or 'library default'}")
 
     if args.profile:
         profiler = cProfile.Profile()

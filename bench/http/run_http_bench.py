@@ -48,6 +48,7 @@ import numpy as np  # noqa: E402
 import orjson  # noqa: E402
 from sklearn.datasets import make_blobs  # noqa: E402
 
+from bench.bench_assign import cpu_model, load_average  # noqa: E402  (the same machine description)
 from service.core.bundle import FitConfig  # noqa: E402
 from service.core.fit import fit_bundle  # noqa: E402
 from service.store import FilesystemStore  # noqa: E402
@@ -72,14 +73,6 @@ SCENARIOS = [
     Scenario("100-record batches, 4 connections", 100, 4),
     Scenario("10,000-record batches, 2 connections", 10_000, 2),
 ]
-
-
-def cpu_model() -> str:
-    with open("/proc/cpuinfo") as handle:
-        for line in handle:
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    return "unknown"
 
 
 def free_port() -> int:
@@ -249,8 +242,8 @@ def main() -> int:
 
     print()
     print("== assign over HTTP (uvicorn, 1 worker, access log off, 127.0.0.1; wrk -t1, Lua POST) ==")
-    print(f"machine: {cpu_model()}, {os.cpu_count()} logical CPUs; load average now "
-          f"{' '.join(open('/proc/loadavg').read().split()[:3])}; server env {SERVER_ENV}")
+    print(f"machine: {cpu_model()}, {os.cpu_count()} logical CPUs; load average now {load_average()}; "
+          f"server env {SERVER_ENV}")
     print(f"each run: {args.duration:g} s after a {args.warmup:g} s warm-up; service and naive alternate")
     header = (f"{'scenario':40s} {'route':8s} {'req/s':>9s} {'records/s':>11s} {'p50 ms':>8s} {'p99 ms':>8s} "
               f"{'failed':>6s} {'wrk CPU':>8s} {'srv CPU':>8s}")

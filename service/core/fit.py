@@ -176,6 +176,12 @@ def jackson_mudholkar_limit(discarded_eigenvalues: np.ndarray, quantile: float) 
     discarded eigenvalues to the power i and h0 = 1 - 2 theta1 theta3 / (3 theta2^2),
     Q = theta1 [c sqrt(2 theta2 h0^2) / theta1 + 1 + theta2 h0 (h0 - 1) / theta1^2]^(1/h0),
     c the standard normal quantile. Returned as sqrt(Q): the same units as the residual distance.
+
+    The formula rests on (Q / theta1)^h0 being roughly normal. h0 <= 1/3 always, and it turns
+    negative when one discarded eigenvalue dominates many small ones; x^h0 then decreases, so the upper
+    quantile of Q comes from the lower normal quantile: the c term takes the sign of h0 (with h0 > 0
+    this is the formula above unchanged). Near h0 = 0 the log-normal limit of the same approximation
+    is used.
     """
     lam = np.asarray(discarded_eigenvalues, dtype=float)
     lam = lam[lam > 0]
@@ -184,7 +190,9 @@ def jackson_mudholkar_limit(discarded_eigenvalues: np.ndarray, quantile: float) 
     t1, t2, t3 = (float(np.sum(lam ** i)) for i in (1, 2, 3))
     h0 = 1.0 - 2.0 * t1 * t3 / (3.0 * t2 ** 2)
     c = float(norm.ppf(quantile))
-    base = c * np.sqrt(2.0 * t2 * h0 ** 2) / t1 + 1.0 + t2 * h0 * (h0 - 1.0) / t1 ** 2
+    if abs(h0) < 1e-6:
+        return float(np.sqrt(t1 * np.exp(c * np.sqrt(2.0 * t2) / t1 - t2 / t1 ** 2)))
+    base = c * h0 * np.sqrt(2.0 * t2) / t1 + 1.0 + t2 * h0 * (h0 - 1.0) / t1 ** 2
     return float(np.sqrt(t1 * base ** (1.0 / h0)))
 
 

@@ -109,7 +109,7 @@ def numeric_json_columns(records: Sequence[Any], exclude: str | None) -> list[st
 
 def _table(rows: list[dict[str, Any]], features: Sequence[str]) -> list[tuple[Any, ...]]:
     """One tuple of feature values per record (None where a key is absent)."""
-    if len(features) > 1:
+    if len(features) > 1:       # itemgetter of a single key returns the value itself, not a tuple
         try:
             return list(map(itemgetter(*features), rows))   # every record has every key: the common case
         except KeyError:

@@ -150,10 +150,22 @@ class FilesystemStore:
         db.execute("BEGIN IMMEDIATE")
         try:
             yield db
+            db.execute("COMMIT")
         except BaseException:
-            db.execute("ROLLBACK")
+            # Also after a failed COMMIT: left open, the transaction would make every later BEGIN on this
+            # thread's connection fail.
+            if db.in_transaction:
+                db.execute("ROLLBACK")
             raise
-        db.execute("COMMIT")
+
+    @contextmanager
+    def _writing(self, what: str) -> Iterator[sqlite3.Connection]:
+        """A write transaction whose index errors surface as StoreUnavailable (503), not as a bare 500."""
+        try:
+            with self._transaction() as db:
+                yield db
+        except sqlite3.Error as exc:
+            raise StoreUnavailable(f"{what} could not be written to the store index: {exc}") from None
 
     def _query(self, sql: str, params: tuple = ()) -> list[sqlite3.Row]:
         try:
@@ -175,7 +187,7 @@ class FilesystemStore:
         # The heavy write happens outside the index lock; the rename to the numbered name inside it.
         bundle_sha = _write_atomic(staged, lambda handle: joblib.dump(bundle, handle, compress=3))
         try:
-            with self._transaction() as db:
+            with self._writing(f"a version of '{name}'") as db:
                 now = utc_now()
                 row = db.execute("SELECT last_version, live_version FROM segmentations WHERE name=?",
                                  (name,)).fetchone()
@@ -193,14 +205,14 @@ class FilesystemStore:
                 }
                 artifact = folder / f"v{version:06d}.joblib"
                 os.replace(staged, artifact)
-                _write_atomic(folder / f"v{version:06d}.json",
-                              lambda handle: handle.write(json.dumps(report).encode()))
+                text = json.dumps(report, allow_nan=False)  # no NaN/Infinity may reach a stored report
+                _write_atomic(folder / f"v{version:06d}.json", lambda handle: handle.write(text.encode()))
                 _fsync_dir(folder)
                 db.execute(
                     "INSERT INTO versions (name, version, created_at, k, n_records, data_sha256, bundle_sha256,"
                     " artifact, report) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
                     (name, version, report["created_at"], bundle.k, bundle.report["n_records"],
-                     bundle.report["data_sha256"], bundle_sha, artifact.name, json.dumps(report)))
+                     bundle.report["data_sha256"], bundle_sha, artifact.name, text))
                 db.execute("UPDATE segmentations SET last_version=?, updated_at=?,"
                            " live_version=CASE WHEN ? THEN ? ELSE live_version END WHERE name=?",
                            (version, now, go_live, version, name))
@@ -210,14 +222,14 @@ class FilesystemStore:
         return self.version_report(name, version)
 
     def set_live(self, name: str, version: int) -> dict[str, Any]:
-        with self._transaction() as db:
+        with self._writing(f"the live version of '{name}'") as db:
             self._require_version(db, name, version)
             db.execute("UPDATE segmentations SET live_version=?, updated_at=? WHERE name=?",
                        (version, utc_now(), name))
         return self.get_segmentation(name)
 
     def set_label(self, name: str, version: int, segment: int, label: str | None) -> dict[str, Any]:
-        with self._transaction() as db:
+        with self._writing(f"a segment label of '{name}'") as db:
             row = self._require_version(db, name, version)
             if not 0 <= segment < row["k"]:
                 raise SegmentNotFound(name, version, segment, row["k"])

@@ -208,7 +208,6 @@ def test_metrics_text_exposition(fitted):
     assert fits and float(fits[0].split()[-1]) == 3.0
     assert re.search(r'segscore_http_requests_total\{[^}]*route="/healthz"[^}]*\} 1\.0', text)
     # Labelled by route template, not by the concrete path (no segmentation names in label values).
-    # (With FastAPI 0.165 the template lacks the /v1 prefix; see the report to the lead.)
-    assert re.search(r'segscore_http_requests_total\{[^}]*route="(/v1)?/segmentations/\{name\}/fit"'
+    assert re.search(r'segscore_http_requests_total\{[^}]*route="/v1/segmentations/\{name\}/fit"'
                      r'[^}]*status="201"[^}]*\} 3\.0', text)
     assert 'route="/v1/segmentations/shop' not in text and "/segmentations/shop" not in text

@@ -214,6 +214,39 @@ def test_records_on_centroids_and_midpoints():
         np.testing.assert_allclose(result.distance[~on_centroid], half, rtol=RTOL)
 
 
+def count_recomputed_rows(monkeypatch) -> list[int]:
+    """Record how many rows the batch path hands to the direct recompute."""
+    rows: list[int] = []
+    direct = core_assign._two_nearest
+
+    def counting(compiled, z):
+        rows.append(z.shape[0])
+        return direct(compiled, z)
+
+    monkeypatch.setattr(core_assign, "_two_nearest", counting)
+    return rows
+
+
+def test_batch_path_recomputes_only_doubtful_rows(monkeypatch):
+    # Reference: IEEE 754 double rounding (common practice): Wine records and their noisy copies lie nowhere
+    # near a centroid or a tie at the 1e-4 relative scale, so the expansion is trusted for every one of them;
+    # records built on centroids and on a midpoint (as in the test above) are all recomputed.
+    bundle, training = fitted("wine", "standard", "share-0.8", "kmeans")
+    compiled = compile_bundle(bundle)
+    recomputed = count_recomputed_rows(monkeypatch)
+    assign(compiled, evaluation_rows(training))
+    assert sum(recomputed) == 0
+    raw_centroids = bundle.scaler.inverse_transform(bundle.pca.inverse_transform(bundle.centroids))
+    midpoint = (raw_centroids[0] + raw_centroids[1]) / 2
+    x = np.vstack([evaluation_rows(training), raw_centroids, midpoint[None, :]])
+    result = assign(compiled, x)
+    assert sum(recomputed) == 4
+    ref = sklearn_reference(bundle, training, x[:-1])      # the midpoint is a tie: either answer is right
+    np.testing.assert_array_equal(result.segment[:-1], ref["labels"])
+    np.testing.assert_array_equal(result.segment[-4:-1], [0, 1, 2])
+    assert {int(result.segment[-1]), int(result.runner_up[-1])} == {0, 1}
+
+
 def test_single_segment_has_no_runner_up():
     # Reference: KMeans(n_clusters=1).transform of the stored object; with one segment there is no runner-up.
     values = load_iris().data

@@ -324,6 +324,24 @@ def test_jackson_mudholkar_limit_with_equal_eigenvalues_is_close_to_chi_square()
         assert limit == pytest.approx(0.5 * chi2.ppf(0.99, m), rel=0.01)
 
 
+@pytest.mark.parametrize("eigenvalues", [[10.0] + [1.0] * 100, [1.0, 0.5, 0.3, 0.2], [0.7] * 6],
+                         ids=["h0-negative", "mixed", "equal"])
+def test_jackson_mudholkar_limit_against_simulated_q(eigenvalues):
+    # Reference: Monte Carlo of Q = sum_j lambda_j z_j^2 with z_j standard normal (numpy, seeded) -- the
+    # distribution the limit approximates. With one dominant eigenvalue among 100 small ones h0 < 0
+    # (h0 = 1 - 2*110*1100 / (3*200^2) = -1.02); the formula must still give an upper limit, above the mean of Q.
+    lam = np.array(eigenvalues)
+    rng = np.random.default_rng(11)
+    q = np.zeros(200_000)
+    for start in range(0, lam.size, 20):
+        block = lam[start:start + 20]
+        q += (rng.standard_normal((q.size, block.size)) ** 2 * block).sum(axis=1)
+    limit = jackson_mudholkar_limit(lam, 0.99) ** 2
+    assert limit > lam.sum()
+    # An approximation: within 10 % of the simulated 0.99 quantile of Q (here 4.5 %, 5.7 % and 0.03 %).
+    assert limit == pytest.approx(np.quantile(q, 0.99), rel=0.10)
+
+
 def test_residual_limits_agree_with_empirical_quantile_on_gaussian_data():
     # Sanity against simulation: Gaussian data with a known covariance; keeping 3 of 8 principal axes, the
     # training residual's 0.99 quantile (empirical) and the JM limit should be close (approximation, 5 %).

@@ -21,7 +21,7 @@ import pytest
 
 from service.core.bundle import FitConfig
 from service.core.fit import fit_bundle
-from service.errors import BundleCorrupt, SegmentationNotFound, SegmentNotFound, VersionNotFound
+from service.errors import BundleCorrupt, SegmentationNotFound, SegmentNotFound, StoreUnavailable, VersionNotFound
 from service.store import FilesystemStore
 
 REPO = Path(__file__).resolve().parents[2]
@@ -170,6 +170,52 @@ def test_an_exception_during_save_leaves_no_version_and_no_files(store, bundles,
     assert sorted(p.name for p in (store.root / "segmentations" / "shop").iterdir()) == [
         "v000001.joblib", "v000001.json"]
     assert store.save_version("shop", bundles[1], make_live=None)["version"] == 2
+
+
+class _FailingCommit:
+    """A sqlite3 connection whose next COMMIT fails (as a full disk or an I/O error would make it)."""
+
+    def __init__(self, db, state):
+        self._db, self._state = db, state
+
+    def execute(self, sql, *args):
+        if sql == "COMMIT" and self._state["fail"]:
+            self._state["fail"] = False
+            raise sqlite3.OperationalError("disk I/O error (simulated)")
+        return self._db.execute(sql, *args)
+
+    def __getattr__(self, name):
+        return getattr(self._db, name)
+
+
+def test_a_failed_commit_is_store_unavailable_and_the_next_save_works(store, bundles, monkeypatch):
+    # Regression: a COMMIT that raised used to leave the transaction open on the thread's connection, so
+    # every later write from that thread failed ("cannot start a transaction within a transaction").
+    store.save_version("shop", bundles[0], make_live=None)
+    state = {"fail": True}
+    real_db = store._db
+    monkeypatch.setattr(store, "_db", lambda: _FailingCommit(real_db(), state))
+    with pytest.raises(StoreUnavailable) as caught:
+        store.save_version("shop", bundles[1], make_live=True)
+    assert "'shop'" in str(caught.value.detail)
+    assert not real_db().in_transaction
+    assert [v["version"] for v in store.get_segmentation("shop")["versions"]] == [1]
+    assert store.get_segmentation("shop")["live_version"] == 1
+    # Same thread, same connection: the next writes work.
+    assert store.save_version("shop", bundles[1], make_live=None)["version"] == 2
+    assert store.set_live("shop", 2)["live_version"] == 2
+    assert store.load("shop", 2).bundle.k == 3
+
+
+def test_a_report_with_nan_is_refused_before_anything_is_listed(store, bundles):
+    # API.md: numbers in responses are never NaN; a stored NaN would make every later read of the version fail.
+    import dataclasses
+
+    broken = dataclasses.replace(bundles[0], report={**bundles[0].report, "inertia": float("nan")})
+    with pytest.raises(ValueError):
+        store.save_version("shop", broken, make_live=None)
+    assert store.list_segmentations() == []
+    assert store.save_version("shop", bundles[0], make_live=None)["version"] == 1
 
 
 # --------------------------------------------------------------------------- crash (SIGKILL) safety
