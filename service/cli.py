@@ -70,14 +70,22 @@ def main() -> None:
 @click.option("--demo", is_flag=True, help="fit the 'demo' segmentation from synthetic data if absent")
 def serve(host: str | None, port: int | None, store_dir: Path | None, demo: bool) -> None:
     """Run the HTTP API with uvicorn (one process)."""
+    import gc
+
     import uvicorn
+    from threadpoolctl import threadpool_limits
 
     from service.app import create_app
 
     settings = _settings(host=host, port=port, store_dir=store_dir)
     if demo:
         ensure_demo(settings)
-    uvicorn.run(create_app(settings), host=settings.host, port=settings.port,
+    # One BLAS/OpenMP thread per server process: on small machines two pools fighting over two cores make
+    # the small products of the assign path erratic (threadpoolctl limits are process-wide).
+    threadpool_limits(limits=1)
+    app = create_app(settings)
+    gc.freeze()  # start-up objects (bundles, modules) out of the collector's way: fewer long GC pauses
+    uvicorn.run(app, host=settings.host, port=settings.port,
                 access_log=settings.access_log, log_level=settings.log_level)
 
 

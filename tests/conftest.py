@@ -25,7 +25,7 @@ def wine():
 
 def records_from(data, feature_names=None, id_prefix=None) -> list[dict]:
     """A scikit-learn Bunch or an array -> JSON records (plain floats)."""
-    values = data.data if hasattr(data, "data") else np.asarray(data)
+    values = np.asarray(data) if isinstance(data, (np.ndarray, list)) else data.data
     names = feature_names or list(getattr(data, "feature_names", [f"f{j}" for j in range(values.shape[1])]))
     rows = [dict(zip(names, map(float, row))) for row in values]
     if id_prefix is not None:

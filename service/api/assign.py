@@ -7,7 +7,7 @@ from typing import Any, Literal
 import anyio
 import numpy as np
 import orjson
-from fastapi import APIRouter, Depends, Query, Request
+from fastapi import APIRouter, Query, Request
 from fastapi.responses import Response
 
 from schemas import AssignResponse
@@ -15,10 +15,9 @@ from schemas.assign import AssignRequest
 from service.api.payload import check_name, read_batch, too_many_missing
 from service.core.assign import Assignment, assign, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
-from service.deps import AssignScope
+from service.deps import AssignScope, SettingsDep, StoreDep
 from service.errors import InvalidRecords
-from service.settings import Settings
-from service.store import FilesystemStore, LoadedVersion
+from service.store import LoadedVersion
 
 router = APIRouter(prefix="/segmentations", tags=["assign"])
 
@@ -77,24 +76,16 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
     ]
 
 
-async def _assign_scope(request: Request) -> None:
-    """``AssignScope``'s check, run on the event loop: FastAPI runs a plain ``def`` dependency in its thread
-    pool, a round trip that cost more than the whole single-record computation (bench/http)."""
-    AssignScope.dependency(request)
-
-
 @router.post("/{name}/assign", response_model=AssignResponse, openapi_extra=RECORDS_BODY,
-             dependencies=[Depends(_assign_scope)], summary="Assign records to segments")
+             dependencies=[AssignScope], summary="Assign records to segments")
 async def assign_records(
     name: str,
     request: Request,
+    settings: SettingsDep,
+    store: StoreDep,
     version: int | None = Query(None, ge=1, description="default: the live version"),
     on_error: Literal["fail", "skip"] = Query("fail", description="skip: answer for the good records"),
 ) -> Response:
-    # Settings and store straight from the app state (what SettingsDep and StoreDep return), for the same
-    # reason as _assign_scope: those dependencies are plain functions, each a thread-pool round trip.
-    settings: Settings = request.app.state.settings
-    store: FilesystemStore = request.app.state.store
     check_name(name)
     number = store.resolve_version(name, version)
     loaded = store.load(name, number)

@@ -9,7 +9,6 @@ from __future__ import annotations
 import hashlib
 import platform
 import warnings
-from dataclasses import replace
 from typing import Any
 
 import joblib

@@ -15,6 +15,7 @@ concurrent fits (threads or processes) never share a number.
 
 from __future__ import annotations
 
+import fcntl
 import hashlib
 import json
 import os
@@ -129,7 +130,12 @@ class FilesystemStore:
         self._cache_size = cache_size
         try:
             (self.root / "segmentations").mkdir(parents=True, exist_ok=True)
-            self._db().executescript(SCHEMA)  # idempotent; executescript manages its own transaction
+            # Switching to WAL needs an exclusive lock that SQLite's busy timeout does not wait for, so
+            # processes opening a new store at once take turns on a lock file. WAL then persists in the file.
+            with open(self.root / ".init.lock", "a") as lock:
+                fcntl.flock(lock, fcntl.LOCK_EX)
+                self._db().execute("PRAGMA journal_mode=WAL")
+                self._db().executescript(SCHEMA)  # idempotent; executescript manages its own transaction
         except (OSError, sqlite3.Error) as exc:
             raise StoreUnavailable(f"cannot open the store at {self.root}: {exc}") from None
 
@@ -138,7 +144,6 @@ class FilesystemStore:
         db = getattr(self._local, "db", None)
         if db is None:
             db = sqlite3.connect(self.root / "index.sqlite3", timeout=60, isolation_level=None)
-            db.execute("PRAGMA journal_mode=WAL")
             db.execute("PRAGMA synchronous=FULL")
             db.row_factory = sqlite3.Row
             self._local.db = db
