@@ -40,6 +40,7 @@ from sklearn.datasets import make_blobs
 from sklearn.pipeline import Pipeline
 from threadpoolctl import threadpool_info, threadpool_limits
 
+from machine import cpu_model, load_average  # bench/ is on sys.path when a script here runs
 from service.api.assign import build_results, run_assignment, split_good_rows
 from service.api.payload import too_many_missing
 from service.core.assign import assign, compile_bundle, impute
@@ -50,24 +51,6 @@ from service.store import LoadedVersion
 
 N_FEATURES, N_BLOBS, N_COMPONENTS = 20, 8, 5
 FEATURES = [f"f{j:02d}" for j in range(N_FEATURES)]
-
-
-def cpu_model() -> str:
-    try:
-        with open("/proc/cpuinfo") as handle:
-            for line in handle:
-                if line.startswith("model name"):
-                    return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
-
-
-def load_average() -> str:
-    try:
-        return " ".join(open("/proc/loadavg").read().split()[:3])
-    except OSError:
-        return "n/a"
 
 
 def interleaved(candidates: dict[str, Callable[[], object]], rounds: int, calls: int = 1) -> dict[str, tuple[float, float]]:

@@ -37,6 +37,7 @@ from sklearn.datasets import make_blobs
 from sklearn.pipeline import Pipeline
 from threadpoolctl import threadpool_limits
 
+from machine import cpu_model  # bench/ is on sys.path when a script here runs
 from service.app import create_app
 from service.core.assign import compile_bundle
 from service.core.bundle import FitConfig
@@ -60,17 +61,6 @@ def drifted_batch(rows: int, train_std: np.ndarray) -> np.ndarray:
     x[:, 3] += 0.5 * train_std[3]
     x[np.random.default_rng(3).random(rows) < 0.3, 7] = np.nan
     return x
-
-
-def cpu_model() -> str:
-    try:
-        with open("/proc/cpuinfo") as handle:
-            for line in handle:
-                if line.startswith("model name"):
-                    return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
 
 
 def median_time(fn, repeats: int) -> tuple[float, float, float]:

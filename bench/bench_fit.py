@@ -46,6 +46,7 @@ from sklearn.metrics import silhouette_score
 from sklearn.preprocessing import StandardScaler
 
 import service.core.fit as fit_module
+from machine import cpu_model  # bench/ is on sys.path when a script here runs
 from service.core.bundle import FitConfig
 from service.core.fit import fit_bundle
 
@@ -111,17 +112,6 @@ def direct_fit(x: np.ndarray) -> dict:
         curve.append((k, model.inertia_, silhouette_score(space, model.labels_, sample_size=sample,
                                                           random_state=cfg.seed)))
     return {"components": space.shape[1], "curve": curve}
-
-
-def cpu_model() -> str:
-    try:
-        with open("/proc/cpuinfo") as handle:
-            for line in handle:
-                if line.startswith("model name"):
-                    return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
 
 
 def timed(fn, x) -> tuple[float, float, dict]:

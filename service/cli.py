@@ -70,8 +70,6 @@ def main() -> None:
 @click.option("--demo", is_flag=True, help="fit the 'demo' segmentation from synthetic data if absent")
 def serve(host: str | None, port: int | None, store_dir: Path | None, demo: bool) -> None:
     """Run the HTTP API with uvicorn (one process)."""
-    import gc
-
     import uvicorn
     from threadpoolctl import threadpool_limits
 
@@ -83,9 +81,7 @@ def serve(host: str | None, port: int | None, store_dir: Path | None, demo: bool
     # One BLAS/OpenMP thread per server process: on small machines two pools fighting over two cores make
     # the small products of the assign path erratic (threadpoolctl limits are process-wide).
     threadpool_limits(limits=1)
-    app = create_app(settings)
-    gc.freeze()  # start-up objects (bundles, modules) out of the collector's way: fewer long GC pauses
-    uvicorn.run(app, host=settings.host, port=settings.port,
+    uvicorn.run(create_app(settings), host=settings.host, port=settings.port,
                 access_log=settings.access_log, log_level=settings.log_level)
 
 

@@ -45,6 +45,9 @@ class Settings(BaseSettings):
     drift_outlier_rate_watch_ratio: float = Field(1.5, gt=1)
     drift_residual_median_watch_ratio: float = Field(1.2, gt=1)
 
+    # Cyclic-GC generation-0 threshold set at start-up (Python's default is 700); 0 leaves the GC alone.
+    gc_gen0_threshold: int = Field(50_000, ge=0)
+
     access_log: bool = False
     log_level: str = "info"
 

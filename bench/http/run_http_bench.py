@@ -43,12 +43,13 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent.parent
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(HERE.parent))  # bench/, for the scripts' shared helpers
 
 import numpy as np  # noqa: E402
 import orjson  # noqa: E402
 from sklearn.datasets import make_blobs  # noqa: E402
 
-from bench.bench_assign import cpu_model, load_average  # noqa: E402  (the same machine description)
+from machine import cpu_model, load_average  # noqa: E402  (the same machine description)
 from service.core.bundle import FitConfig  # noqa: E402
 from service.core.fit import fit_bundle  # noqa: E402
 from service.store import FilesystemStore  # noqa: E402

@@ -12,7 +12,7 @@ from fastapi.responses import Response
 
 from schemas import AssignResponse
 from schemas.assign import AssignRequest
-from service.api.payload import check_name, read_batch, too_many_missing
+from service.api.payload import read_version_batch, request_body_openapi, too_many_missing
 from service.core.assign import Assignment, assign, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
 from service.deps import AssignScope, SettingsDep, StoreDep
@@ -21,15 +21,7 @@ from service.store import LoadedVersion
 
 router = APIRouter(prefix="/segmentations", tags=["assign"])
 
-RECORDS_BODY = {
-    "requestBody": {
-        "required": True,
-        "content": {
-            "application/json": {"schema": AssignRequest.model_json_schema(ref_template="#/components/schemas/{model}")},
-            "text/csv": {"schema": {"type": "string", "description": "header row, then one row per record"}},
-        },
-    }
-}
+RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per record")
 _REASONS = ([], ["distance"], ["residual"], ["distance", "residual"])
 _NO_IMPUTED: list[str] = []
 
@@ -86,12 +78,9 @@ async def assign_records(
     version: int | None = Query(None, ge=1, description="default: the live version"),
     on_error: Literal["fail", "skip"] = Query("fail", description="skip: answer for the good records"),
 ) -> Response:
-    check_name(name)
-    number = store.resolve_version(name, version)
-    loaded = store.load(name, number)
-    features = list(loaded.compiled.features)
-    batch = await read_batch(request, features, loaded.bundle.config.id_column,
-                             max_body=settings.max_body_bytes, max_rows=settings.max_assign_rows)
+    loaded, batch = await read_version_batch(request, store, name, version, max_body=settings.max_body_bytes,
+                                             max_rows=settings.max_assign_rows, echo_ids=True)
+    number, features = loaded.version, list(loaded.compiled.features)
     too_many_missing(batch, features)
     rows, errors = split_good_rows(batch, on_error == "skip")
     values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]

@@ -14,7 +14,7 @@ from fastapi.responses import Response
 from schemas import DriftReport, DriftReportList
 from schemas.assign import AssignRequest
 from service.api.assign import run_assignment, split_good_rows
-from service.api.payload import check_name, read_batch
+from service.api.payload import check_name, read_version_batch, request_body_openapi
 from service.core.drift import DriftRules, compute_drift, has_residual
 from service.core.frame import MAX_LISTED_PROBLEMS
 from service.deps import DriftScope, SettingsDep, StoreDep
@@ -27,15 +27,7 @@ router = APIRouter(prefix="/segmentations", tags=["drift"])
 DEFAULT_LIST_LIMIT = 20
 MAX_LIST_LIMIT = 500
 
-DRIFT_BODY = {
-    "requestBody": {
-        "required": True,
-        "content": {
-            "application/json": {"schema": AssignRequest.model_json_schema(ref_template="#/components/schemas/{model}")},
-            "text/csv": {"schema": {"type": "string", "description": "header row, then one row per record"}},
-        },
-    }
-}
+DRIFT_BODY = request_body_openapi(AssignRequest, "header row, then one row per record")
 
 
 def drift_rules(settings: Settings) -> DriftRules:
@@ -78,14 +70,10 @@ async def create_drift_report(
     version: int | None = Query(None, ge=1, description="default: the live version"),
     on_error: Literal["fail", "skip"] = Query("fail", description="skip: leave bad records out and list them"),
 ) -> Response:
-    check_name(name)
-    number = store.resolve_version(name, version)
-    loaded = store.load(name, number)
-    features = list(loaded.compiled.features)
     # Ids are not echoed in a drift report, so an id_column need not be present. Missing values are kept
     # (no "too many missing" rule as in assign): a feed sending nulls is what the missing-share test is for.
-    batch = await read_batch(request, features, None, max_body=settings.max_body_bytes,
-                             max_rows=settings.max_drift_rows)
+    loaded, batch = await read_version_batch(request, store, name, version, max_body=settings.max_body_bytes,
+                                             max_rows=settings.max_drift_rows, echo_ids=False)
     rows, errors = split_good_rows(batch, on_error == "skip")
     if rows.size < settings.drift_min_rows:
         usable = "usable records" if errors else "records"

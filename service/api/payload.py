@@ -9,8 +9,10 @@ from typing import Any
 import numpy as np
 import orjson
 from fastapi import Request
+from pydantic import BaseModel
 
 from service.core.frame import Batch, batch_from_frame, batch_from_json, read_csv
+from service.store import FilesystemStore, LoadedVersion
 from service.errors import BadBody, InvalidInput, PayloadTooLarge, RecordProblem
 
 NAME_PATTERN = re.compile(r"^[a-z0-9][a-z0-9_-]{0,62}$")
@@ -110,3 +112,27 @@ def too_many_missing(batch: Batch, features: list[str]) -> None:
     if added:
         batch.problems.extend(added)
         batch.problems.sort(key=lambda p: (p.record if p.record is not None else -1))
+
+
+def request_body_openapi(model: type[BaseModel], csv_description: str) -> dict[str, Any]:
+    """``openapi_extra`` for a route that reads its body itself: the JSON model, or CSV text."""
+    return {
+        "requestBody": {
+            "required": True,
+            "content": {
+                "application/json": {"schema": model.model_json_schema(ref_template="#/components/schemas/{model}")},
+                "text/csv": {"schema": {"type": "string", "description": csv_description}},
+            },
+        }
+    }
+
+
+async def read_version_batch(request: Request, store: FilesystemStore, name: str, version: int | None, *,
+                             max_body: int, max_rows: int, echo_ids: bool) -> tuple[LoadedVersion, Batch]:
+    """Resolve ``version`` (the live one by default), load it, and read the body as a Batch of its features."""
+    check_name(name)
+    loaded = store.load(name, store.resolve_version(name, version))
+    id_column = loaded.bundle.config.id_column if echo_ids else None
+    batch = await read_batch(request, list(loaded.compiled.features), id_column, max_body=max_body,
+                             max_rows=max_rows)
+    return loaded, batch

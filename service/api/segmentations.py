@@ -10,7 +10,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse
 
 from schemas import FitReport, FitRequest, LabelUpdate, LiveUpdate, Segment, SegmentationDetail, SegmentationList
-from service.api.payload import check_name, is_csv, parse_json, read_body, records_of
+from service.api.payload import check_name, is_csv, parse_json, read_body, records_of, request_body_openapi
 from service.api.validation import validate_model
 from service.core.bundle import FitConfig
 from service.core.fit import fit_bundle
@@ -26,16 +26,8 @@ from service.errors import InvalidInput, PayloadTooLarge, RecordProblem
 
 router = APIRouter(prefix="/segmentations", tags=["segmentations"])
 
-FIT_BODY = {
-    "requestBody": {
-        "required": True,
-        "content": {
-            "application/json": {"schema": FitRequest.model_json_schema(ref_template="#/components/schemas/{model}")},
-            "text/csv": {"schema": {"type": "string", "description": "header row, then one row per record; "
-                                    "parameters in the query string (features=a,b&k=2-10&components=none)"}},
-        },
-    }
-}
+FIT_BODY = request_body_openapi(FitRequest, "header row, then one row per record; parameters in the query "
+                                "string (features=a,b&k=2-10&components=none)")
 
 
 QUERY_PARAMETERS = frozenset(set(FitRequest.model_fields) - {"records"})
