@@ -34,6 +34,18 @@ def records_from(data, feature_names=None, id_prefix=None) -> list[dict]:
     return rows
 
 
+def walk_numbers(value):
+    """Every float inside a decoded JSON document (to check that none is NaN or infinite)."""
+    if isinstance(value, dict):
+        for v in value.values():
+            yield from walk_numbers(v)
+    elif isinstance(value, list):
+        for v in value:
+            yield from walk_numbers(v)
+    elif isinstance(value, float):
+        yield value
+
+
 @pytest.fixture
 def settings(tmp_path) -> Settings:
     return Settings(store_dir=tmp_path / "store")

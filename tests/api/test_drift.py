@@ -23,6 +23,7 @@ from sklearn.datasets import make_blobs
 from schemas import DriftReport
 from service.app import create_app
 from service.settings import Settings
+from tests.conftest import walk_numbers
 
 NAME = "shoppers"
 FEATURES = ["spend", "visits", "basket", "tenure"]
@@ -62,17 +63,6 @@ def stored(client, name=NAME, query=""):
     return response.json()["reports"]
 
 
-def _walk_numbers(value):
-    if isinstance(value, dict):
-        for v in value.values():
-            yield from _walk_numbers(v)
-    elif isinstance(value, list):
-        for v in value:
-            yield from _walk_numbers(v)
-    elif isinstance(value, float):
-        yield value
-
-
 @pytest.fixture
 def fitted(client):
     fit(client)
@@ -103,7 +93,7 @@ def test_post_drift_returns_the_contract_report_and_stores_it(fitted):
     # A batch from the training distribution: nothing material moved.
     assert report["status"] == "stable"
     # API.md: plain JSON numbers, never NaN or Infinity; the schema refuses both.
-    assert all(math.isfinite(v) for v in _walk_numbers(report))
+    assert all(math.isfinite(v) for v in walk_numbers(report))
     DriftReport.model_validate(report)
     assert stored(fitted) == [report]
 
@@ -149,7 +139,7 @@ def test_feature_filled_with_missing_values_alerts(fitted, how):
     assert (basket["missing_share"]["expected"], basket["missing_share"]["observed"]) == (0.0, 1.0)
     assert basket["mean_shift_sd"] is None and basket["p_value"] == 1.0
     assert report["status"] == "alert"
-    assert all(math.isfinite(v) for v in _walk_numbers(report))
+    assert all(math.isfinite(v) for v in walk_numbers(report))
 
 
 def test_doubled_segment_share_alerts(fitted):

@@ -23,7 +23,7 @@ from sklearn.preprocessing import StandardScaler
 
 from service.app import create_app
 from service.settings import Settings
-from tests.conftest import records_from
+from tests.conftest import records_from, walk_numbers
 
 NAME = "shop"
 REPORT_FIELDS = {
@@ -48,17 +48,6 @@ def iris_csv(iris) -> bytes:
     return frame.to_csv(index=False).encode()
 
 
-def _walk_numbers(value):
-    if isinstance(value, dict):
-        for v in value.values():
-            yield from _walk_numbers(v)
-    elif isinstance(value, list):
-        for v in value:
-            yield from _walk_numbers(v)
-    elif isinstance(value, float):
-        yield value
-
-
 # --------------------------------------------------------------------------- the report
 def test_fit_json_returns_the_report_per_api(client, iris):
     response = fit(client, NAME, {"records": records_from(iris, id_prefix="c"), "id_column": "id", "k": 3})
@@ -76,7 +65,7 @@ def test_fit_json_returns_the_report_per_api(client, iris):
         assert set(segment) >= {"id", "label", "size", "share", "distance_threshold", "centroid", "profile"}
         assert set(segment["profile"][iris.feature_names[0]]) == {"mean", "median", "std", "z"}
     # API.md: numbers are plain JSON numbers, never NaN or Infinity.
-    assert all(math.isfinite(v) for v in _walk_numbers(report))
+    assert all(math.isfinite(v) for v in walk_numbers(report))
     # Reference: sklearn KMeans(k=3, n_init=10, random_state=0) on StandardScaler -> PCA(0.9) space.
     space = PCA(n_components=0.9, svd_solver="full").fit_transform(StandardScaler().fit_transform(iris.data))
     reference = KMeans(n_clusters=3, n_init=10, random_state=0).fit(space)
