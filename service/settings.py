@@ -27,6 +27,7 @@ class Settings(BaseSettings):
     max_drift_rows: int = Field(1_000_000, ge=1)
     # Agglomerative clustering needs O(n^2) memory; above this many rows it is refused.
     max_agglomerative_rows: int = Field(20_000, ge=2)
+    max_k_candidates: int = Field(30, ge=1)   # size of a k range searched in one fit
     silhouette_sample: int = Field(10_000, ge=100)
     reference_sample: int = Field(5_000, ge=100)
     bundle_cache_size: int = Field(16, ge=1)

@@ -77,6 +77,10 @@ def _query_parameters(query: Mapping[str, str]) -> dict[str, Any]:
 def _fit_config(request_model: FitRequest, features: list[str], settings) -> FitConfig:
     k = request_model.k
     fixed = isinstance(k, int)
+    if not fixed and k.max - k.min + 1 > settings.max_k_candidates:
+        # Every candidate k is a full clustering fit: an unbounded range would let one request run for hours.
+        raise InvalidInput(f"the k range {k.min}-{k.max} has {k.max - k.min + 1} candidates; at most "
+                           f"{settings.max_k_candidates} (setting SEGSCORE_MAX_K_CANDIDATES)", field="k")
     return FitConfig(
         features=features,
         id_column=request_model.id_column,

@@ -22,6 +22,7 @@ import os
 import sqlite3
 import tempfile
 import threading
+import time
 import uuid
 from collections import OrderedDict
 from contextlib import contextmanager
@@ -136,8 +137,21 @@ class FilesystemStore:
                 fcntl.flock(lock, fcntl.LOCK_EX)
                 self._db().execute("PRAGMA journal_mode=WAL")
                 self._db().executescript(SCHEMA)  # idempotent; executescript manages its own transaction
+            self._remove_crash_leftovers()
         except (OSError, sqlite3.Error) as exc:
             raise StoreUnavailable(f"cannot open the store at {self.root}: {exc}") from None
+
+    def _remove_crash_leftovers(self, min_age_seconds: float = 3600.0) -> None:
+        """Delete temporary and staged files a killed writer left behind. Only old ones: a file younger than
+        ``min_age_seconds`` may belong to a fit that another process is writing right now."""
+        cutoff = time.time() - min_age_seconds
+        for pattern in (".tmp-*", ".staged-*"):
+            for path in (self.root / "segmentations").glob(f"*/{pattern}"):
+                try:
+                    if path.stat().st_mtime < cutoff:
+                        path.unlink()
+                except FileNotFoundError:
+                    pass
 
     # ----------------------------------------------------------------- connections
     def _db(self) -> sqlite3.Connection:

@@ -379,3 +379,21 @@ def test_csv_body_round_trips_through_pandas(client, iris):
     response = post_raw(client, NAME, body.getvalue().encode(), "text/csv", "?k=3")
     assert response.status_code == 201, response.text
     assert response.json()["imputation_medians"]["c"] == pytest.approx(frame["c"].median())
+
+
+def test_fit_rejects_a_k_range_with_more_candidates_than_allowed(tmp_path, iris):
+    # Each candidate k is a full fit; the range size is capped by a setting (SEGSCORE_MAX_K_CANDIDATES).
+    from fastapi.testclient import TestClient
+
+    from service.app import create_app
+    from service.settings import Settings
+
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store", max_k_candidates=3))) as small:
+        records = records_from(iris, ["a", "b", "c", "d"])
+        response = small.post("/v1/segmentations/capped/fit", json={"records": records, "k": {"min": 2, "max": 5}})
+        assert response.status_code == 422
+        assert response.json()["detail"][0]["field"] == "k"
+        assert "at most 3" in response.json()["detail"][0]["message"]
+        assert small.get("/v1/segmentations").json()["segmentations"] == []
+        ok = small.post("/v1/segmentations/capped/fit", json={"records": records, "k": {"min": 2, "max": 4}})
+        assert ok.status_code == 201

@@ -314,3 +314,24 @@ def test_ten_threads_saving_to_one_store_get_versions_1_to_10(store, bundles):
         versions = list(pool.map(lambda i: store.save_version("shop", bundles[i % 2], make_live=None)["version"],
                                  range(10)))
     assert sorted(versions) == list(range(1, 11))
+
+
+def test_opening_a_store_removes_old_crash_leftovers_only(tmp_path):
+    # Files a SIGKILLed writer leaves (temp and staged artifacts) are never listed; an old one is deleted
+    # when a store opens, a fresh one is kept because another process may still be writing it.
+    import os
+    import time
+
+    root = tmp_path / "store"
+    FilesystemStore(root)
+    folder = root / "segmentations" / "shop"
+    folder.mkdir(parents=True)
+    old_tmp, old_staged, fresh = folder / ".tmp-a.joblib", folder / ".staged-b.joblib", folder / ".tmp-c.json"
+    for path in (old_tmp, old_staged, fresh):
+        path.write_bytes(b"partial")
+    two_hours_ago = time.time() - 7200
+    for path in (old_tmp, old_staged):
+        os.utime(path, (two_hours_ago, two_hours_ago))
+    FilesystemStore(root)
+    assert not old_tmp.exists() and not old_staged.exists()
+    assert fresh.exists()
