@@ -23,21 +23,16 @@ def fit_csv_into_store(settings: Settings, name: str, csv_bytes: bytes, params: 
     """Fit a CSV file into the store with the same checks as the HTTP fit endpoint."""
     from schemas import FitRequest
     from service.api.payload import check_name
-    from service.api.segmentations import _fit_config, _resolve_features, csv_feature_candidates
+    from service.api.segmentations import training_inputs
     from service.api.validation import validate_model
     from service.core.fit import fit_bundle
-    from service.core.frame import batch_from_frame, read_csv
+    from service.core.frame import read_csv
     from service.store import FilesystemStore
 
     check_name(name)
     request = validate_model(FitRequest, params)
-    frame = read_csv(csv_bytes)
-    features = _resolve_features(request.features, list(frame.columns),
-                                 csv_feature_candidates(frame, request.id_column), request.id_column)
-    batch = batch_from_frame(frame, features, request.id_column)
-    batch.raise_if_problems()
-    bundle = fit_bundle(batch.values, _fit_config(request, features, settings),
-                        max_agglomerative_rows=settings.max_agglomerative_rows)
+    values, config = training_inputs(request, settings, frame=read_csv(csv_bytes))
+    bundle = fit_bundle(values, config, max_agglomerative_rows=settings.max_agglomerative_rows)
     store = FilesystemStore(settings.store_dir, cache_size=settings.bundle_cache_size)
     return store.save_version(name, bundle, make_live=request.make_live)
 

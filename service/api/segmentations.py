@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any, Mapping
 
 import anyio
+import numpy as np
 import pandas as pd
 from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse
@@ -170,32 +171,41 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
     return JSONResponse(report, status_code=201)
 
 
-def _prepare_fit(body: bytes, csv: bool, query: Mapping[str, str], settings) -> tuple[Any, FitConfig, bool | None]:
-    """A fit body (JSON, or CSV with parameters in the query) -> (training matrix, config, make_live)."""
-    if csv:
-        params = validate_model(FitRequest, _query_parameters(query))
-        frame = read_csv(body)
-        n_rows = len(frame)
-        available = list(frame.columns)
-        numeric = csv_feature_candidates(frame, params.id_column)
+def training_inputs(params: FitRequest, settings, *, frame: pd.DataFrame | None = None,
+                    records: list[Any] | None = None) -> tuple[np.ndarray, FitConfig]:
+    """The checked training matrix and the fit config, from a CSV frame or from JSON records (give one).
+
+    Shared by the HTTP endpoint and ``segscore fit``, so both apply the same limits and checks."""
+    if frame is not None:
+        n_rows, available = len(frame), list(frame.columns)
+        candidates = csv_feature_candidates(frame, params.id_column)
     else:
-        document = parse_json(body)
-        records = records_of(document)
-        params = validate_model(FitRequest, {k: v for k, v in document.items() if k != "records"})
-        n_rows = len(records)
-        available = json_columns(records)
-        numeric = json_feature_candidates(records, params.id_column)
+        n_rows, available = len(records), json_columns(records)
+        candidates = json_feature_candidates(records, params.id_column)
     if n_rows > settings.max_fit_rows:
         raise PayloadTooLarge(f"{n_rows} records; the fit limit is {settings.max_fit_rows}")
     if n_rows == 0:
         raise InvalidInput("no records to fit", field="records")
-    features = _resolve_features(params.features, available, numeric, params.id_column)
-    if csv:
+    features = _resolve_features(params.features, available, candidates, params.id_column)
+    if frame is not None:
         batch = batch_from_frame(frame, features, params.id_column)
     else:
         batch = batch_from_json(records, features, params.id_column)
     batch.raise_if_problems()
-    return batch.values, _fit_config(params, features, settings), params.make_live
+    return batch.values, _fit_config(params, features, settings)
+
+
+def _prepare_fit(body: bytes, csv: bool, query: Mapping[str, str], settings) -> tuple[Any, FitConfig, bool | None]:
+    """A fit body (JSON, or CSV with parameters in the query) -> (training matrix, config, make_live)."""
+    if csv:
+        params = validate_model(FitRequest, _query_parameters(query))
+        values, config = training_inputs(params, settings, frame=read_csv(body))
+    else:
+        document = parse_json(body)
+        records = records_of(document)
+        params = validate_model(FitRequest, {k: v for k, v in document.items() if k != "records"})
+        values, config = training_inputs(params, settings, records=records)
+    return values, config, params.make_live
 
 
 @router.get("", response_model=SegmentationList, dependencies=[ReadScope], summary="List segmentations")

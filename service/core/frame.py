@@ -95,18 +95,6 @@ def json_columns(records: Sequence[Any]) -> list[str]:
     return list(seen)
 
 
-def numeric_json_columns(records: Sequence[Any], exclude: str | None) -> list[str]:
-    """Columns whose present values are all numbers (bools excluded), in order of appearance."""
-    numeric = []
-    for name in json_columns(records):
-        if name == exclude:
-            continue
-        kinds = {type(r.get(name)) for r in records if isinstance(r, dict)}
-        if kinds <= _NUMBER_TYPES and kinds != {type(None)}:
-            numeric.append(name)
-    return numeric
-
-
 def _table(rows: list[dict[str, Any]], features: Sequence[str]) -> list[tuple[Any, ...]]:
     """One tuple of feature values per record (None where a key is absent)."""
     if len(features) > 1:       # itemgetter of a single key returns the value itself, not a tuple

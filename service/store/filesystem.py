@@ -262,15 +262,9 @@ class FilesystemStore:
     def save_drift_report(self, report: dict[str, Any]) -> None:
         """Append a drift report; its ``seq`` (autoincrement, under the write lock) orders the list."""
         text = json.dumps(report, allow_nan=False)  # the contract has no NaN/Infinity; fail before writing
-        try:
-            with self._transaction() as db:
-                db.execute("INSERT INTO drift_reports (id, name, version, created_at, report) VALUES (?, ?, ?, ?, ?)",
-                           (report["id"], report["name"], report["version"], report["created_at"], text))
-        except sqlite3.Error as exc:
-            db = self._db()
-            if db.in_transaction:  # a failed COMMIT leaves the transaction open on this thread's connection
-                db.execute("ROLLBACK")
-            raise StoreUnavailable(f"the drift report could not be stored: {exc}") from None
+        with self._writing(f"a drift report of '{report['name']}'") as db:
+            db.execute("INSERT INTO drift_reports (id, name, version, created_at, report) VALUES (?, ?, ?, ?, ?)",
+                       (report["id"], report["name"], report["version"], report["created_at"], text))
 
     # ----------------------------------------------------------------- reads
     def _require_version(self, db: sqlite3.Connection, name: str, version: int) -> sqlite3.Row:
