@@ -28,25 +28,38 @@ SettingsDep = Annotated[Settings, Depends(get_app_settings)]
 StoreDep = Annotated[FilesystemStore, Depends(get_store)]
 
 
+def authorize(request: Request, key: str | None, scope: str) -> None:
+    """Raise unless ``key`` is a known API key carrying ``scope`` (no-op when auth is off).
+
+    The one place that decides whether a key may do something: the API's bearer header and any other
+    caller that holds a key (a console session, say) go through here.
+    """
+    settings: Settings = request.app.state.settings
+    if not settings.auth_enabled:
+        return
+    if not key:
+        raise MissingKey()
+    scopes = None
+    for known, granted in settings.api_keys.items():
+        if hmac.compare_digest(known.encode(), key.strip().encode()):
+            scopes = granted
+    if scopes is None:
+        raise MissingKey()
+    if scope not in scopes:
+        raise ScopeDenied(scope)
+
+
+def bearer_key(request: Request) -> str | None:
+    """The key of an ``Authorization: Bearer <key>`` header, or None."""
+    scheme, _, key = request.headers.get("authorization", "").partition(" ")
+    return key.strip() or None if scheme.lower() == "bearer" else None
+
+
 def require_scope(scope: str) -> Any:
     """Dependency factory: the request's bearer key must carry ``scope`` (no-op when auth is off)."""
 
     async def check(request: Request) -> None:
-        settings: Settings = request.app.state.settings
-        if not settings.auth_enabled:
-            return
-        header = request.headers.get("authorization", "")
-        scheme, _, key = header.partition(" ")
-        if scheme.lower() != "bearer" or not key:
-            raise MissingKey()
-        scopes = None
-        for known, granted in settings.api_keys.items():
-            if hmac.compare_digest(known.encode(), key.strip().encode()):
-                scopes = granted
-        if scopes is None:
-            raise MissingKey()
-        if scope not in scopes:
-            raise ScopeDenied(scope)
+        authorize(request, bearer_key(request), scope)
 
     return Depends(check)
 

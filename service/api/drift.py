@@ -15,7 +15,7 @@ from schemas import DriftReport, DriftReportList
 from schemas.assign import AssignRequest
 from service.api.assign import run_assignment, split_good_rows
 from service.api.payload import check_name, read_version_batch, request_body_openapi
-from service.core.drift import DriftRules, compute_drift, has_residual
+from service.core.drift import DriftRules, compute_drift
 from service.core.frame import MAX_LISTED_PROBLEMS
 from service.deps import DriftScope, SettingsDep, StoreDep
 from service.errors import InvalidInput, RecordProblem
@@ -51,7 +51,7 @@ def build_and_store(store: FilesystemStore, loaded: LoadedVersion, values, rules
     """Assign (fast path), compute the report, check it against the schema, store it. CPU-bound: run in a thread."""
     assignment, _ = run_assignment(loaded, values)
     body = compute_drift(loaded.bundle.reference, loaded.bundle.features, values, assignment, rules=rules,
-                         residual_available=has_residual(loaded.bundle))
+                         residual_available=loaded.compiled.has_residual)
     report = {"id": uuid.uuid4().hex, "name": loaded.name, "version": loaded.version, "created_at": _now(),
               **body, "skipped_records": len({e["record"] for e in errors}), "errors": errors[:MAX_LISTED_PROBLEMS]}
     # A report that breaks the contract (e.g. a NaN) fails here, before anything is stored.

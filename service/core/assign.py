@@ -72,6 +72,10 @@ class CompiledBundle:
     def offset(self) -> np.ndarray:
         return self.projection_offset[: self.n_dims]
 
+    def project(self, values: np.ndarray) -> np.ndarray:
+        """(n, p) imputed raw rows (no NaN) -> (n, d) coordinates in the clustering space."""
+        return values @ self.affine + self.offset
+
 
 @dataclass(frozen=True)
 class Assignment:

@@ -355,12 +355,8 @@ def compute_drift(reference: ReferenceProfile, features: Sequence[str], values: 
     }
 
 
-def has_residual(bundle: Bundle) -> bool:
-    return bundle.pca is not None and int(bundle.pca.n_components_) < len(bundle.features)
-
-
 def drift_of_batch(bundle: Bundle, compiled: CompiledBundle, values: np.ndarray, rules: DriftRules) -> dict[str, Any]:
     """``compute_drift`` with the assignment done here (impute with training medians, fast path)."""
     filled, _ = impute(compiled, values)
     return compute_drift(bundle.reference, bundle.features, values, assign(compiled, filled), rules=rules,
-                         residual_available=has_residual(bundle))
+                         residual_available=compiled.has_residual)
