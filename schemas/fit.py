@@ -85,6 +85,12 @@ class Quality(BaseModel):
     centroid_agreement: float
 
 
+class FitWarning(BaseModel):
+    kind: Literal["dropped_feature", "fewer_clusters", "empty_segment", "tiny_segment", "k_at_range_edge"]
+    field: str | None = Field(description="the feature, 'k', or 'segments.<id>' the warning is about")
+    message: str
+
+
 class FitReport(BaseModel):
     name: str
     version: int
@@ -109,13 +115,24 @@ class FitReport(BaseModel):
     data_sha256: str
     bundle_sha256: str
     library_versions: dict[str, str]
+    warnings: list[FitWarning] = Field(default_factory=list, description=(
+        "what the caller should know about a valid fit: default features dropped (all missing or constant), "
+        "empty or tiny segments, fewer distinct clusters than k, k at the edge of the searched range; [] if none"))
 
 
 class LiveUpdate(BaseModel):
     model_config = ConfigDict(extra="forbid")
-    version: int = Field(ge=1)
+    version: int = Field(ge=1, le=2**31 - 1, strict=True)
 
 
 class LabelUpdate(BaseModel):
     model_config = ConfigDict(extra="forbid")
     label: str | None = Field(max_length=200)
+
+    @field_validator("label")
+    @classmethod
+    def _valid_unicode(cls, value: str | None) -> str | None:
+        # A lone surrogate (JSON "\ud800") is not text: no answer or stored report could carry it.
+        if value is not None and any("\ud800" <= ch <= "\udfff" for ch in value):
+            raise ValueError("the label holds a lone UTF-16 surrogate: not valid Unicode text")
+        return value

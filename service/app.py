@@ -27,6 +27,7 @@ from service.errors import (
     ScopeDenied,
     ServiceError,
     StoreUnavailable,
+    UnsupportedMediaType,
 )
 from service.metrics import Metrics, MetricsMiddleware
 from service.settings import Settings, get_settings
@@ -43,6 +44,7 @@ STATUS_BY_ERROR: dict[type[ServiceError], int] = {
     NotFound: 404,
     Conflict: 409,
     PayloadTooLarge: 413,
+    UnsupportedMediaType: 415,
     InvalidInput: 422,
     BundleCorrupt: 500,
     StoreUnavailable: 503,
@@ -86,6 +88,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     @asynccontextmanager
     async def lifespan(app: FastAPI):
         app.state.fit_limiter = anyio.CapacityLimiter(settings.fit_concurrency)
+        # Bodies over large_body_bytes are read and parsed by at most this many requests at once; the others
+        # wait their turn before their body is read, so memory stays bounded (see README, "Limits").
+        app.state.large_body_limiter = anyio.CapacityLimiter(settings.large_body_concurrency)
         if settings.gc_gen0_threshold:
             # A 10,000-record body is ~20,000 new containers; at Python's default gen-0 threshold (700) the
             # cyclic collector runs dozens of times per request and now and then walks the whole heap.

@@ -12,6 +12,7 @@
     ├── Conflict
     │   └── NoLiveVersion
     ├── PayloadTooLarge
+    ├── UnsupportedMediaType     body neither JSON nor CSV
     ├── InvalidInput             well-formed body, unusable content
     │   ├── InvalidRecords       per-record problems (index and field)
     │   └── FeatureMismatch      columns the version needs are absent
@@ -95,6 +96,14 @@ class NoLiveVersion(Conflict):
 
 class PayloadTooLarge(ServiceError):
     """The request is larger than the configured limit."""
+
+
+class UnsupportedMediaType(ServiceError):
+    """The body must be JSON ('Content-Type: application/json') or CSV ('Content-Type: text/csv')."""
+
+    def __init__(self, content_type: str) -> None:
+        shown = repr(content_type) if content_type else "none"
+        super().__init__(f"unsupported Content-Type {shown}; send 'application/json' or 'text/csv'")
 
 
 @dataclass(frozen=True)

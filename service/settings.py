@@ -28,6 +28,12 @@ class Settings(BaseSettings):
     # Agglomerative clustering needs O(n^2) memory; above this many rows it is refused.
     max_agglomerative_rows: int = Field(20_000, ge=2)
     max_k_candidates: int = Field(30, ge=1)   # size of a k range searched in one fit
+    max_k: int = Field(100, ge=2)             # largest k (or top of a k range) a fit may ask for
+    max_features: int = Field(1_000, ge=1)    # most feature columns in one fit
+    # Bodies larger than this are parsed in a worker thread (never on the event loop), and at most
+    # large_body_concurrency such requests are read and parsed at once (the others wait).
+    large_body_bytes: int = Field(1024 * 1024, ge=1024)
+    large_body_concurrency: int = Field(2, ge=1)
     silhouette_sample: int = Field(10_000, ge=100)
     reference_sample: int = Field(5_000, ge=100)
     bundle_cache_size: int = Field(16, ge=1)

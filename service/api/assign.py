@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 import anyio
 import numpy as np
@@ -13,13 +13,14 @@ from fastapi.responses import Response
 from schemas import AssignResponse
 from schemas.assign import AssignRequest
 from service.api.payload import read_version_batch, request_body_openapi, too_many_missing
+from service.api.validation import StrictQuery, VersionNumber
 from service.core.assign import Assignment, assign, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
 from service.deps import AssignScope, SettingsDep, StoreDep
 from service.errors import InvalidRecords
 from service.store import LoadedVersion
 
-router = APIRouter(prefix="/segmentations", tags=["assign"])
+router = APIRouter(prefix="/segmentations", tags=["assign"], dependencies=[StrictQuery])
 
 RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per record")
 _REASONS = ([], ["distance"], ["residual"], ["distance", "residual"])
@@ -75,10 +76,10 @@ async def assign_records(
     request: Request,
     settings: SettingsDep,
     store: StoreDep,
-    version: int | None = Query(None, ge=1, description="default: the live version"),
-    on_error: Literal["fail", "skip"] = Query("fail", description="skip: answer for the good records"),
+    version: Annotated[VersionNumber | None, Query(description="default: the live version")] = None,
+    on_error: Annotated[Literal["fail", "skip"], Query(description="skip: answer for the good records")] = "fail",
 ) -> Response:
-    loaded, batch = await read_version_batch(request, store, name, version, max_body=settings.max_body_bytes,
+    loaded, batch = await read_version_batch(request, store, name, version, settings=settings,
                                              max_rows=settings.max_assign_rows, echo_ids=True)
     number, features = loaded.version, list(loaded.compiled.features)
     too_many_missing(batch, features)

@@ -4,17 +4,19 @@ from __future__ import annotations
 
 import uuid
 from datetime import datetime, timezone
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 import anyio
 import orjson
 from fastapi import APIRouter, Query, Request
+from pydantic import BeforeValidator
 from fastapi.responses import Response
 
 from schemas import DriftReport, DriftReportList
 from schemas.assign import AssignRequest
 from service.api.assign import run_assignment, split_good_rows
 from service.api.payload import check_name, read_version_batch, request_body_openapi
+from service.api.validation import StrictQuery, VersionNumber, plain_decimal
 from service.core.drift import DriftRules, compute_drift
 from service.core.frame import MAX_LISTED_PROBLEMS
 from service.deps import DriftScope, SettingsDep, StoreDep
@@ -22,7 +24,7 @@ from service.errors import InvalidInput, RecordProblem
 from service.settings import Settings
 from service.store import FilesystemStore, LoadedVersion
 
-router = APIRouter(prefix="/segmentations", tags=["drift"])
+router = APIRouter(prefix="/segmentations", tags=["drift"], dependencies=[StrictQuery])
 
 DEFAULT_LIST_LIMIT = 20
 MAX_LIST_LIMIT = 500
@@ -67,12 +69,13 @@ async def create_drift_report(
     request: Request,
     settings: SettingsDep,
     store: StoreDep,
-    version: int | None = Query(None, ge=1, description="default: the live version"),
-    on_error: Literal["fail", "skip"] = Query("fail", description="skip: leave bad records out and list them"),
+    version: Annotated[VersionNumber | None, Query(description="default: the live version")] = None,
+    on_error: Annotated[Literal["fail", "skip"],
+                        Query(description="skip: leave bad records out and list them")] = "fail",
 ) -> Response:
     # Ids are not echoed in a drift report, so an id_column need not be present. Missing values are kept
     # (no "too many missing" rule as in assign): a feed sending nulls is what the missing-share test is for.
-    loaded, batch = await read_version_batch(request, store, name, version, max_body=settings.max_body_bytes,
+    loaded, batch = await read_version_batch(request, store, name, version, settings=settings,
                                              max_rows=settings.max_drift_rows, echo_ids=False)
     rows, errors = split_good_rows(batch, on_error == "skip")
     if rows.size < settings.drift_min_rows:
@@ -91,8 +94,9 @@ async def create_drift_report(
 async def list_drift_reports(
     name: str,
     store: StoreDep,
-    version: int | None = Query(None, ge=1, description="only reports computed against this version"),
-    limit: int = Query(DEFAULT_LIST_LIMIT, ge=1, le=MAX_LIST_LIMIT, description="at most this many reports"),
+    version: Annotated[VersionNumber | None, Query(description="only reports computed against this version")] = None,
+    limit: Annotated[int, BeforeValidator(plain_decimal),
+                     Query(ge=1, le=MAX_LIST_LIMIT, description="at most this many reports")] = DEFAULT_LIST_LIMIT,
 ) -> Response:
     check_name(name)
 

@@ -2,36 +2,71 @@
 
 from __future__ import annotations
 
-from typing import Any, Mapping
+from typing import Annotated, Any, Mapping
 
 import anyio
 import numpy as np
 import pandas as pd
-from fastapi import APIRouter, Request
+from fastapi import APIRouter, Path, Request
 from fastapi.responses import JSONResponse
 
 from schemas import FitReport, FitRequest, LabelUpdate, LiveUpdate, Segment, SegmentationDetail, SegmentationList
-from service.api.payload import check_name, is_csv, parse_json, read_body, records_of, request_body_openapi
-from service.api.validation import validate_model
+from service.api.payload import (
+    body_kind,
+    check_json_rows,
+    check_name,
+    large_body_slot,
+    parse_json,
+    read_body,
+    records_of,
+    request_body_openapi,
+)
+from service.api.validation import (
+    SegmentNumber,
+    StrictQuery,
+    VersionNumber,
+    printable,
+    unknown_query_problem,
+    validate_model,
+)
 from service.core.bundle import FitConfig
-from service.core.fit import fit_bundle
+from service.core.fit import fit_bundle, unusable_features
 from service.core.frame import (
     batch_from_frame,
     batch_from_json,
+    did_you_mean,
     json_columns,
     numeric_csv_columns,
+    one_edit_apart,
     read_csv,
 )
 from service.deps import FitScope, ReadScope, SettingsDep, StoreDep
 from service.errors import InvalidInput, PayloadTooLarge, RecordProblem
 
-router = APIRouter(prefix="/segmentations", tags=["segmentations"])
-
-FIT_BODY = request_body_openapi(FitRequest, "header row, then one row per record; parameters in the query "
-                                "string (features=a,b&k=2-10&components=none)")
-
+router = APIRouter(prefix="/segmentations", tags=["segmentations"], dependencies=[StrictQuery])
 
 QUERY_PARAMETERS = frozenset(set(FitRequest.model_fields) - {"records"})
+
+
+def _csv_query_parameters_openapi() -> list[dict[str, Any]]:
+    """The CSV form's fit parameters as OpenAPI query parameters (the JSON form takes them in the body)."""
+    described = {
+        "features": "comma-separated columns (default: every numeric column except id_column)",
+        "k": "an int, or a range like 2-10",
+        "components": "an int, a variance share in (0, 1), or 'none'",
+    }
+    parameters = []
+    for name in sorted(QUERY_PARAMETERS):
+        field = FitRequest.model_fields[name]
+        text = described.get(name) or field.description or f"as the JSON body's '{name}'"
+        parameters.append({"name": name, "in": "query", "required": False, "schema": {"type": "string"},
+                           "description": f"text/csv bodies only: {text}"})
+    return parameters
+
+
+FIT_BODY = {**request_body_openapi(FitRequest, "header row, then one row per record; parameters in the query "
+                                   "string (features=a,b&k=2-10&components=none)"),
+            "parameters": _csv_query_parameters_openapi()}
 
 
 def _query_parameters(query: Mapping[str, str]) -> dict[str, Any]:
@@ -40,8 +75,7 @@ def _query_parameters(query: Mapping[str, str]) -> dict[str, Any]:
     if unknown:
         # The CSV twin of the JSON body's "extra fields are not permitted": a misspelt option must not be
         # silently replaced by its default.
-        raise InvalidInput([RecordProblem(None, key, f"unknown query parameter; known: {sorted(QUERY_PARAMETERS)}")
-                            for key in unknown])
+        raise InvalidInput([unknown_query_problem(key, QUERY_PARAMETERS) for key in unknown])
     params: dict[str, Any] = {}
     for key in ("id_column", "scaling", "method", "linkage", "selection"):
         if key in query:
@@ -75,9 +109,15 @@ def _query_parameters(query: Mapping[str, str]) -> dict[str, Any]:
     return params
 
 
-def _fit_config(request_model: FitRequest, features: list[str], settings) -> FitConfig:
+def _fit_config(request_model: FitRequest, features: list[str], settings,
+                dropped: tuple[tuple[str, str], ...] = ()) -> FitConfig:
     k = request_model.k
     fixed = isinstance(k, int)
+    top = k if fixed else k.max
+    if top > settings.max_k:
+        # Each k is a clustering fit whose cost grows with k; k = 5000 would hold up every other fit for minutes.
+        raise InvalidInput(f"k (or the top of the k range) is {top}; at most {settings.max_k} "
+                           "(setting SEGSCORE_MAX_K)", field="k")
     if not fixed and k.max - k.min + 1 > settings.max_k_candidates:
         # Every candidate k is a full clustering fit: an unbounded range would let one request run for hours.
         raise InvalidInput(f"the k range {k.min}-{k.max} has {k.max - k.min + 1} candidates; at most "
@@ -98,6 +138,8 @@ def _fit_config(request_model: FitRequest, features: list[str], settings) -> Fit
         outlier_quantile=request_model.outlier_quantile,
         silhouette_sample=settings.silhouette_sample,
         reference_sample=settings.reference_sample,
+        make_live=request_model.make_live,
+        dropped_features=dropped,
     )
 
 
@@ -111,7 +153,24 @@ def json_feature_candidates(records: list[Any], id_column: str | None) -> list[s
     for name in json_columns(records):
         if name != id_column and any(type(r.get(name)) in (int, float) for r in records if isinstance(r, dict)):
             candidates.append(name)
+    _refuse_split_columns(records, candidates)
     return candidates
+
+
+def _refuse_split_columns(records: list[Any], columns: list[str]) -> None:
+    """Two columns one edit apart that never appear in the same record are one column with a typo in some
+    records (``tenure_month`` / ``tenure_months``): a 422 naming both, not two half-missing features."""
+    close = [(a, b) for i, a in enumerate(columns) for b in columns[i + 1:] if one_edit_apart(a, b)]
+    if not close:
+        return
+    rows = [r for r in records if isinstance(r, dict)]
+    problems = []
+    for a, b in close:
+        if not any(a in r and b in r for r in rows):
+            problems.append(RecordProblem(None, b, f"column {b!r} is one edit away from {a!r} and no record has "
+                                          "both: a typo in some records? Use one name (or list 'features')"))
+    if problems:
+        raise InvalidInput(problems)
 
 
 def csv_feature_candidates(frame: pd.DataFrame, id_column: str | None) -> list[str]:
@@ -143,7 +202,9 @@ def _resolve_features(requested: list[str] | None, available: list[str], numeric
     unknown = [f for f in requested if f not in available]
     if unknown:
         shown = ", ".join(sorted(available)[:30])
-        problems.append(RecordProblem(None, "features", f"unknown column(s) {unknown}; available: {shown}"))
+        hints = "".join(did_you_mean(f, available) for f in unknown[:5])
+        problems.append(RecordProblem(None, "features", f"unknown column(s) {[printable(f) for f in unknown]}; "
+                                      f"available: {shown}{hints}"))
     if id_column is not None and id_column in requested:
         problems.append(RecordProblem(None, "features", f"id_column {id_column!r} cannot also be a feature"))
     if len(set(requested)) != len(requested):
@@ -157,10 +218,17 @@ def _resolve_features(requested: list[str] | None, available: list[str], numeric
              dependencies=[FitScope], summary="Fit a new version from records")
 async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep) -> JSONResponse:
     check_name(name)
-    body = await read_body(request, settings.max_body_bytes)
-    # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
-    values, config, make_live = await anyio.to_thread.run_sync(
-        _prepare_fit, body, is_csv(request), request.query_params, settings)
+    csv = body_kind(request) == "csv"
+    if not csv and request.query_params:
+        # A JSON body carries its parameters; a ?k=3 beside it would otherwise be ignored without a word.
+        raise InvalidInput([RecordProblem(None, printable(key), "a JSON fit takes its parameters in the body; "
+                                          "query parameters are for text/csv bodies")
+                            for key in dict.fromkeys(request.query_params.keys())])
+    async with large_body_slot(request, settings):
+        body = await read_body(request, settings.max_body_bytes)
+        # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
+        values, config, make_live = await anyio.to_thread.run_sync(
+            _prepare_fit, body, csv, request.query_params, settings)
 
     def fit_and_save() -> dict[str, Any]:
         bundle = fit_bundle(values, config, max_agglomerative_rows=settings.max_agglomerative_rows)
@@ -187,22 +255,40 @@ def training_inputs(params: FitRequest, settings, *, frame: pd.DataFrame | None 
     if n_rows == 0:
         raise InvalidInput("no records to fit", field="records")
     features = _resolve_features(params.features, available, candidates, params.id_column)
+    if len(features) > settings.max_features:
+        raise InvalidInput(f"{len(features)} features; at most {settings.max_features} per fit (setting "
+                           "SEGSCORE_MAX_FEATURES); name the ones to use in 'features'", field="features")
     if frame is not None:
         batch = batch_from_frame(frame, features, params.id_column)
     else:
         batch = batch_from_json(records, features, params.id_column)
     batch.raise_if_problems()
-    return batch.values, _fit_config(params, features, settings)
+    values, dropped = batch.values, ()
+    if params.features is None and n_rows >= 2:
+        # Default features: columns with no information (all missing, constant or near-constant) are dropped
+        # and listed in the report's warnings. Named features are checked (and refused) by the fit itself.
+        unusable = unusable_features(values, features)
+        if unusable:
+            keep = [j for j, f in enumerate(features) if f not in unusable]
+            if not keep:
+                raise InvalidInput([RecordProblem(None, f, f"feature cannot be used: {why}")
+                                    for f, why in unusable.items()])
+            dropped = tuple(unusable.items())
+            features, values = [features[j] for j in keep], values[:, keep]
+    return values, _fit_config(params, features, settings, dropped)
 
 
 def _prepare_fit(body: bytes, csv: bool, query: Mapping[str, str], settings) -> tuple[Any, FitConfig, bool | None]:
     """A fit body (JSON, or CSV with parameters in the query) -> (training matrix, config, make_live)."""
     if csv:
         params = validate_model(FitRequest, _query_parameters(query))
-        values, config = training_inputs(params, settings, frame=read_csv(body))
+        frame = read_csv(body, params.id_column, max_rows=settings.max_fit_rows)
+        values, config = training_inputs(params, settings, frame=frame)
     else:
+        # Records are counted on the bytes first: a body of millions of tiny records never becomes objects.
+        check_json_rows(body, settings.max_fit_rows, allowance=settings.max_features + 2)
         document = parse_json(body)
-        records = records_of(document)
+        records = records_of(document, allowed_keys=None)    # other keys: checked by FitRequest (extra=forbid)
         params = validate_model(FitRequest, {k: v for k, v in document.items() if k != "records"})
         values, config = training_inputs(params, settings, records=records)
     return values, config, params.make_live
@@ -221,7 +307,7 @@ def get_segmentation(name: str, store: StoreDep) -> dict[str, Any]:
 
 @router.get("/{name}/versions/{version}", response_model=FitReport, dependencies=[ReadScope],
             summary="The fit report of one version")
-def get_version(name: str, version: int, store: StoreDep) -> dict[str, Any]:
+def get_version(name: str, version: Annotated[VersionNumber, Path()], store: StoreDep) -> dict[str, Any]:
     return store.version_report(check_name(name), version)
 
 
@@ -233,5 +319,6 @@ def set_live(name: str, update: LiveUpdate, store: StoreDep) -> dict[str, Any]:
 
 @router.patch("/{name}/versions/{version}/segments/{segment}", response_model=Segment, dependencies=[FitScope],
               summary="Label a segment (metadata only)")
-def label_segment(name: str, version: int, segment: int, update: LabelUpdate, store: StoreDep) -> dict[str, Any]:
+def label_segment(name: str, version: Annotated[VersionNumber, Path()], segment: Annotated[SegmentNumber, Path()],
+                  update: LabelUpdate, store: StoreDep) -> dict[str, Any]:
     return store.set_label(check_name(name), version, segment, update.label)

@@ -1,12 +1,21 @@
-"""pydantic ValidationError -> the contract's 422 items."""
+"""pydantic ValidationError -> the contract's 422 items; strict numbers in paths and queries; unknown query
+parameters refused."""
 
 from __future__ import annotations
 
-from typing import Any, Iterable
+import re
+from typing import Annotated, Any, Iterable
 
-from pydantic import BaseModel, ValidationError
+from fastapi import Depends, Request
+from pydantic import BaseModel, BeforeValidator, Field, ValidationError
 
+from service.core.frame import did_you_mean
 from service.errors import InvalidInput, RecordProblem
+
+
+def printable(text: str) -> str:
+    """``text`` safe to put in a JSON answer: a lone surrogate shown as its escape."""
+    return text.encode("utf-8", "backslashreplace").decode("utf-8")
 
 
 _UNION_TAGS = frozenset({"int", "float", "bool", "str", "none", "KRange", "list[str]"})
@@ -17,7 +26,7 @@ def problems_from_pydantic(errors: Iterable[dict[str, Any]], skip_prefix: tuple[
     for error in errors:
         # Drop pydantic's internal location parts (union member tags such as "int" or
         # "function-after[...]") so that the field reads as the client wrote it: "k", "k.min".
-        loc = [str(part) for part in error.get("loc", ())
+        loc = [printable(str(part)) for part in error.get("loc", ())
                if str(part) not in skip_prefix and "[" not in str(part) and str(part) not in _UNION_TAGS]
         problems.append(RecordProblem(None, ".".join(loc) or "body", error.get("msg", "invalid value")))
     return problems
@@ -28,3 +37,63 @@ def validate_model(model: type[BaseModel], data: Any) -> Any:
         return model.model_validate(data)
     except ValidationError as exc:
         raise InvalidInput(problems_from_pydantic(exc.errors())) from None
+
+
+# --------------------------------------------------------------------------- numbers in paths and queries
+MAX_VERSION = 2 ** 31 - 1
+_PLAIN_DECIMAL = re.compile(r"[1-9][0-9]{0,9}|0")
+
+
+def plain_decimal(value: Any) -> Any:
+    """Only plain decimal digits are a number in a path or query: '1.0', '+1', ' 1' and '1e3' are refused
+    (int() and pydantic's lax mode would read them all as numbers)."""
+    if isinstance(value, str):
+        if not _PLAIN_DECIMAL.fullmatch(value):
+            raise ValueError(f"expected a plain decimal integer (digits only); got {printable(value[:40])!r}")
+        return int(value)
+    return value
+
+
+# A version number, 1..2**31-1, in a path or a query string (larger numbers would overflow the store index).
+VersionNumber = Annotated[int, BeforeValidator(plain_decimal), Field(ge=1, le=MAX_VERSION)]
+# A segment id, 0..2**31-1, in a path.
+SegmentNumber = Annotated[int, BeforeValidator(plain_decimal), Field(ge=0, le=MAX_VERSION)]
+
+
+# --------------------------------------------------------------------------- unknown query parameters
+def _known_query_names(route: Any) -> frozenset[str]:
+    known = getattr(route, "_known_query_names", None)
+    if known is None:
+        names: set[str] = set()
+        stack = [route.dependant]
+        while stack:                    # the route's own query parameters and those of its dependencies
+            dependant = stack.pop()
+            names.update(param.alias for param in dependant.query_params)
+            stack.extend(dependant.dependencies)
+        for param in (getattr(route, "openapi_extra", None) or {}).get("parameters", []):
+            if param.get("in") == "query":
+                names.add(param["name"])
+        known = frozenset(names)
+        route._known_query_names = known
+    return known
+
+
+async def reject_unknown_query(request: Request) -> None:
+    """Dependency: a query parameter the route does not know is a 422 (with a "did you mean" hint), so a
+    misspelt option (``?verison=1``) is never silently replaced by its default."""
+    if not request.query_params:
+        return
+    known = _known_query_names(request.scope["route"])
+    unknown = [key for key in dict.fromkeys(request.query_params.keys()) if key not in known]
+    if unknown:
+        raise InvalidInput([unknown_query_problem(key, known) for key in unknown])
+
+
+def unknown_query_problem(key: str, known: Iterable[str]) -> RecordProblem:
+    known = sorted(known)
+    hint = did_you_mean(key, known)
+    listed = f"known: {known}" if known else "this route takes no query parameters"
+    return RecordProblem(None, printable(key), f"unknown query parameter; {listed}{hint}")
+
+
+StrictQuery = Depends(reject_unknown_query)

@@ -35,6 +35,9 @@ class FitConfig:
     outlier_quantile: float = 0.99
     silhouette_sample: int = 10_000
     reference_sample: int = 5_000
+    make_live: bool | None = None         # echoed in the report's config (the store decides what it means)
+    # Default-feature columns left out before the fit, with the reason: ((name, why), ...); in ``warnings``.
+    dropped_features: tuple[tuple[str, str], ...] = ()
 
     def as_request(self) -> dict[str, Any]:
         """The request as the report echoes it (``config``)."""
@@ -50,6 +53,7 @@ class FitConfig:
             "n_init": self.n_init,
             "seed": self.seed,
             "outlier_quantile": self.outlier_quantile,
+            "make_live": self.make_live,
         }
 
 

@@ -34,6 +34,51 @@ SELECTIONS = ("elbow", "silhouette")
 DECILES = np.linspace(0.1, 0.9, 9)
 
 
+# A feature whose population standard deviation is at most NEAR_CONSTANT_RTOL times its largest magnitude is
+# treated as constant. float64 carries ~16 significant digits (eps = 2.2e-16); the mean of a million values
+# summed one by one can be off by up to 1e6 * eps = 2.2e-10 of the scale, so a spread below ~1e-9 of the scale
+# cannot be told from rounding, and scaling by it would turn rounding noise into whole standard deviations
+# (every new record an outlier). No customer measurement varies in its tenth significant digit only.
+NEAR_CONSTANT_RTOL = 1e-9
+# Segments smaller than this share of the training records (or than TINY_SEGMENT_SIZE records) get a warning.
+TINY_SEGMENT_SHARE = 0.01
+TINY_SEGMENT_SIZE = 5
+# Rows looked at first when counting distinct rows (enough, almost always, to show there are at least k).
+_DISTINCT_PROBE_ROWS = 4096
+
+
+def unusable_features(values: np.ndarray, features: list[str]) -> dict[str, str]:
+    """{feature: why} for columns that carry no information: every value missing, or (near-)constant.
+
+    Near-constant: population std <= NEAR_CONSTANT_RTOL * max |x| over the observed values.
+    """
+    reasons: dict[str, str] = {}
+    observed = ~np.isnan(values)
+    for j, name in enumerate(features):
+        column = values[observed[:, j], j]
+        if column.size == 0:
+            reasons[name] = "every value is missing"
+            continue
+        scale = float(np.max(np.abs(column)))
+        spread = float(np.std(column))
+        if spread <= NEAR_CONSTANT_RTOL * scale:
+            shown = "constant" if np.ptp(column) == 0 else f"near-constant (std {spread:.3g} <= 1e-9 x {scale:.3g})"
+            reasons[name] = f"{shown} at {column[0]:.6g}: no information to cluster on"
+    return reasons
+
+
+def distinct_rows_at_least(values: np.ndarray, needed: int) -> int:
+    """min(needed, number of distinct rows after median imputation): cheap when there are plenty."""
+    medians = np.nanmedian(values, axis=0) if np.isnan(values).any() else None
+    def filled(rows: np.ndarray) -> np.ndarray:
+        return rows if medians is None else np.where(np.isnan(rows), medians, rows)
+    probe = filled(values[:_DISTINCT_PROBE_ROWS])
+    count = np.unique(probe, axis=0).shape[0]
+    if count >= needed or values.shape[0] <= _DISTINCT_PROBE_ROWS:
+        return min(count, needed)
+    return min(needed, np.unique(filled(values), axis=0).shape[0])
+
+
 # --------------------------------------------------------------------------- checks at the door
 def check_fit_inputs(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int) -> None:
     """Raise InvalidInput for anything that would make the fit meaningless or fail inside sklearn."""
@@ -54,19 +99,21 @@ def check_fit_inputs(values: np.ndarray, config: FitConfig, *, max_agglomerative
     if problems:
         raise InvalidInput(problems)
 
-    observed = ~np.isnan(values)
-    for j, name in enumerate(config.features):
-        column = values[observed[:, j], j]
-        if column.size == 0:
-            problems.append(RecordProblem(None, name, "feature has no values (all missing)"))
-        elif np.ptp(column) == 0:
-            problems.append(RecordProblem(None, name, f"feature is constant ({column[0]:g}); it has zero variance"))
+    for name, why in unusable_features(values, list(config.features)).items():
+        problems.append(RecordProblem(None, name, f"feature cannot be used: {why}; remove it from 'features' "
+                                      "(without 'features', such columns are dropped and listed in 'warnings')"))
 
     if not 1 <= config.k_min <= config.k_max:
         problems.append(RecordProblem(None, "k", f"need 1 <= min <= max, got min={config.k_min}, max={config.k_max}"))
     elif config.k_max > n_records - 1 and not (config.k_fixed and config.k_min == 1):
         problems.append(RecordProblem(
             None, "k", f"k must lie in [1, n_records - 1] = [1, {n_records - 1}]; got max {config.k_max}"))
+    if not problems and config.k_max > 1:
+        distinct = distinct_rows_at_least(values, config.k_max)
+        if distinct < config.k_max:
+            problems.append(RecordProblem(
+                None, "k", f"k (max {config.k_max}) exceeds the {distinct} distinct records (after imputing "
+                "missing values with the medians); a segment needs a point of its own"))
     if config.selection == "silhouette" and not config.k_fixed and config.k_max < 2:
         problems.append(RecordProblem(None, "k", "silhouette selection needs a range reaching k >= 2"))
 
@@ -285,6 +332,7 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
     sample_rows = np.sort(rng.choice(n_records, size=min(n_records, config.reference_sample), replace=False))
     reference = _reference_profile(values, nearest, chosen, flagged, residuals, sample_rows)
 
+    fit_warnings = _fit_warnings(config, labels, chosen, n_records)
     silhouette = next(row["silhouette"] for row in curve if row["k"] == chosen)
     inertia = float(_own_sq_distances(space, centroids, labels).sum())
     report: dict[str, Any] = {
@@ -312,6 +360,7 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
         "imputation_medians": dict(zip(config.features, (float(v) for v in imputer.statistics_))),
         "data_sha256": data_sha256(values),
         "library_versions": library_versions(),
+        "warnings": fit_warnings,
     }
     return Bundle(
         features=list(config.features),
@@ -327,6 +376,33 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
         reference=reference,
         report=report,
     )
+
+
+def _fit_warnings(config: FitConfig, labels: np.ndarray, k: int, n_records: int) -> list[dict[str, Any]]:
+    """Things the caller should know about an otherwise valid fit (the report's ``warnings``)."""
+    found: list[dict[str, Any]] = []
+
+    def warn(kind: str, field: str | None, message: str) -> None:
+        found.append({"kind": kind, "field": field, "message": message})
+
+    for name, why in config.dropped_features:
+        warn("dropped_feature", name, f"dropped from the default features: {why}")
+    sizes = np.bincount(labels, minlength=k)
+    distinct = int(np.count_nonzero(sizes))
+    if distinct < k:
+        warn("fewer_clusters", "k", f"the clusterer found {distinct} distinct clusters, fewer than k = {k}")
+    tiny = max(TINY_SEGMENT_SIZE, TINY_SEGMENT_SHARE * n_records)
+    for segment, size in enumerate(sizes.tolist()):
+        if size == 0:
+            warn("empty_segment", f"segments.{segment}", f"segment {segment} has no training records")
+        elif size < tiny:
+            warn("tiny_segment", f"segments.{segment}",
+                 f"segment {segment} has {size} training records (under {TINY_SEGMENT_SIZE} records or "
+                 f"{TINY_SEGMENT_SHARE:.0%}); its threshold and profile rest on few points")
+    if not config.k_fixed and config.k_max > config.k_min and k in (config.k_min, config.k_max):
+        warn("k_at_range_edge", "k", f"k = {k} is at the edge of the searched range {config.k_min}-{config.k_max}; "
+             "the best k may lie outside it")
+    return found
 
 
 def _reference_profile(values: np.ndarray, nearest: np.ndarray, k: int, flagged: np.ndarray,

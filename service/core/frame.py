@@ -8,12 +8,19 @@ that are present but non-numeric or non-finite are problems, never silently miss
 JSON records are converted as one table (one type check over every value, one array build); only
 a column that fails that check is walked value by value to name the offending records. CSV columns
 are validated as whole arrays the same way.
+
+Limits checked here, each a 422 naming record and field: a number's magnitude (``MAX_ABS_VALUE``: its square
+and the fit's sums must stay finite), ids (a string or an integer of at most 64 bits), and, for CSV, the
+layout itself (UTF-8, comma-separated, unique header names, every row as many fields as the header).
 """
 
 from __future__ import annotations
 
+import csv
+import difflib
 import io
 import math
+import re
 from dataclasses import dataclass, field
 from itertools import chain
 from operator import itemgetter
@@ -22,10 +29,18 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
-from service.errors import BadBody, FeatureMismatch, InvalidInput, InvalidRecords, RecordProblem
+from service.errors import BadBody, FeatureMismatch, InvalidInput, InvalidRecords, PayloadTooLarge, RecordProblem
 
 _NUMBER_TYPES = frozenset({int, float, type(None)})
 MAX_LISTED_PROBLEMS = 200
+# Largest magnitude accepted for a value. The fit squares values and sums the squares over up to a million
+# records and a thousand features (1e100^2 * 1e6 * 1e3 = 1e209), and assign divides by a training standard
+# deviation; 1e100 leaves those finite with a margin of ~1e99 below float64's 1.8e308. No customer measurement
+# comes near it: a larger value is a unit or parsing error.
+MAX_ABS_VALUE = 1e100
+# Ids are echoed as JSON: a string, or an integer that every JSON library reads exactly (64 bits).
+MIN_ID, MAX_ID = -(2 ** 63), 2 ** 64 - 1
+_PLAIN_INTEGER = re.compile(r"-?(0|[1-9][0-9]*)")
 
 
 @dataclass
@@ -83,6 +98,85 @@ def _column_from_objects(column: list[Any], name: str, problems: list[RecordProb
         else:
             problems.append(RecordProblem(i, name, _describe(value)))
     return array
+
+
+def _too_large_message() -> str:
+    return (f"|value| exceeds {MAX_ABS_VALUE:g}, the largest magnitude accepted (its square and the fit's sums "
+            "must stay finite); check the unit")
+
+
+def _flag_too_large(values: np.ndarray, features: Sequence[str], problems: list[RecordProblem]) -> None:
+    """Values beyond +-MAX_ABS_VALUE become problems (and NaN in the matrix, like any bad value)."""
+    with np.errstate(invalid="ignore"):
+        huge = np.abs(values) > MAX_ABS_VALUE
+    if huge.any():
+        for i, j in zip(*np.nonzero(huge)):
+            problems.append(RecordProblem(int(i), features[j], _too_large_message()))
+        values[huge] = np.nan
+
+
+def check_id(value: Any) -> str | None:
+    """None when ``value`` is a usable id (a string, or an integer of at most 64 bits), else the reason."""
+    if type(value) is str:
+        return None
+    if type(value) is int:
+        return None if MIN_ID <= value <= MAX_ID else f"an integer id must fit in 64 bits ({MIN_ID}..{MAX_ID})"
+    kind = "a boolean" if isinstance(value, bool) else type(value).__name__
+    return f"an id must be a string or an integer, got {kind}"
+
+
+def _ids(raw: Sequence[Any], id_column: str | None, problems: list[RecordProblem]) -> list[Any]:
+    """Ids to echo: the id_column value, or the record's 0-based index when it has none (absent or null)."""
+    if id_column is None:
+        return list(range(len(raw)))
+    ids = []
+    for i, value in enumerate(raw):
+        if value is None:
+            ids.append(i)
+            continue
+        reason = check_id(value)
+        if reason is not None:
+            problems.append(RecordProblem(i, id_column, reason))
+        ids.append(value if reason is None else i)
+    return ids
+
+
+def one_edit_apart(a: str, b: str) -> bool:
+    """True when ``b`` is ``a`` with one character inserted, deleted or replaced (Levenshtein distance 1)."""
+    if a == b or abs(len(a) - len(b)) > 1:
+        return False
+    if len(a) > len(b):
+        a, b = b, a
+    i = 0
+    while i < len(a) and a[i] == b[i]:
+        i += 1
+    return a[i + 1:] == b[i + 1:] if len(a) == len(b) else a[i:] == b[i + 1:]
+
+
+def did_you_mean(word: str, choices: Sequence[str]) -> str:
+    """' (did you mean 'x'?)' for the closest of ``choices`` (difflib's ratio >= 0.6), else ''."""
+    close = difflib.get_close_matches(word, list(choices), n=1)
+    return f" (did you mean {close[0]!r}?)" if close else ""
+
+
+def _near_key_problems(rows: list[dict[str, Any]], features: Sequence[str], id_column: str | None,
+                       problems: list[RecordProblem]) -> None:
+    """A feature absent from a record that holds a key one edit away from it (``tenure_month`` for
+    ``tenure_months``) is a typo, not a missing value: name both. Other extra keys stay ignored."""
+    wanted = set(features)
+    seen: dict[tuple[str, ...], list[tuple[str, str]]] = {}
+    for i, row in enumerate(rows):
+        if len(row) >= len(wanted) and wanted.issubset(row):
+            continue
+        keys = tuple(row)
+        pairs = seen.get(keys)
+        if pairs is None:
+            extras = [k for k in keys if k not in wanted and k != id_column]
+            pairs = [(f, k) for f in features if f not in row for k in extras if one_edit_apart(f, k)] if extras else []
+            seen[keys] = pairs
+        for feature, key in pairs:
+            problems.append(RecordProblem(i, feature, f"absent, but the record has {key!r}, one edit away: a typo? "
+                                                       "(send null for a missing value)"))
 
 
 def json_columns(records: Sequence[Any]) -> list[str]:
@@ -145,26 +239,129 @@ def batch_from_json(
             problems.append(RecordProblem(i, "", "each record must be a JSON object"))
             rows.append({})
     values = _matrix_from_table(_table(rows, features), features, problems)
-    if id_column is None:
-        ids: list[Any] = list(range(len(rows)))
-    else:
-        ids = [r.get(id_column) for r in rows]
+    _flag_too_large(values, features, problems)
+    if np.isnan(values).any():      # some value is missing: was it a key with a typo?
+        _near_key_problems(rows, features, id_column, problems)
+    ids = _ids([r.get(id_column) for r in rows] if id_column is not None else rows, id_column, problems)
     problems.sort(key=lambda p: (p.record if p.record is not None else -1))
     return Batch(values, ids, problems)
 
 
-def read_csv(body: bytes) -> pd.DataFrame:
-    """CSV bytes with a header row -> DataFrame; only empty cells are missing."""
+def _line_of(body: bytes, offset: int) -> int:
+    return body.count(b"\n", 0, offset) + 1
+
+
+def _check_csv_text(body: bytes) -> None:
+    """UTF-8 only (lone surrogates included: they are not valid UTF-8); a JSON document is not a CSV."""
+    try:
+        body.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise BadBody(f"line {_line_of(body, exc.start)}: the CSV body is not valid UTF-8 "
+                      f"(byte {exc.start}); send UTF-8 text") from None
+    if body.lstrip()[:1] in (b"{", b"["):
+        raise InvalidInput("the body looks like JSON but was sent as text/csv; send it with "
+                           "'Content-Type: application/json'", field="body")
+
+
+def _csv_header(body: bytes) -> list[str]:
+    """Header names (stripped); refuse a header pandas would silently mangle or misread."""
+    first = body.split(b"\n", 1)[0].decode("utf-8").rstrip("\r")
+    try:
+        names = [name.strip() for name in next(csv.reader([first], strict=True))]
+    except (csv.Error, StopIteration) as exc:
+        raise BadBody(f"line 1: the CSV header cannot be read: {exc}") from None
+    if len(names) == 1:
+        for delimiter, shown in ((";", "semicolons"), ("\t", "tabs"), ("|", "'|'")):
+            if delimiter in names[0]:
+                raise InvalidInput(f"line 1: the header has one column and contains {shown}; the CSV must be "
+                                   "comma-separated (export with ',' as the delimiter)", field="body")
+    problems = []
+    for position, name in enumerate(names, start=1):
+        if not name:
+            problems.append(RecordProblem(None, f"column {position}", "line 1: the header has an empty column name "
+                                          "(a trailing comma, or a row index written by pandas without index=False?)"))
+    seen: set[str] = set()
+    for name in names:
+        if name and name in seen:
+            problems.append(RecordProblem(None, name, "line 1: the header names this column more than once"))
+        seen.add(name)
+    if problems:
+        raise InvalidInput(problems)
+    return names
+
+
+def _check_field_counts(body: bytes, n_fields: int, max_rows: int | None) -> None:
+    """Every non-blank row has exactly as many fields as the header (else pandas would shift or pad columns);
+    more than ``max_rows`` data rows is a 413 before pandas builds anything."""
+    if b'"' not in body:
+        # No quoting: a row's field count is its comma count + 1. Counted on the bytes with numpy.
+        data = np.frombuffer(body, dtype=np.uint8)
+        ends = np.flatnonzero(data == 10)
+        if ends.size == 0 or ends[-1] != data.size - 1:
+            ends = np.append(ends, data.size)
+        starts = np.concatenate(([0], ends[:-1] + 1))
+        commas = np.flatnonzero(data == 44)
+        counts = np.searchsorted(commas, ends) - np.searchsorted(commas, starts)
+        length = ends - starts
+        has_cr = (length > 0) & (data[np.maximum(ends - 1, 0)] == 13)
+        blank = (length - has_cr) == 0
+        if max_rows is not None and int(np.count_nonzero(~blank)) - 1 > max_rows:
+            raise PayloadTooLarge(f"the CSV has {int(np.count_nonzero(~blank)) - 1} rows; the limit is {max_rows}")
+        bad = np.flatnonzero((counts != n_fields - 1) & ~blank)
+        if bad.size:
+            line = int(bad[0]) + 1
+            raise InvalidInput(f"line {line} has {int(counts[bad[0]]) + 1} fields but the header has {n_fields} "
+                               f"({bad.size} such line(s); a trailing comma or a stray delimiter?)", field="body")
+        return
+    reader = csv.reader(io.StringIO(body.decode("utf-8"), newline=""), strict=True)
+    try:
+        for number, row in enumerate(reader):
+            if max_rows is not None and number > max_rows:
+                raise PayloadTooLarge(f"the CSV has more than {max_rows} rows; the limit is {max_rows}")
+            if row and len(row) != n_fields:
+                raise InvalidInput(f"line {reader.line_num} has {len(row)} fields but the header has {n_fields} "
+                                   "(a trailing comma or a stray delimiter?)", field="body")
+    except csv.Error as exc:
+        raise BadBody(f"line {reader.line_num}: the body is not valid CSV: {exc}") from None
+
+
+def read_csv(body: bytes, id_column: str | None = None, *, max_rows: int | None = None) -> pd.DataFrame:
+    """CSV bytes with a header row -> DataFrame; only empty cells are missing.
+
+    The ``id_column`` (when given and present) is read as text, so a long numeric id is not turned into a float.
+    """
+    if body.startswith(b"\xef\xbb\xbf"):
+        body = body[3:]                         # a UTF-8 byte-order mark (spreadsheet exports)
     if not body.strip():
         raise InvalidInput("the CSV body is empty", field="body")
+    _check_csv_text(body)
+    names = _csv_header(body)
+    _check_field_counts(body, len(names), max_rows)
+    dtype = {id_column: str} if id_column is not None and id_column in names else None
     try:
-        frame = pd.read_csv(io.BytesIO(body), keep_default_na=False, na_values=[""])
+        frame = pd.read_csv(io.BytesIO(body), keep_default_na=False, na_values=[""], index_col=False, dtype=dtype)
     except (pd.errors.ParserError, UnicodeDecodeError, ValueError) as exc:
-        raise BadBody(f"the body is not valid CSV: {exc}") from None
+        raise BadBody(f"the body is not valid CSV: {str(exc)[:200]}") from None
     except pd.errors.EmptyDataError:
         raise InvalidInput("the CSV body has no header row", field="body") from None
     frame.columns = [str(c).strip() for c in frame.columns]
     return frame
+
+
+def csv_id(value: Any) -> Any:
+    """A CSV id cell as echoed: a plain decimal integer within 64 bits as a number, anything else as its text."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return None
+    if isinstance(value, str):
+        text = value.strip()
+        if _PLAIN_INTEGER.fullmatch(text) and len(text) <= 20 and MIN_ID <= int(text) <= MAX_ID:
+            return int(text)
+        return value
+    if isinstance(value, (bool, np.bool_)):
+        return str(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    return str(value)
 
 
 def numeric_csv_columns(frame: pd.DataFrame, exclude: str | None) -> list[str]:
@@ -179,7 +376,9 @@ def batch_from_frame(frame: pd.DataFrame, features: Sequence[str], id_column: st
     """A DataFrame read from CSV -> Batch. Every feature column must be present."""
     absent = [f for f in features if f not in frame.columns]
     if absent:
-        raise FeatureMismatch([RecordProblem(None, f, "required column is absent from the CSV header") for f in absent])
+        extra = [c for c in frame.columns if c not in set(features) and c != id_column]
+        raise FeatureMismatch([RecordProblem(None, f, "required column is absent from the CSV header"
+                                             + did_you_mean(f, extra)) for f in absent])
     if id_column is not None and id_column not in frame.columns:
         raise FeatureMismatch([RecordProblem(None, id_column, "id_column is absent from the CSV header")])
     problems: list[RecordProblem] = []
@@ -209,9 +408,8 @@ def batch_from_frame(frame: pd.DataFrame, features: Sequence[str], id_column: st
                 continue
             array[i] = number
         values[:, j] = array
-    if id_column is None:
-        ids: list[Any] = list(range(len(frame)))
-    else:
-        ids = [None if (isinstance(v, float) and math.isnan(v)) else v for v in frame[id_column].tolist()]
+    _flag_too_large(values, features, problems)
+    raw_ids = [csv_id(v) for v in frame[id_column].tolist()] if id_column is not None else range(len(frame))
+    ids = _ids(raw_ids, id_column, problems)
     problems.sort(key=lambda p: (p.record if p.record is not None else -1))
     return Batch(values, ids, problems)

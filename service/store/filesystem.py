@@ -19,6 +19,7 @@ import fcntl
 import hashlib
 import json
 import os
+import re
 import sqlite3
 import tempfile
 import threading
@@ -118,6 +119,25 @@ def _sha256_file(path: Path) -> str:
         for block in iter(lambda: handle.read(1 << 20), b""):
             digest.update(block)
     return digest.hexdigest()
+
+
+_LONE_SURROGATE = re.compile("[\ud800-\udfff]")
+_SURROGATE_ESCAPE = re.compile(r"\\u[dD][89a-fA-F]")
+
+
+def _repair_text(value: Any) -> Any:
+    """Replace lone UTF-16 surrogates by U+FFFD in every string of a decoded report (keys too).
+
+    Input is refused at the door now, but versions stored before that check may hold such a column name;
+    they cannot be encoded as UTF-8 in an answer, so they are repaired on read (the stored text is unchanged).
+    """
+    if isinstance(value, str):
+        return _LONE_SURROGATE.sub("\ufffd", value)
+    if isinstance(value, dict):
+        return {_repair_text(k): _repair_text(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_repair_text(v) for v in value]
+    return value
 
 
 class FilesystemStore:
@@ -302,6 +322,8 @@ class FilesystemStore:
         row = self._require_version(self._db(), name, version)
         live = self._query("SELECT live_version FROM segmentations WHERE name=?", (name,))[0]["live_version"]
         report = json.loads(row["report"])
+        if _SURROGATE_ESCAPE.search(row["report"]):      # stored as ASCII: any surrogate shows as its escape
+            report = _repair_text(report)
         report["live"] = live == version
         labels = self.labels(name, version)
         for segment in report["segments"]:

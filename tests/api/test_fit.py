@@ -244,7 +244,10 @@ def _bad_json_cases(iris):
         ("all-missing-feature", dict(content=js({"records": [{**r, "spend": None} for r in good],
                                                  "features": [SEPAL, "spend"]})),
          422, [(None, "spend")]),
-        ("constant-feature", dict(content=js({"records": [{**r, "spend": 4.0} for r in good]})),
+        # Issue 7: constant and all-missing features are handled alike: refused when named in 'features'
+        # (here), dropped with a warning when the features are the default (test_new_user_mistakes.py).
+        ("constant-feature", dict(content=js({"records": [{**r, "spend": 4.0} for r in good],
+                                              "features": [SEPAL, "spend"]})),
          422, [(None, "spend")]),
         ("fewer-records-than-k", dict(content=js({"records": small, "k": 5})), 422, [(None, "k")]),
         ("one-record", dict(content=js({"records": good[:1], "k": 1})), 422, [(None, "records")]),

@@ -60,10 +60,11 @@ def test_one_feature_and_a_column_of_nulls():
 
 
 def test_ids_come_from_the_id_column_or_the_row_index():
-    # Reference: common practice (no single source): an absent id is null, not a guess.
-    records = [{"a": 1, "b": 2, "c": 3, "id": "x"}, {"a": 1, "b": 2, "c": 3}]
-    assert batch_from_json(records, FEATURES, "id").ids == ["x", None]
-    assert batch_from_json(records, FEATURES, None).ids == [0, 1]
+    # API.md: "the id_column value, or row index" is echoed; a record without an id gets its 0-based index
+    # (issue 7 item 9; it was null before).
+    records = [{"a": 1, "b": 2, "c": 3, "id": "x"}, {"a": 1, "b": 2, "c": 3}, {"a": 1, "b": 2, "c": 3, "id": None}]
+    assert batch_from_json(records, FEATURES, "id").ids == ["x", 1, 2]
+    assert batch_from_json(records, FEATURES, None).ids == [0, 1, 2]
 
 
 @pytest.mark.parametrize("value, message", [
