@@ -7,9 +7,13 @@ import logging
 from contextlib import asynccontextmanager
 
 import anyio
+import swagger_ui_bundle
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
-from fastapi.responses import JSONResponse
+from fastapi.openapi.docs import get_swagger_ui_html
+from fastapi.openapi.utils import get_openapi
+from fastapi.responses import HTMLResponse, JSONResponse
+from fastapi.staticfiles import StaticFiles
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service import __version__
@@ -105,6 +109,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version=__version__,
         description="Fit and version customer segmentations; assign new records; report drift.",
         lifespan=lifespan,
+        # /docs is served below from the Swagger UI files of an installed package (no CDN: it works offline);
+        # ReDoc has no such package, so it is off.
+        docs_url=None,
+        redoc_url=None,
         exception_handlers={
             ServiceError: _service_error,
             RequestValidationError: _validation_error,
@@ -118,7 +126,41 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     for router in (segmentations.router, assign.router, drift.router):
         app.include_router(router, prefix="/v1")
     app.include_router(health.router)
+    _offline_docs(app)
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     return app
+
+
+DOCS_ASSETS = "/docs-assets"
+
+
+def _offline_docs(app: FastAPI) -> None:
+    """Swagger UI at /docs from the ``swagger-ui-bundle`` package's files, and a bearer security scheme."""
+    app.mount(DOCS_ASSETS, StaticFiles(directory=swagger_ui_bundle.swagger_ui_path), name="docs-assets")
+
+    @app.get("/docs", include_in_schema=False)
+    async def docs() -> HTMLResponse:
+        return get_swagger_ui_html(
+            openapi_url=app.openapi_url, title=f"{app.title} - API",
+            swagger_js_url=f"{DOCS_ASSETS}/swagger-ui-bundle.js", swagger_css_url=f"{DOCS_ASSETS}/swagger-ui.css",
+            swagger_favicon_url=f"{DOCS_ASSETS}/favicon-32x32.png",
+            swagger_ui_parameters={"validatorUrl": None})
+
+    def openapi() -> dict:
+        if app.openapi_schema is None:
+            schema = get_openapi(title=app.title, version=app.version, description=app.description,
+                                 routes=app.routes)
+            # Keys (when configured) go in 'Authorization: Bearer <key>' on every /v1 route.
+            schema.setdefault("components", {})["securitySchemes"] = {
+                "bearer": {"type": "http", "scheme": "bearer",
+                           "description": "an API key; needed on /v1 routes when keys are configured"}}
+            for path, operations in schema["paths"].items():
+                if path.startswith("/v1/"):
+                    for operation in operations.values():
+                        operation["security"] = [{"bearer": []}]
+            app.openapi_schema = schema
+        return app.openapi_schema
+
+    app.openapi = openapi
 
 

@@ -13,14 +13,14 @@ from fastapi.responses import Response
 from schemas import AssignResponse
 from schemas.assign import AssignRequest
 from service.api.payload import read_version_batch, request_body_openapi, too_many_missing
-from service.api.validation import StrictQuery, VersionNumber
+from service.api.validation import StrictQuery, VersionNumber, error_responses
 from service.core.assign import Assignment, assign, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
 from service.deps import AssignScope, SettingsDep, StoreDep
-from service.errors import InvalidRecords
+from service.errors import InvalidRecords, RecordProblem
 from service.store import LoadedVersion
 
-router = APIRouter(prefix="/segmentations", tags=["assign"], dependencies=[StrictQuery])
+router = APIRouter(prefix="/segmentations", tags=["assign"])
 
 RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per record")
 _REASONS = ([], ["distance"], ["residual"], ["distance", "residual"])
@@ -38,9 +38,23 @@ def split_good_rows(batch: Batch, skip_bad: bool) -> tuple[np.ndarray, list[dict
     return np.flatnonzero(good), [p.as_dict() for p in batch.problems]
 
 
-def run_assignment(loaded: LoadedVersion, values: np.ndarray) -> tuple[Assignment, np.ndarray | None]:
+def run_assignment(loaded: LoadedVersion, values: np.ndarray,
+                   rows: np.ndarray | None = None) -> tuple[Assignment, np.ndarray | None]:
+    """Impute and assign; a record whose distances overflow float64 is a 422 (never a null in the answer).
+
+    ``rows``: the input index of each row of ``values`` (for the error items; default 0..n-1)."""
     filled, missing = impute(loaded.compiled, values)
-    return assign(loaded.compiled, filled), missing
+    result = assign(loaded.compiled, filled)
+    finite = np.isfinite(result.distance) & np.isfinite(result.residual)
+    if result.margin is not None:
+        finite &= np.isfinite(result.margin)
+    if not finite.all():
+        bad = np.flatnonzero(~finite)
+        index = bad if rows is None else rows[bad]
+        raise InvalidRecords([RecordProblem(int(i), "", "the record's values are too far from the training data "
+                                            "for its distances to be computed in float64; check the units")
+                              for i in index[:MAX_LISTED_PROBLEMS]])
+    return result, missing
 
 
 def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any], rows: np.ndarray,
@@ -70,7 +84,8 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
 
 
 @router.post("/{name}/assign", response_model=AssignResponse, openapi_extra=RECORDS_BODY,
-             dependencies=[AssignScope], summary="Assign records to segments")
+             dependencies=[AssignScope, StrictQuery], summary="Assign records to segments",
+             responses=error_responses(400, 401, 403, 404, 409, 413, 415, 422, 500, 503))
 async def assign_records(
     name: str,
     request: Request,
@@ -88,7 +103,7 @@ async def assign_records(
     labels = store.labels(name, number)
 
     def compute() -> list[dict[str, Any]]:
-        result, missing = run_assignment(loaded, values)
+        result, missing = run_assignment(loaded, values, rows)
         return build_results(loaded, labels, batch.ids, rows, result, missing)
 
     if rows.size <= settings.inline_assign_rows:

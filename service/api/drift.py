@@ -16,7 +16,7 @@ from schemas import DriftReport, DriftReportList
 from schemas.assign import AssignRequest
 from service.api.assign import run_assignment, split_good_rows
 from service.api.payload import check_name, read_version_batch, request_body_openapi
-from service.api.validation import StrictQuery, VersionNumber, plain_decimal
+from service.api.validation import StrictQuery, VersionNumber, error_responses, plain_decimal
 from service.core.drift import DriftRules, compute_drift
 from service.core.frame import MAX_LISTED_PROBLEMS
 from service.deps import DriftScope, SettingsDep, StoreDep
@@ -24,7 +24,7 @@ from service.errors import InvalidInput, RecordProblem
 from service.settings import Settings
 from service.store import FilesystemStore, LoadedVersion
 
-router = APIRouter(prefix="/segmentations", tags=["drift"], dependencies=[StrictQuery])
+router = APIRouter(prefix="/segmentations", tags=["drift"])
 
 DEFAULT_LIST_LIMIT = 20
 MAX_LIST_LIMIT = 500
@@ -62,8 +62,9 @@ def build_and_store(store: FilesystemStore, loaded: LoadedVersion, values, rules
     return report
 
 
-@router.post("/{name}/drift", response_model=DriftReport, openapi_extra=DRIFT_BODY, dependencies=[DriftScope],
-             summary="Compare a batch with the training distribution; the report is stored")
+@router.post("/{name}/drift", response_model=DriftReport, openapi_extra=DRIFT_BODY, dependencies=[DriftScope, StrictQuery],
+             summary="Compare a batch with the training distribution; the report is stored",
+             responses=error_responses(400, 401, 403, 404, 409, 413, 415, 422, 500, 503))
 async def create_drift_report(
     name: str,
     request: Request,
@@ -89,8 +90,8 @@ async def create_drift_report(
     return Response(orjson.dumps(report), media_type="application/json")
 
 
-@router.get("/{name}/drift", response_model=DriftReportList, dependencies=[DriftScope],
-            summary="Stored drift reports, newest first")
+@router.get("/{name}/drift", response_model=DriftReportList, dependencies=[DriftScope, StrictQuery],
+            summary="Stored drift reports, newest first", responses=error_responses(401, 403, 404, 422, 503))
 async def list_drift_reports(
     name: str,
     store: StoreDep,

@@ -17,7 +17,8 @@ def healthz() -> dict[str, str]:
     return {"status": "ok"}
 
 
-@router.get("/readyz", summary="Store reachable and live bundles loadable")
+@router.get("/readyz", summary="Store reachable and live bundles loadable",
+            responses={503: {"description": "store unavailable, or a live version cannot be loaded (named)"}})
 def readyz(store: StoreDep) -> JSONResponse:
     problems = []
     try:

@@ -24,6 +24,7 @@ from service.api.payload import (
 from service.api.validation import (
     SegmentNumber,
     StrictQuery,
+    error_responses,
     VersionNumber,
     printable,
     unknown_query_problem,
@@ -43,7 +44,7 @@ from service.core.frame import (
 from service.deps import FitScope, ReadScope, SettingsDep, StoreDep
 from service.errors import InvalidInput, PayloadTooLarge, RecordProblem
 
-router = APIRouter(prefix="/segmentations", tags=["segmentations"], dependencies=[StrictQuery])
+router = APIRouter(prefix="/segmentations", tags=["segmentations"])
 
 QUERY_PARAMETERS = frozenset(set(FitRequest.model_fields) - {"records"})
 
@@ -215,7 +216,8 @@ def _resolve_features(requested: list[str] | None, available: list[str], numeric
 
 
 @router.post("/{name}/fit", status_code=201, response_model=FitReport, openapi_extra=FIT_BODY,
-             dependencies=[FitScope], summary="Fit a new version from records")
+             dependencies=[FitScope, StrictQuery], summary="Fit a new version from records",
+             responses=error_responses(400, 401, 403, 413, 415, 422, 500, 503))
 async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep) -> JSONResponse:
     check_name(name)
     csv = body_kind(request) == "csv"
@@ -294,31 +296,34 @@ def _prepare_fit(body: bytes, csv: bool, query: Mapping[str, str], settings) -> 
     return values, config, params.make_live
 
 
-@router.get("", response_model=SegmentationList, dependencies=[ReadScope], summary="List segmentations")
+@router.get("", response_model=SegmentationList, dependencies=[ReadScope, StrictQuery], summary="List segmentations",
+            responses=error_responses(401, 403, 422, 503))
 def list_segmentations(store: StoreDep) -> dict[str, Any]:
     return {"segmentations": store.list_segmentations()}
 
 
-@router.get("/{name}", response_model=SegmentationDetail, dependencies=[ReadScope],
-            summary="A segmentation with a summary row per version")
+@router.get("/{name}", response_model=SegmentationDetail, dependencies=[ReadScope, StrictQuery],
+            summary="A segmentation with a summary row per version",
+            responses=error_responses(401, 403, 404, 422, 503))
 def get_segmentation(name: str, store: StoreDep) -> dict[str, Any]:
     return store.get_segmentation(check_name(name))
 
 
-@router.get("/{name}/versions/{version}", response_model=FitReport, dependencies=[ReadScope],
-            summary="The fit report of one version")
+@router.get("/{name}/versions/{version}", response_model=FitReport, dependencies=[ReadScope, StrictQuery],
+            summary="The fit report of one version", responses=error_responses(401, 403, 404, 422, 503))
 def get_version(name: str, version: Annotated[VersionNumber, Path()], store: StoreDep) -> dict[str, Any]:
     return store.version_report(check_name(name), version)
 
 
-@router.put("/{name}/live", response_model=SegmentationDetail, dependencies=[FitScope],
-            summary="Make a version live (promote or roll back)")
+@router.put("/{name}/live", response_model=SegmentationDetail, dependencies=[FitScope, StrictQuery],
+            summary="Make a version live (promote or roll back)",
+            responses=error_responses(400, 401, 403, 404, 422, 503))
 def set_live(name: str, update: LiveUpdate, store: StoreDep) -> dict[str, Any]:
     return store.set_live(check_name(name), update.version)
 
 
-@router.patch("/{name}/versions/{version}/segments/{segment}", response_model=Segment, dependencies=[FitScope],
-              summary="Label a segment (metadata only)")
+@router.patch("/{name}/versions/{version}/segments/{segment}", response_model=Segment, dependencies=[FitScope, StrictQuery],
+              summary="Label a segment (metadata only)", responses=error_responses(400, 401, 403, 404, 422, 503))
 def label_segment(name: str, version: Annotated[VersionNumber, Path()], segment: Annotated[SegmentNumber, Path()],
                   update: LabelUpdate, store: StoreDep) -> dict[str, Any]:
     return store.set_label(check_name(name), version, segment, update.label)

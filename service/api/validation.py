@@ -9,6 +9,7 @@ from typing import Annotated, Any, Iterable
 from fastapi import Depends, Request
 from pydantic import BaseModel, BeforeValidator, Field, ValidationError
 
+from schemas.common import ErrorResponse
 from service.core.frame import did_you_mean
 from service.errors import InvalidInput, RecordProblem
 
@@ -97,3 +98,27 @@ def unknown_query_problem(key: str, known: Iterable[str]) -> RecordProblem:
 
 
 StrictQuery = Depends(reject_unknown_query)
+
+
+# --------------------------------------------------------------------------- documented error answers
+_ERROR_MEANINGS = {
+    400: "the body is not valid JSON or CSV",
+    401: "no API key, or an unknown one",
+    403: "the API key lacks the route's scope",
+    404: "unknown segmentation, version or segment",
+    409: "conflicting state (no live version to use)",
+    413: "body or batch over the configured limit",
+    415: "Content-Type neither application/json nor text/csv",
+    422: "valid JSON/CSV with unusable content, shape or values; each item names the record and field",
+    500: "internal error (never a stack trace), or a stored artifact that fails its SHA-256 check",
+    503: "the store cannot be read or written",
+}
+
+
+def error_responses(*statuses: int) -> dict[int | str, dict[str, Any]]:
+    """``responses=`` for a route: each status with the ErrorResponse schema and what it means here."""
+    return {status: {"model": ErrorResponse, "description": _ERROR_MEANINGS[status]} for status in statuses}
+
+
+AUTH_ERRORS = (401, 403)
+BODY_ERRORS = (400, 413, 415, 422)
