@@ -5,11 +5,19 @@ STAMP := $(VENV)/.installed-stamp
 
 .PHONY: demo test bench clean
 
+# `make demo` and `make test` started at once on a fresh clone must not both build .venv: the set-up runs
+# under an exclusive lock (flock, util-linux), and whoever gets it second finds the stamp fresh and skips.
 $(STAMP): pyproject.toml
-	python3 -m venv $(VENV)
-	$(BIN)/pip install --quiet --upgrade pip
-	$(BIN)/pip install --quiet -e '.[test]'
-	touch $(STAMP)
+	flock .setup.lock $(MAKE) --no-print-directory setup-locked
+
+.PHONY: setup-locked
+setup-locked:
+	@if [ ! -f $(STAMP) ] || [ pyproject.toml -nt $(STAMP) ]; then \
+		python3 -m venv $(VENV) && \
+		$(BIN)/pip install --quiet --upgrade pip && \
+		$(BIN)/pip install --quiet -e '.[test]' && \
+		touch $(STAMP); \
+	fi
 
 demo: $(STAMP)  ## run the service on 127.0.0.1:8000 with the demo segmentation
 	$(BIN)/segscore serve --demo
@@ -24,4 +32,4 @@ bench: $(STAMP)  ## in-process benchmarks (figures for the README)
 	$(BIN)/python bench/bench_drift.py
 
 clean:
-	rm -rf $(VENV) build *.egg-info
+	rm -rf $(VENV) build *.egg-info .setup.lock

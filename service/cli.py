@@ -15,8 +15,31 @@ DEMO_NAME = "demo"
 
 
 def _settings(**overrides) -> Settings:
+    """The settings, or a clean message naming each bad ``SEGSCORE_*`` variable (exit 2), not a traceback."""
+    from pydantic import ValidationError
+
     clean = {k: v for k, v in overrides.items() if v is not None}
-    return Settings(**clean)
+    try:
+        return Settings(**clean)
+    except ValidationError as exc:
+        lines = []
+        for error in exc.errors():
+            field = str(error["loc"][0]) if error.get("loc") else ""
+            # The value itself is not printed: it may be a secret (an API key).
+            where = f"SEGSCORE_{field.upper()}" if field else "settings"
+            lines.append(f"  {where}: {error['msg']}")
+        raise click.UsageError("bad setting(s):\n" + "\n".join(lines)) from None
+
+
+def pin_blas_threads() -> None:
+    """One BLAS/OpenMP thread for this process (threadpoolctl limits are process-wide).
+
+    On small machines a second pool fighting over the cores makes numpy/scikit-learn work erratic and, for
+    fits, about 2x slower; ``serve`` and every command that fits call this first.
+    """
+    from threadpoolctl import threadpool_limits
+
+    threadpool_limits(limits=1)
 
 
 def fit_csv_into_store(settings: Settings, name: str, csv_bytes: bytes, params: dict) -> dict:
@@ -31,7 +54,8 @@ def fit_csv_into_store(settings: Settings, name: str, csv_bytes: bytes, params: 
 
     check_name(name)
     request = validate_model(FitRequest, params)
-    values, config = training_inputs(request, settings, frame=read_csv(csv_bytes))
+    frame = read_csv(csv_bytes, request.id_column, max_rows=settings.max_fit_rows)
+    values, config = training_inputs(request, settings, frame=frame)
     bundle = fit_bundle(values, config, max_agglomerative_rows=settings.max_agglomerative_rows)
     store = FilesystemStore(settings.store_dir, cache_size=settings.bundle_cache_size)
     return store.save_version(name, bundle, make_live=request.make_live)
@@ -66,16 +90,13 @@ def main() -> None:
 def serve(host: str | None, port: int | None, store_dir: Path | None, demo: bool) -> None:
     """Run the HTTP API with uvicorn (one process)."""
     import uvicorn
-    from threadpoolctl import threadpool_limits
 
     from service.app import create_app
 
     settings = _settings(host=host, port=port, store_dir=store_dir)
+    pin_blas_threads()
     if demo:
         ensure_demo(settings)
-    # One BLAS/OpenMP thread per server process: on small machines two pools fighting over two cores make
-    # the small products of the assign path erratic (threadpoolctl limits are process-wide).
-    threadpool_limits(limits=1)
     uvicorn.run(create_app(settings), host=settings.host, port=settings.port,
                 access_log=settings.access_log, log_level=settings.log_level)
 
@@ -141,8 +162,10 @@ def fit(name, csv_file, store_dir, features, id_column, scaling, components, met
         "components": _parse_components(components), "method": method, "linkage": linkage,
         "k": _parse_k(k_text), "selection": selection, "seed": seed, "make_live": make_live,
     }
+    settings = _settings(store_dir=store_dir)
+    pin_blas_threads()
     try:
-        report = fit_csv_into_store(_settings(store_dir=store_dir), name, csv_file.read_bytes(), params)
+        report = fit_csv_into_store(settings, name, csv_file.read_bytes(), params)
     except ServiceError as exc:
         raise click.ClickException(json.dumps(exc.detail)) from None
     click.echo(json.dumps(report, indent=2))

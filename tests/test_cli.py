@@ -148,3 +148,23 @@ def test_serve_demo_answers_readyz_and_lists_demo(tmp_path):
 
     ensure_demo(Settings(store_dir=store))
     assert sorted(p.name for p in (store / "segmentations" / "demo").glob("v*.joblib")) == ["v000001.joblib"]
+
+
+def test_a_bad_setting_is_a_clean_message_naming_the_variable(tmp_path, demo_csv, monkeypatch):
+    # Issue 7 item 11: a bad SEGSCORE_ value printed a raw pydantic traceback at start-up.
+    monkeypatch.setenv("SEGSCORE_MAX_FIT_ROWS", "lots")
+    result = CliRunner().invoke(main, ["fit", "shop", str(demo_csv), "--store", str(tmp_path / "s")])
+    assert result.exit_code == 2
+    assert "SEGSCORE_MAX_FIT_ROWS" in result.output and "Traceback" not in result.output
+    assert not (tmp_path / "s").exists()
+
+
+def test_fit_pins_blas_threads_like_serve(tmp_path, demo_csv, monkeypatch):
+    # Issue 7 item 12: `segscore fit` ran with every BLAS thread (2x slower on a busy 2-core machine).
+    import service.cli as cli
+
+    calls = []
+    monkeypatch.setattr(cli, "pin_blas_threads", lambda: calls.append("pinned"))
+    result = run("fit", "shop", str(demo_csv), "--store", str(tmp_path / "s"), "--k", "3")
+    assert result.exit_code == 0, result.output
+    assert calls == ["pinned"]
