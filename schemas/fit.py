@@ -128,11 +128,3 @@ class LiveUpdate(BaseModel):
 class LabelUpdate(BaseModel):
     model_config = ConfigDict(extra="forbid")
     label: str | None = Field(max_length=200)
-
-    @field_validator("label")
-    @classmethod
-    def _valid_unicode(cls, value: str | None) -> str | None:
-        # A lone surrogate (JSON "\ud800") is not text: no answer or stored report could carry it.
-        if value is not None and any("\ud800" <= ch <= "\udfff" for ch in value):
-            raise ValueError("the label holds a lone UTF-16 surrogate: not valid Unicode text")
-        return value

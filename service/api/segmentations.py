@@ -47,6 +47,7 @@ from service.errors import InvalidInput, PayloadTooLarge, RecordProblem
 router = APIRouter(prefix="/segmentations", tags=["segmentations"])
 
 QUERY_PARAMETERS = frozenset(set(FitRequest.model_fields) - {"records"})
+FIT_BODY_KEYS = frozenset(FitRequest.model_fields)
 
 
 def _csv_query_parameters_openapi() -> list[dict[str, Any]]:
@@ -145,14 +146,20 @@ def _fit_config(request_model: FitRequest, features: list[str], settings,
 
 
 def json_feature_candidates(records: list[Any], id_column: str | None) -> list[str]:
-    """Default features of a JSON fit: every column that holds at least one number (booleans are not).
+    """Default features of a JSON fit: every column that holds at least one number (booleans are not), or
+    only nulls.
 
     A column that mixes numbers with other values stays a candidate, so its bad values are reported
     by record index instead of the whole column being dropped without a word.
     """
     candidates = []
+    rows = [r for r in records if isinstance(r, dict)]
     for name in json_columns(records):
-        if name != id_column and any(type(r.get(name)) in (int, float) for r in records if isinstance(r, dict)):
+        if name == id_column:
+            continue
+        values = [r[name] for r in rows if name in r]
+        # A column of nulls only is a candidate too: it is then dropped with a warning, never silently.
+        if any(type(v) in (int, float) for v in values) or all(v is None for v in values):
             candidates.append(name)
     _refuse_split_columns(records, candidates)
     return candidates
@@ -290,7 +297,7 @@ def _prepare_fit(body: bytes, csv: bool, query: Mapping[str, str], settings) -> 
         # Records are counted on the bytes first: a body of millions of tiny records never becomes objects.
         check_json_rows(body, settings.max_fit_rows, allowance=settings.max_features + 2)
         document = parse_json(body)
-        records = records_of(document, allowed_keys=None)    # other keys: checked by FitRequest (extra=forbid)
+        records = records_of(document, allowed_keys=FIT_BODY_KEYS)
         params = validate_model(FitRequest, {k: v for k, v in document.items() if k != "records"})
         values, config = training_inputs(params, settings, records=records)
     return values, config, params.make_live

@@ -365,10 +365,10 @@ def csv_id(value: Any) -> Any:
 
 
 def numeric_csv_columns(frame: pd.DataFrame, exclude: str | None) -> list[str]:
+    """Numeric columns (an all-empty column reads as numeric: the fit then drops it with a warning)."""
     return [
         c for c in frame.columns
         if c != exclude and pd.api.types.is_numeric_dtype(frame[c]) and not pd.api.types.is_bool_dtype(frame[c])
-        and frame[c].notna().any()
     ]
 
 
