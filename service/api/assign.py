@@ -44,7 +44,8 @@ def run_assignment(loaded: LoadedVersion, values: np.ndarray,
 
     ``rows``: the input index of each row of ``values`` (for the error items; default 0..n-1)."""
     filled, missing = impute(loaded.compiled, values)
-    result = assign(loaded.compiled, filled)
+    with np.errstate(over="ignore", invalid="ignore"):     # overflow is checked just below
+        result = assign(loaded.compiled, filled)
     finite = np.isfinite(result.distance) & np.isfinite(result.residual)
     if result.margin is not None:
         finite &= np.isfinite(result.margin)

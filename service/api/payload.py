@@ -102,6 +102,7 @@ async def off_loop_if_large(body: bytes, settings: Settings, function, *args):
 # --------------------------------------------------------------------------- JSON
 _STRUCTURAL = np.zeros(256, dtype=bool)
 _STRUCTURAL[[ord(c) for c in '"{}[],']] = True
+_NON_STRUCTURAL = bytes(b for b in range(256) if b not in b'"{}[],\\')
 _SCAN_CHUNK = 8 * 1024 * 1024
 
 
@@ -111,13 +112,22 @@ def count_list_items_at_depth_two(body: bytes) -> int:
     number of records; other top-level lists (a fit's ``features``) add their own lengths, so the count
     is an upper bound. Linear time, memory bounded by the chunk size; no Python object per record.
     """
-    data = np.frombuffer(body, dtype=np.uint8)
     has_escapes = b"\\" in body
+    if not has_escapes:
+        # Only the structural bytes matter. Without backslashes, deleting every other byte keeps each one's
+        # place relative to the quotes, and deleting two adjacent quotes (an empty string, or a closing and an
+        # opening quote side by side) changes no later byte's inside/outside parity: a record of numbers
+        # shrinks to "{,,,}" and the scan below touches a tenth of the body.
+        body = body.translate(None, _NON_STRUCTURAL).replace(b'""', b"")
+    data = np.frombuffer(body, dtype=np.uint8)
     in_string, depth, commas = 0, 0, 0
     for start in range(0, data.size, _SCAN_CHUNK):
         chunk = data[start:start + _SCAN_CHUNK]
-        positions = np.flatnonzero(_STRUCTURAL[chunk])
-        chars = chunk[positions]
+        if has_escapes:
+            positions = np.flatnonzero(_STRUCTURAL[chunk])
+            chars = chunk[positions]
+        else:
+            chars = chunk                                   # only structural bytes are left
         quotes = chars == 34
         if has_escapes:
             # A quote preceded by an odd run of backslashes is inside a string, not a delimiter.
@@ -127,17 +137,20 @@ def count_list_items_at_depth_two(body: bytes) -> int:
                     run, at = run + 1, at - 1
                 if run % 2:
                     quotes[k] = False
-        toggles = np.cumsum(quotes, dtype=np.int64)
-        inside = ((toggles - quotes + in_string) & 1).astype(bool)        # inside a string, before this char
-        outside = ~inside & ~quotes
-        step = np.zeros(chars.size, dtype=np.int64)
-        step[outside & ((chars == 123) | (chars == 91))] = 1
-        step[outside & ((chars == 125) | (chars == 93))] = -1
-        levels = depth + np.cumsum(step)
-        commas += int(np.count_nonzero(outside & (chars == 44) & (levels == 2)))
+        if in_string or quotes.any():
+            toggles = np.cumsum(quotes, dtype=np.int32)
+            outside = ~(((toggles - quotes + in_string) & 1).astype(bool)) & ~quotes
+            in_string = int((in_string + toggles[-1]) & 1)
+        else:                                               # no strings here: every byte is structure
+            outside = np.ones(chars.size, dtype=bool)
+        step = (chars == 123).view(np.int8) + (chars == 91).view(np.int8) \
+            - (chars == 125).view(np.int8) - (chars == 93).view(np.int8)
+        step[~outside] = 0
+        levels = np.cumsum(step, dtype=np.int32)
+        levels += depth
+        commas += int(np.count_nonzero((chars == 44) & outside & (levels == 2)))
         if chars.size:
             depth = int(levels[-1])
-            in_string = int((in_string + toggles[-1]) & 1)
     return commas + 1
 
 
