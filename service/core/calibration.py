@@ -26,6 +26,9 @@ How (see README, "Outlier flag"):
 4. The final model's thresholds are ``distance_threshold_c = t_c D_c`` and ``residual_threshold_c = t_c R_c``
    with D_c, R_c the final model's in-sample medians: a record is flagged when either is exceeded, which
    is ``s > t_c``. So the nominal rate is ``1 - q`` per segment and per record, for the union of the two rules.
+5. Drift baseline: each held-out row is flagged when its score exceeds the conformal multiplier of the
+   other rows of its segment (leave one out), i.e. judged as a fresh record would be; the count of those
+   rows over n is the outlier item's training rate, and both counts enter its two-sample test.
 
 With fewer than ``MIN_CROSS_FIT_ROWS`` training rows there is nothing to hold out: the scores are in-sample
 (and the report says so). When a segment (or the pool) has fewer than ``q / (1 - q)`` scores the rank
@@ -60,7 +63,7 @@ class Calibration:
     multipliers: np.ndarray           # (k,) t_c
     borrowed: np.ndarray              # (k,) bool: the pooled multiplier was used
     held_out_counts: np.ndarray       # (k,) int: held-out scores per segment
-    flagged: np.ndarray               # (n,) bool: held-out score above its segment's multiplier
+    flagged: np.ndarray               # (n,) bool: held-out score above its segment's leave-one-out multiplier
     residuals: np.ndarray             # (n,) held-out residuals (0 without a residual)
     pooled_residual_threshold: float  # conformal q-quantile of all held-out residuals (for comparison)
     held_out: bool                    # False: too few rows, in-sample scores
@@ -90,6 +93,25 @@ def conformal_quantile(scores: np.ndarray, q: float) -> float:
         return 0.0
     rank = min(int(math.ceil((n + 1) * q - 1e-9)), n)       # 1-based; the epsilon absorbs (n + 1) q rounding
     return float(np.partition(scores, rank - 1)[rank - 1])
+
+
+def leave_one_out_exceeds(scores: np.ndarray, q: float) -> np.ndarray:
+    """(n,) bool: each score above the conformal quantile of the OTHER n - 1 scores.
+
+    This is the held-out flag of each calibration row as if it were a fresh record: its count is
+    n - ceil(n q) (about n (1 - q)), where counting the rows above the quantile of all n scores gives
+    n - ceil((n + 1) q), one fewer row, which biases a drift baseline low by up to 1 / n (25 % at n = 400,
+    q = 0.99). Ties count as not above.
+    """
+    n = scores.size
+    if n < 2:
+        return np.zeros(n, dtype=bool)
+    rank = min(int(math.ceil(n * q - 1e-9)), n - 1)             # rank among the n - 1 others (1-based)
+    ordered = np.sort(scores)
+    position = np.argsort(np.argsort(scores, kind="stable"), kind="stable")   # 0-based rank of each score
+    # Without row i, the rank-th smallest of the others is ordered[rank - 1] when i sits above it, else ordered[rank].
+    threshold = np.where(position >= rank, ordered[rank - 1], ordered[min(rank, n - 1)])
+    return scores > threshold
 
 
 def segment_medians(scores: np.ndarray, segments: np.ndarray, k: int) -> np.ndarray:
@@ -205,13 +227,18 @@ def calibrate(values: np.ndarray, *, segments: np.ndarray, labels: np.ndarray, r
                             for c in range(k)])
     final_d = segment_medians(in_sample_distance, segments, k)
     final_r = segment_medians(in_sample_residual, segments, k) if has_residual else np.zeros(k)
+    flagged = np.zeros(n, dtype=bool)
+    pooled_flags = leave_one_out_exceeds(score, q)
+    for c in range(k):
+        members = segments == c
+        flagged[members] = pooled_flags[members] if borrowed[c] else leave_one_out_exceeds(score[members], q)
     return Calibration(
         distance_thresholds=multipliers * final_d,
         residual_thresholds=multipliers * final_r,
         multipliers=multipliers,
         borrowed=borrowed,
         held_out_counts=counts,
-        flagged=score > multipliers[segments],
+        flagged=flagged,
         residuals=residual,
         pooled_residual_threshold=conformal_quantile(residual, q) if has_residual else 0.0,
         held_out=held_out,
