@@ -3,7 +3,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed-stamp
 
-.PHONY: demo test bench clean
+.PHONY: demo test bench calibrate clean
 
 $(STAMP): pyproject.toml
 	python3 -m venv $(VENV)
@@ -22,6 +22,9 @@ bench: $(STAMP)  ## in-process benchmarks (figures for the README)
 	$(BIN)/python bench/bench_fit.py
 	$(BIN)/python bench/bench_assign.py
 	$(BIN)/python bench/bench_drift.py
+
+calibrate: $(STAMP)  ## calibration sweeps of the outlier flag and the drift p-values (figures for the README)
+	$(BIN)/python bench/calibrate.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info

@@ -79,6 +79,7 @@ class OutlierDrift(_Finite):
     expected_count: int | None = None     # held-out training rows flagged
     expected_records: int | None = None   # held-out training rows scored
     rate_ratio: float | None = None   # observed / Jeffreys-smoothed training rate
+    ratio_to_upper_bound: float | None = None  # observed / upper 97.5 % Jeffreys limit of it (graded)
 
 
 class ResidualDrift(_Finite):

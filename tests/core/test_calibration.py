@@ -121,15 +121,17 @@ def test_small_segment_borrows_the_pooled_threshold_and_is_not_flagged_wholesale
 @pytest.mark.parametrize("n_train", [1_000, 10_000])
 def test_every_p_value_is_calibrated_under_the_null(n_train):
     # Reference: the definition of a p-value. 200 independent (training, batch) pairs from the drift model per
-    # batch size: every p-value (and q-value) the report shows is below 0.01 in at most 2 % of them, allowing
-    # binomial noise per slot: with a true rate of 1 %, P(Binomial(200, 0.01) >= 7) = 0.005, so a slot may show
-    # up to 6 of 200 (3 %); the slots of one report pooled stay under 2 %. No batch may be reported "alert".
+    # batch size; every p-value (and q-value) the report shows is below 0.01 in about 1 % of them. Binomial
+    # noise per slot: P(Binomial(200, 0.01) >= 8) = 0.0015, so over ~20 distinct tests a slot may show up to 7
+    # of 200 (3.5 %) by chance; the p-values of all real tests pooled (~4,000) must stay at or under 2 %
+    # (the bound; SD of the pooled share ~0.16 % at a true 1 %). No batch may be reported "alert".
     found = null_reports(n_train=n_train, batch_sizes=(500, 2_000, 20_000), pairs=200, seed=21)
     for n, result in found.items():
         shares = {slot: float(np.mean(p < 0.01)) for slot, p in result["p"].items()}
         worst = max(shares, key=shares.get)
-        assert shares[worst] <= 0.03, (n, worst, shares[worst])
-        pooled = np.mean(np.concatenate(list(result["p"].values())) < 0.01)
+        assert shares[worst] <= 7 / 200, (n, worst, shares[worst])
+        tests = [p for slot, p in result["p"].items() if slot.endswith(" p") and np.any(p < 1.0)]
+        pooled = float(np.mean(np.concatenate(tests) < 0.01))
         assert pooled <= 0.02, (n, pooled)
         assert result["status"].get("alert", 0) == 0, (n, result["status"])
 
