@@ -79,7 +79,8 @@ class OutlierDrift(_Finite):
     expected_count: int | None = None     # held-out training rows flagged
     expected_records: int | None = None   # held-out training rows scored
     rate_ratio: float | None = None   # observed / Jeffreys-smoothed training rate
-    ratio_to_upper_bound: float | None = None  # observed / upper 97.5 % Jeffreys limit of it (graded)
+    ratio_lower_bound: float | None = None  # lower 2.5 % Jeffreys limit of the batch rate / upper 97.5 % of
+    #                                          the training rate: the graded effect size
 
 
 class ResidualDrift(_Finite):

@@ -263,16 +263,17 @@ def test_outlier_rate_matches_fisher_exact():
     expected = stats.fisher_exact([[61, 1939], [200, 9800]], alternative="greater").pvalue
     assert result["p_value"] == pytest.approx(expected, rel=1e-12)
     assert result["observed_rate"] == 61 / 2000
-    # Rate ratio to the Jeffreys-smoothed baseline (200.5 / 10,001); the graded ratio uses the upper 97.5 %
-    # Jeffreys limit of the baseline (scipy.stats.beta.ppf(0.975, 200.5, 9800.5) = 0.0229).
+    # Rate ratio to the Jeffreys-smoothed baseline (200.5 / 10,001); the graded ratio is the lower 2.5 % Jeffreys
+    # limit of the batch rate over the upper 97.5 % limit of the baseline (scipy.stats.beta.ppf).
     assert result["rate_ratio"] == pytest.approx(61 / 2000 / (200.5 / 10_001))
-    upper = stats.beta.ppf(0.975, 200.5, 9800.5)
-    assert result["ratio_to_upper_bound"] == pytest.approx(61 / 2000 / upper)
-    # 1.33x the upper limit, significant -> stable (below the watch ratio 1.5); 1.75x -> watch; 2.6x -> alert.
+    upper = stats.beta.ppf(0.975, 200.5, 9800.5)                          # 0.0229
+    assert result["ratio_lower_bound"] == pytest.approx(stats.beta.ppf(0.025, 61.5, 1939.5) / upper)
+    # 61 flags: lower limit 0.0236, ratio 1.03 -> stable although significant; 100 flags: 0.0411 / 0.0229 = 1.80
+    # -> watch; 150 flags: 0.0641 / 0.0229 = 2.80 -> alert.
     assert expected < RULES.alpha and result["status"] == "stable"
-    flagged[:80] = True
+    flagged[:100] = True
     assert outlier_drift(200, 10_000, flagged, RULES)["status"] == "watch"
-    flagged[:120] = True
+    flagged[:150] = True
     assert outlier_drift(200, 10_000, flagged, RULES)["status"] == "alert"
 
 
