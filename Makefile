@@ -3,7 +3,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed-stamp
 
-.PHONY: demo test bench clean
+.PHONY: demo test bench calibrate clean
 
 # `make demo` and `make test` started at once on a fresh clone must not both build .venv: the set-up runs
 # under an exclusive lock (flock, util-linux), and whoever gets it second finds the stamp fresh and skips.
@@ -30,6 +30,9 @@ bench: $(STAMP)  ## in-process benchmarks (figures for the README)
 	$(BIN)/python bench/bench_fit.py
 	$(BIN)/python bench/bench_assign.py
 	$(BIN)/python bench/bench_drift.py
+
+calibrate: $(STAMP)  ## calibration sweeps of the outlier flag and the drift p-values (figures for the README)
+	$(BIN)/python bench/calibrate.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info .setup.lock

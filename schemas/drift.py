@@ -29,7 +29,7 @@ class MissingShare(_Finite):
 
 class FeatureDrift(_Finite):
     name: str
-    psi: float                        # observed values on the training decile bins
+    psi: float                        # observed values on the feature's training bins (Jeffreys-smoothed)
     ks_statistic: float
     p_value: float                    # two-sample KS against the stored training sample
     q_value: float                    # Benjamini-Hochberg over the features' KS p-values
@@ -37,32 +37,56 @@ class FeatureDrift(_Finite):
     missing_share: MissingShare
     status: Status
     n_observed: int | None = None
+    bins: Literal["categories", "quantiles"] | None = None  # by value (<= 20 distinct) or training deciles
     reasons: list[Literal["distribution", "missing_share"]] = []
+
+
+class SegmentShare(_Finite):
+    """One segment's share, training vs batch (a two-sample test per segment, BH over the segments)."""
+
+    id: int
+    label: str | None = None          # the segment's label in the store, if any
+    expected_share: float             # training rows of the segment (the assign rule) / training rows
+    observed_share: float
+    expected_count: int
+    observed_count: int
+    cohens_h: float                   # 2 asin sqrt(observed) - 2 asin sqrt(expected) (the effect size)
+    p_value: float                    # 2 x 2 Pearson chi-square, or Fisher exact for small expected counts
+    q_value: float                    # Benjamini-Hochberg over the segments
+    status: Status
 
 
 class SegmentDrift(_Finite):
     expected_share: list[float]
     observed_share: list[float]
-    psi: float
-    chi2: float
-    p_value: float
-    status: Status
+    psi: float                        # over the segments, Jeffreys-smoothed shares
+    chi2: float                       # Pearson's statistic of the 2 x k training-vs-batch table
+    p_value: float                    # chi-square test of homogeneity (or its Monte Carlo exact version)
+    status: Status                    # the worst of the mix and the segments
     observed_count: list[int] | None = None
+    expected_count: list[int] | None = None   # training counts (the assign rule on the training rows)
+    test: Literal["chi-square", "monte-carlo exact", "none"] | None = None
+    mix_status: Status | None = None  # the mix alone (chi-square and PSI)
+    by_segment: list[SegmentShare] = []
 
 
 class OutlierDrift(_Finite):
-    expected_rate: float
+    expected_rate: float              # held-out flag rate of the training rows (the drift baseline)
     observed_rate: float
-    p_value: float                    # exact binomial test, one-sided (rate went up)
+    p_value: float                    # Fisher exact, one-sided (rate went up), batch vs held-out counts
     status: Status
     observed_count: int | None = None
-    rate_ratio: float | None = None   # observed / training rate (training rate floored at 1e-4)
+    expected_count: int | None = None     # held-out training rows flagged
+    expected_records: int | None = None   # held-out training rows scored
+    rate_ratio: float | None = None   # observed / Jeffreys-smoothed training rate
+    ratio_lower_bound: float | None = None  # lower 2.5 % Jeffreys limit of the batch rate / upper 97.5 % of
+    #                                          the training rate: the graded effect size
 
 
 class ResidualDrift(_Finite):
-    expected_median: float
+    expected_median: float            # median held-out training residual
     observed_median: float
-    p_value: float                    # Mann-Whitney U, one-sided (batch residuals larger)
+    p_value: float                    # Mann-Whitney U, one-sided, vs held-out training residuals
     status: Status
     median_ratio: float | None = None
     available: bool = True            # false without a PCA residual (then p 1, stable)
@@ -76,7 +100,10 @@ class DriftRules(_Finite):
     outlier_ratio_alert: float
     residual_ratio_watch: float
     residual_ratio_alert: float
-    psi_floor: float
+    segment_h_watch: float | None = None
+    segment_h_alert: float | None = None
+    smoothing: str | None = None      # "jeffreys": PSI shares (c + 0.5) / (n + bins / 2)
+    psi_floor: float | None = None    # reports written before the smoothing used a fixed floor
 
 
 class DriftReport(_Finite):

@@ -76,6 +76,11 @@ class Segment(BaseModel):
     distance_threshold: float
     centroid: dict[str, float]
     profile: dict[str, FeatureProfile]
+    clusterer_size: int | None = Field(None, description="the clusterer's own count (size counts the assign rule)")
+    residual_threshold: float | None = Field(None, description="the segment's residual limit (0 without one)")
+    threshold_source: Literal["own", "pooled"] | None = Field(
+        None, description="own held-out scores, or the pooled multiplier for a segment with few rows")
+    held_out_flag_rate: float | None = Field(None, description="share of its held-out training rows flagged")
 
 
 class Quality(BaseModel):
@@ -111,6 +116,7 @@ class FitReport(BaseModel):
     residual_threshold: float
     residual_limit_jm: float
     training_outlier_rate: float
+    calibration: dict[str, Any] | None = Field(None, description="how the outlier thresholds were calibrated")
     imputation_medians: dict[str, float]
     data_sha256: str
     bundle_sha256: str

@@ -53,7 +53,8 @@ def build_and_store(store: FilesystemStore, loaded: LoadedVersion, values, rules
     """Assign (fast path), compute the report, check it against the schema, store it. CPU-bound: run in a thread."""
     assignment, _ = run_assignment(loaded, values)
     body = compute_drift(loaded.bundle.reference, loaded.bundle.features, values, assignment, rules=rules,
-                         residual_available=loaded.compiled.has_residual)
+                         residual_available=loaded.compiled.has_residual,
+                         labels=store.labels(loaded.name, loaded.version))
     report = {"id": uuid.uuid4().hex, "name": loaded.name, "version": loaded.version, "created_at": _now(),
               **body, "skipped_records": len({e["record"] for e in errors}), "errors": errors[:MAX_LISTED_PROBLEMS]}
     # A report that breaks the contract (e.g. a NaN) fails here, before anything is stored.

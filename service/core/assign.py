@@ -1,14 +1,20 @@
 """The assign hot path: a bundle compiled into plain numpy arrays.
 
-Imputer-free scaling followed by PCA is one affine map ``z = x @ A + c``. The same product also gives the
-record's coordinates in the orthogonal complement of the kept PCA axes, whose length is the PCA residual,
-so one matrix product per chunk yields both: ``x @ [A | B] + [c | b]``. Centroids are ranked by the
-expansion ``||z - m||^2 = ||z||^2 - 2 z.m + ||m||^2`` (one more small product); rows where that expansion
-cannot be trusted to about 1e-10 (a record very close to a centroid, or two centroids nearly tied) are
-recomputed directly. Batches are processed in chunks laid out one row per dimension, so that every step
-is an elementwise operation over a whole chunk. No scikit-learn call and no DataFrame run per request.
-``tests/core/test_assign.py`` checks labels, distances, runner-ups and residuals against the stored
-scikit-learn objects on every supported configuration.
+Imputer-free scaling is elementwise: ``u = (x - centre) * scale - space_centre``, the centre subtracted FIRST
+(as scikit-learn's scalers do), so a feature with a large offset (1e9 + N(0, 1)) does not cancel; the PCA
+mean of the scaled data is folded into ``space_centre``. PCA scores are then ``z = u @ axes.T`` and the PCA
+residual is the length of ``u - z @ axes``, the row minus its reconstruction, computed per chunk: memory
+linear in p x d (no p x p basis of the orthogonal complement is ever built). Without PCA the clustering
+space is ``u`` itself. Centroids are ranked by the expansion ``||z - m||^2 = ||z||^2 - 2 z.m + ||m||^2`` (one
+more small product); rows where that expansion cannot be trusted to about 1e-10 (a record very close to a
+centroid, or two centroids nearly tied) are recomputed directly. Batches are processed in chunks laid out one
+row per dimension, so that every step is an elementwise operation over a whole chunk. No scikit-learn call
+and no DataFrame run per request. ``tests/core/test_assign.py`` checks labels, distances, runner-ups and
+residuals against the stored scikit-learn objects on every supported configuration.
+
+The outlier flag is per segment: a record of segment c is flagged when its distance exceeds
+``distance_thresholds[c]`` or its residual exceeds ``residual_thresholds[c]`` (both calibrated together on
+held-out rows by ``service.core.calibration``).
 """
 
 from __future__ import annotations
@@ -20,9 +26,9 @@ from sklearn.preprocessing import MinMaxScaler, RobustScaler, StandardScaler
 
 from service.core.bundle import Bundle
 
-# Records per chunk of the batch path: bounds the temporaries ((d + r) x chunk floats each). On a 2-vCPU
-# EPYC (100,000 x 20, d + r = 20, k = 8, one BLAS thread), 8192 and 16384 were fastest, 4096 ~10 % and
-# 1024 ~50 % slower: fewer chunks mean fewer numpy calls.
+# Records per chunk of the batch path: bounds the temporaries ((d + p) x chunk floats each). On a 2-vCPU
+# EPYC (100,000 x 20, k = 8, one BLAS thread), 8192 and 16384 were fastest, 4096 ~10 % and 1024 ~50 %
+# slower: fewer chunks mean fewer numpy calls.
 CHUNK_ROWS = 8192
 # Up to this many rows, distances to every centroid are computed directly (no expansion, no chunk loop).
 DIRECT_ROWS = 16
@@ -36,19 +42,18 @@ RECOMPUTE_ELEMENTS = 1 << 20  # bounds the (rows, k, d) temporary of a direct re
 
 @dataclass(frozen=True)
 class CompiledBundle:
-    """A fitted bundle as plain arrays. Shapes: p features, d clustering dimensions, r residual dimensions
-    (p - kept PCA components; 0 without PCA or when PCA keeps every dimension), k segments."""
+    """A fitted bundle as plain arrays. Shapes: p features, d clustering dimensions, k segments."""
 
     features: tuple[str, ...]
     medians: np.ndarray             # (p,) imputation values
-    scale: np.ndarray               # (p,) elementwise scaling: scaled = x * scale + shift
-    shift: np.ndarray               # (p,)
-    projection: np.ndarray          # (p, d + r): x @ projection + projection_offset = [z | residual coordinates]
-    projection_offset: np.ndarray   # (d + r,)
+    centre: np.ndarray              # (p,) subtracted first: u = (x - centre) * scale - space_centre
+    scale: np.ndarray               # (p,)
+    space_centre: np.ndarray        # (p,) the scaled training mean PCA removes (minus a MinMax range start)
+    axes: np.ndarray | None         # (d, p) orthonormal PCA axes; None without PCA (the space is u itself)
     centroids: np.ndarray           # (k, d)
     centroid_sq_norms: np.ndarray   # (k,)
     distance_thresholds: np.ndarray  # (k,)
-    residual_threshold: float
+    residual_thresholds: np.ndarray  # (k,) 0 without a residual
 
     @property
     def k(self) -> int:
@@ -61,20 +66,39 @@ class CompiledBundle:
 
     @property
     def has_residual(self) -> bool:
-        return self.projection.shape[1] > self.n_dims
+        """Whether PCA drops dimensions (then records have a reconstruction error)."""
+        return self.axes is not None and self.axes.shape[0] < self.axes.shape[1]
 
     @property
     def affine(self) -> np.ndarray:
-        """(p, d): x @ affine + offset is the record in the clustering space."""
-        return self.projection[:, : self.n_dims]
+        """(p, d) matrix A with ``project(x) == (x - centre) @ A + offset`` (built on demand, for benchmarks)."""
+        if self.axes is None:
+            return np.diag(self.scale)
+        return self.scale[:, None] * self.axes.T
 
     @property
     def offset(self) -> np.ndarray:
-        return self.projection_offset[: self.n_dims]
+        return -self.space_centre if self.axes is None else -(self.axes @ self.space_centre)
+
+    def centred(self, values: np.ndarray) -> np.ndarray:
+        """(n, p) imputed raw rows -> the centred scaled rows u (the PCA mean removed)."""
+        u = values - self.centre
+        u *= self.scale
+        u -= self.space_centre
+        return u
 
     def project(self, values: np.ndarray) -> np.ndarray:
         """(n, p) imputed raw rows (no NaN) -> (n, d) coordinates in the clustering space."""
-        return values @ self.affine + self.offset
+        u = self.centred(values)
+        return u if self.axes is None else u @ self.axes.T
+
+    def residuals(self, values: np.ndarray) -> np.ndarray:
+        """(n,) length of each centred scaled row minus its PCA reconstruction (0 without a residual)."""
+        if not self.has_residual:
+            return np.zeros(values.shape[0])
+        u = self.centred(values)
+        u -= (u @ self.axes.T) @ self.axes
+        return np.sqrt(np.einsum("ij,ij->i", u, u))
 
 
 @dataclass(frozen=True)
@@ -85,63 +109,52 @@ class Assignment:
     margin: np.ndarray | None      # runner-up distance minus nearest distance
     residual: np.ndarray           # (n,) distance to the PCA reconstruction (0 without PCA)
     far: np.ndarray                # (n,) bool: distance over the segment's threshold
-    off_plane: np.ndarray          # (n,) bool: residual over the version's threshold
+    off_plane: np.ndarray          # (n,) bool: residual over the segment's residual threshold
 
     @property
     def outlier(self) -> np.ndarray:
         return self.far | self.off_plane
 
 
-def _elementwise_scaling(scaler, n_features: int) -> tuple[np.ndarray, np.ndarray]:
-    """(scale, shift) with scaler.transform(x) == x * scale + shift."""
+def elementwise_scaling(scaler, n_features: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(centre, scale, after) with ``scaler.transform(x) == (x - centre) * scale + after``.
+
+    The centre is subtracted before scaling, as StandardScaler and RobustScaler do (``(x - mean_) / scale_``);
+    MinMaxScaler computes ``x * scale_ + min_``, which equals ``(x - data_min_) * scale_ + range start`` and
+    is taken in that form so that a large offset does not cancel.
+    """
     if scaler is None:
-        return np.ones(n_features), np.zeros(n_features)
+        return np.zeros(n_features), np.ones(n_features), np.zeros(n_features)
     if isinstance(scaler, StandardScaler):
-        inv = 1.0 / scaler.scale_
-        return inv, -scaler.mean_ * inv
+        centre = scaler.mean_ if scaler.with_mean else np.zeros(n_features)
+        return centre.astype(np.float64).copy(), 1.0 / scaler.scale_, np.zeros(n_features)
     if isinstance(scaler, RobustScaler):
-        inv = 1.0 / scaler.scale_
-        return inv, -scaler.center_ * inv
+        return scaler.center_.astype(np.float64).copy(), 1.0 / scaler.scale_, np.zeros(n_features)
     if isinstance(scaler, MinMaxScaler):
-        return scaler.scale_.copy(), scaler.min_.copy()
+        start = float(scaler.feature_range[0])
+        return scaler.data_min_.astype(np.float64).copy(), scaler.scale_.copy(), np.full(n_features, start)
     raise TypeError(f"no elementwise form for {type(scaler).__name__}")
 
 
-def _complement_basis(axes: np.ndarray) -> np.ndarray:
-    """(p, p - d) orthonormal basis of the complement of the row space of ``axes`` (d, p; orthonormal rows).
-
-    For a centred scaled row u, the PCA reconstruction error u - axes.T @ axes @ u is the projection of u
-    on this complement, so its length is ||u @ basis||: no difference of nearly equal vectors, and linear
-    in the raw row, so it folds into the same product as the PCA scores.
-    """
-    _, _, vt = np.linalg.svd(axes, full_matrices=True)
-    return vt[axes.shape[0]:].T
-
-
 def compile_bundle(bundle: Bundle) -> CompiledBundle:
+    """Plain arrays for the hot path; memory linear in p x d (no p x p matrix; see the module docstring)."""
     p = len(bundle.features)
-    scale, shift = _elementwise_scaling(bundle.scaler, p)
+    centre, scale, after = elementwise_scaling(bundle.scaler, p)
     pca = bundle.pca
-    if pca is None:
-        basis = np.eye(p)                                   # the clustering space is the scaled space
-        centre = shift
-    else:
-        basis = pca.components_.T                           # (p, d)
-        if pca.n_components_ < p:
-            basis = np.hstack([basis, _complement_basis(pca.components_)])
-        centre = shift - pca.mean_
+    space_centre = -after if pca is None else pca.mean_.astype(np.float64) - after
+    axes = None if pca is None else np.ascontiguousarray(pca.components_, dtype=np.float64)
     centroids = np.ascontiguousarray(bundle.centroids, dtype=np.float64)
     return CompiledBundle(
         features=tuple(bundle.features),
         medians=bundle.imputer.statistics_.astype(np.float64).copy(),
-        scale=scale,
-        shift=shift,
-        projection=np.ascontiguousarray(scale[:, None] * basis),
-        projection_offset=centre @ basis,
+        centre=centre,
+        scale=np.asarray(scale, dtype=np.float64),
+        space_centre=np.asarray(space_centre, dtype=np.float64),
+        axes=axes,
         centroids=centroids,
         centroid_sq_norms=np.einsum("ij,ij->i", centroids, centroids),
         distance_thresholds=np.asarray(bundle.distance_thresholds, dtype=np.float64),
-        residual_threshold=float(bundle.residual_threshold),
+        residual_thresholds=np.asarray(bundle.residual_thresholds, dtype=np.float64),
     )
 
 
@@ -163,7 +176,8 @@ def assign(compiled: CompiledBundle, values: np.ndarray) -> Assignment:
     distance = np.sqrt(first_sq)
     margin = None if runner_up is None else np.sqrt(second_sq) - distance
     far = distance > compiled.distance_thresholds[segment]
-    off_plane = residual > compiled.residual_threshold if compiled.has_residual else np.zeros(residual.size, bool)
+    off_plane = (residual > compiled.residual_thresholds[segment] if compiled.has_residual
+                 else np.zeros(residual.size, bool))
     return Assignment(segment, distance, runner_up, margin, residual, far, off_plane)
 
 
@@ -179,22 +193,41 @@ def _two_nearest(compiled: CompiledBundle, z: np.ndarray):
 
 
 def _assign_direct(compiled: CompiledBundle, values: np.ndarray):
-    """Few rows: one product, then direct distances to every centroid."""
-    d = compiled.n_dims
-    projected = values @ compiled.projection
-    projected += compiled.projection_offset
-    tail = projected[:, d:]
-    return (*_two_nearest(compiled, projected[:, :d]), np.sqrt(np.einsum("ij,ij->i", tail, tail)))
+    """Few rows: project, then direct distances to every centroid."""
+    u = compiled.centred(values)
+    z = u if compiled.axes is None else u @ compiled.axes.T
+    if compiled.has_residual:
+        u -= z @ compiled.axes
+        residual = np.sqrt(np.einsum("ij,ij->i", u, u))
+    else:
+        residual = np.zeros(values.shape[0])
+    return (*_two_nearest(compiled, z), residual)
+
+
+def _project_chunk(compiled: CompiledBundle, chunk: np.ndarray, tail_sq: np.ndarray) -> np.ndarray:
+    """(d, rows) clustering coordinates of a chunk, one row per dimension; writes squared residuals to tail_sq."""
+    u_t = (chunk - compiled.centre).T                     # (p, rows): the centre first (no cancellation)
+    u_t *= compiled.scale[:, None]
+    u_t -= compiled.space_centre[:, None]
+    if compiled.axes is None:
+        tail_sq[:] = 0.0
+        return u_t
+    z = compiled.axes @ u_t                               # (d, rows)
+    if compiled.has_residual:
+        u_t -= compiled.axes.T @ z                        # the row minus its reconstruction
+        u_t *= u_t
+        np.add.reduce(u_t, axis=0, out=tail_sq)
+    else:
+        tail_sq[:] = 0.0
+    return z
 
 
 def _assign_chunked(compiled: CompiledBundle, values: np.ndarray):
-    """Many rows, in chunks. A chunk is projected as a (d + r, rows) array, one row per dimension, so every
+    """Many rows, in chunks. A chunk is projected as a (d, rows) array, one row per dimension, so every
     step below is an elementwise operation over the whole chunk (numpy reductions along rows of 5 or 8
     values cost far more per value)."""
     n = values.shape[0]
     d, k = compiled.n_dims, compiled.k
-    projection_t = compiled.projection.T                   # (d + r, p); BLAS reads it transposed, no copy
-    offset = compiled.projection_offset[:, None]
     minus_two_centroids = -2.0 * compiled.centroids         # (k, d)
     centroid_sq = compiled.centroid_sq_norms[:, None]
     id_mask = np.int64((1 << max(1, (k - 1).bit_length())) - 1)
@@ -206,12 +239,9 @@ def _assign_chunked(compiled: CompiledBundle, values: np.ndarray):
     for start in range(0, n, CHUNK_ROWS):
         stop = min(start + CHUNK_ROWS, n)
         columns = np.arange(stop - start)
-        projected = projection_t @ values[start:stop].T     # (d + r, rows): [z | residual coordinates]
-        projected += offset
-        squares = projected * projected
-        np.add.reduce(squares[:d], axis=0, out=z_sq[start:stop])
-        np.add.reduce(squares[d:], axis=0, out=tail_sq[start:stop])
-        scores = minus_two_centroids @ projected[:d]         # (k, rows): ||z - m||^2 - ||z||^2
+        projected = _project_chunk(compiled, values[start:stop], tail_sq[start:stop])   # (d, rows)
+        np.add.reduce(projected * projected, axis=0, out=z_sq[start:stop])
+        scores = minus_two_centroids @ projected             # (k, rows): ||z - m||^2 - ||z||^2
         scores += centroid_sq
         # Rank on a copy whose lowest mantissa bits hold the segment id: the two smallest then come from
         # elementwise minimum/maximum over the k rows, and each winner carries its id. Tagging moves a score
@@ -240,8 +270,7 @@ def _assign_chunked(compiled: CompiledBundle, values: np.ndarray):
     rows = np.flatnonzero(doubtful)
     step = max(1, RECOMPUTE_ELEMENTS // (k * d))
     for part in (rows[i:i + step] for i in range(0, rows.size, step)):
-        nearest, nearest_sq, runner_up, runner_up_sq = _two_nearest(compiled, values[part] @ compiled.affine
-                                                                    + compiled.offset)
+        nearest, nearest_sq, runner_up, runner_up_sq = _two_nearest(compiled, compiled.project(values[part]))
         first[part], first_sq[part] = nearest, nearest_sq
         if k > 1:
             second[part], second_sq[part] = runner_up, runner_up_sq

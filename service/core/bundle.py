@@ -59,19 +59,33 @@ class FitConfig:
 
 @dataclass(frozen=True)
 class ReferenceProfile:
-    """Training distribution summary kept for drift checks (raw, original units)."""
+    """Training distribution summary kept for drift checks (raw, original units).
+
+    Every field is a plain type (numpy arrays, numbers, strings, lists of them). Segment counts, the outlier
+    baseline and the residual sample come from the same assignment of the training rows as the fit report's
+    sizes and the thresholds: the assign rule (nearest centroid of the fitted model). The outlier baseline
+    and the residual sample are HELD-OUT figures (each row scored by a cross-fitted model that did not see
+    it), because in-sample scores are biased low (see ``service.core.calibration``).
+    """
 
     n_records: int
-    bin_edges: list[np.ndarray]          # per feature: inner decile edges (bins are (e[i-1], e[i]])
-    bin_counts: list[np.ndarray]         # per feature: observed (non-missing) counts per bin
+    bin_kinds: list[str]                 # per feature: "categories" (<= 20 distinct values) or "quantiles"
+    bin_edges: list[np.ndarray]          # quantiles: inner decile edges (bins (e[i-1], e[i]]); categories: values
+    bin_counts: list[np.ndarray]         # per feature: observed counts per bin (categories: + "other", last)
     means: np.ndarray                    # (n_features,) of observed values
     stds: np.ndarray                     # population std of observed values
     missing_share: np.ndarray            # (n_features,)
+    missing_count: np.ndarray            # (n_features,) int
     sample: np.ndarray                   # (<= reference_sample, n_features), raw, NaN = missing
-    segment_shares: np.ndarray           # (k,) shares by nearest centroid (the assign rule)
-    outlier_rate: float                  # share of training records the assign rule flags
-    residual_sample: np.ndarray          # (<= reference_sample,) training PCA residuals
-    residual_median: float
+    segment_counts: np.ndarray           # (k,) int: training rows per segment by the assign rule
+    outlier_count: int                   # held-out training rows the assign rule's thresholds flag
+    outlier_rate: float                  # outlier_count / n_records
+    residual_sample: np.ndarray          # (<= reference_sample,) held-out PCA residuals
+    residual_median: float               # median of all held-out residuals
+
+    @property
+    def segment_shares(self) -> np.ndarray:
+        return self.segment_counts / max(int(self.segment_counts.sum()), 1)
 
 
 @dataclass(frozen=True)
@@ -83,8 +97,9 @@ class Bundle:
     pca: PCA | None
     clusterer: Any                       # KMeans | AgglomerativeClustering (fitted)
     centroids: np.ndarray                # (k, n_dims) in the clustering space
-    distance_thresholds: np.ndarray      # (k,)
-    residual_threshold: float
+    distance_thresholds: np.ndarray      # (k,) per segment, held-out calibrated
+    residual_thresholds: np.ndarray      # (k,) per segment, held-out calibrated (0 without a residual)
+    residual_threshold: float            # pooled held-out residual quantile (for comparison; not the flag)
     residual_limit_jm: float
     reference: ReferenceProfile
     report: dict[str, Any]               # fit report, without identity fields (name, version, ...)

@@ -25,6 +25,7 @@ from sklearn.metrics import silhouette_score
 from sklearn.preprocessing import MinMaxScaler, RobustScaler, StandardScaler
 
 from service.core.bundle import Bundle, FitConfig, ReferenceProfile
+from service.core.calibration import Calibration, calibrate
 from service.errors import InvalidInput, RecordProblem
 
 SCALERS = {"standard": StandardScaler, "robust": RobustScaler, "minmax": MinMaxScaler, "none": None}
@@ -32,6 +33,8 @@ METHODS = ("kmeans", "agglomerative")
 LINKAGES = ("complete", "average", "single", "ward")
 SELECTIONS = ("elbow", "silhouette")
 DECILES = np.linspace(0.1, 0.9, 9)
+# A feature with at most this many distinct training values is binned by value (drift), not by quantile.
+MAX_CATEGORIES = 20
 
 
 # A feature whose population standard deviation is at most NEAR_CONSTANT_RTOL times its largest magnitude is
@@ -261,10 +264,6 @@ def library_versions() -> dict[str, str]:
     }
 
 
-def _quantile_threshold(distances: np.ndarray, q: float) -> float:
-    return float(np.quantile(distances, q)) if distances.size else 0.0
-
-
 def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int = 20_000) -> Bundle:
     """Fit the whole bundle on ``values`` (n_records, n_features), NaN = missing."""
     check_fit_inputs(values, config, max_agglomerative_rows=max_agglomerative_rows)
@@ -308,29 +307,30 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
     clusterer, labels, centroids = fitted[chosen]
     del fitted
 
-    # Distances and thresholds follow the assign rule: nearest centroid in the clustering space.
+    # One truth for sizes: the assign rule (nearest centroid in the clustering space) applied to the training
+    # rows gives the report's sizes and shares, the segments the thresholds are calibrated on, and the drift
+    # baseline. The clusterer's own sizes are reported beside them (equal for k-means up to rare ties).
     nearest = _nearest(space, centroids)
     distances = np.sqrt(_own_sq_distances(space, centroids, nearest))
-    thresholds = np.array([
-        _quantile_threshold(distances[nearest == c], q) if np.any(nearest == c) else _quantile_threshold(distances, q)
-        for c in range(chosen)
-    ])
-
+    has_residual = pca is not None and pca.n_components_ < n_features
     residuals = np.zeros(n_records)
-    residual_threshold = 0.0
     residual_limit = 0.0
-    if pca is not None and pca.n_components_ < n_features:
+    if has_residual:
         centred = scaled - pca.mean_
         residuals = np.linalg.norm(centred - (centred @ pca.components_.T) @ pca.components_, axis=1)
-        residual_threshold = _quantile_threshold(residuals, q)
         # All eigenvalues of the scaled data's covariance (ddof=1, as PCA.explained_variance_).
         eigenvalues = np.linalg.svd(centred, compute_uv=False) ** 2 / (n_records - 1)
         residual_limit = jackson_mudholkar_limit(eigenvalues[pca.n_components_:], q)
+    raw_centroids = _centroids_in_raw_units(centroids, scaler, pca)
+    calibration = calibrate(
+        values, segments=nearest, labels=labels, raw_centroids=raw_centroids, in_sample_distance=distances,
+        in_sample_residual=residuals, has_residual=has_residual, scaler_cls=scaler_cls,
+        n_components=None if pca is None else int(pca.n_components_), method=config.method, q=q, seed=config.seed)
+    residual_threshold = calibration.pooled_residual_threshold
 
-    flagged = (distances > thresholds[nearest]) | (residuals > residual_threshold)
     rng = np.random.default_rng(config.seed)
     sample_rows = np.sort(rng.choice(n_records, size=min(n_records, config.reference_sample), replace=False))
-    reference = _reference_profile(values, nearest, chosen, flagged, residuals, sample_rows)
+    reference = _reference_profile(values, nearest, chosen, calibration, sample_rows)
 
     fit_warnings = _fit_warnings(config, labels, chosen, n_records)
     silhouette = next(row["silhouette"] for row in curve if row["k"] == chosen)
@@ -347,7 +347,7 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
                       "curve": curve},
         "distortion": inertia / n_records,
         "inertia": inertia,
-        "segments": _describe_segments(values, labels, centroids, thresholds, chosen, imputer, scaler, pca, config),
+        "segments": _describe_segments(values, labels, nearest, raw_centroids, calibration, chosen, config),
         "quality": {
             "inertia": inertia,
             "distortion": inertia / n_records,
@@ -356,7 +356,8 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
         },
         "residual_threshold": residual_threshold,
         "residual_limit_jm": residual_limit,
-        "training_outlier_rate": float(flagged.mean()),
+        "training_outlier_rate": reference.outlier_rate,
+        "calibration": calibration.as_report(q),
         "imputation_medians": dict(zip(config.features, (float(v) for v in imputer.statistics_))),
         "data_sha256": data_sha256(values),
         "library_versions": library_versions(),
@@ -370,7 +371,8 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
         pca=pca,
         clusterer=clusterer,
         centroids=np.ascontiguousarray(centroids, dtype=np.float64),
-        distance_thresholds=thresholds,
+        distance_thresholds=calibration.distance_thresholds,
+        residual_thresholds=calibration.residual_thresholds,
         residual_threshold=residual_threshold,
         residual_limit_jm=residual_limit,
         reference=reference,
@@ -405,43 +407,71 @@ def _fit_warnings(config: FitConfig, labels: np.ndarray, k: int, n_records: int)
     return found
 
 
-def _reference_profile(values: np.ndarray, nearest: np.ndarray, k: int, flagged: np.ndarray,
-                       residuals: np.ndarray, sample_rows: np.ndarray) -> ReferenceProfile:
-    edges, counts = [], []
+def feature_bins(column: np.ndarray) -> tuple[str, np.ndarray, np.ndarray]:
+    """Bins that fit one feature's observed training values: (kind, edges or categories, counts).
+
+    At most ``MAX_CATEGORIES`` distinct values: the values themselves are the categories, plus an "other"
+    bin (count 0 in training) for values never seen; otherwise the inner deciles are the edges of bins
+    (e[i-1], e[i]] (duplicate edges merged), so a count feature 0-5 keeps its tail value apart.
+    """
+    distinct = np.unique(column)
+    if distinct.size <= MAX_CATEGORIES:
+        counts = np.append(np.bincount(np.searchsorted(distinct, column), minlength=distinct.size), 0)
+        return "categories", distinct, counts
+    inner = np.unique(np.quantile(column, DECILES))
+    return "quantiles", inner, np.bincount(np.searchsorted(inner, column, side="left"), minlength=inner.size + 1)
+
+
+def _reference_profile(values: np.ndarray, nearest: np.ndarray, k: int, calibration: Calibration,
+                       sample_rows: np.ndarray) -> ReferenceProfile:
+    kinds, edges, counts = [], [], []
     for j in range(values.shape[1]):
         column = values[:, j]
-        column = column[~np.isnan(column)]
-        inner = np.unique(np.quantile(column, DECILES))
-        edges.append(inner)
-        counts.append(np.bincount(np.searchsorted(inner, column, side="left"), minlength=inner.size + 1))
+        kind, edge, count = feature_bins(column[~np.isnan(column)])
+        kinds.append(kind)
+        edges.append(edge)
+        counts.append(count)
+    missing = np.isnan(values)
     return ReferenceProfile(
         n_records=values.shape[0],
+        bin_kinds=kinds,
         bin_edges=edges,
         bin_counts=counts,
         means=np.nanmean(values, axis=0),
         stds=np.nanstd(values, axis=0),
-        missing_share=np.isnan(values).mean(axis=0),
+        missing_share=missing.mean(axis=0),
+        missing_count=missing.sum(axis=0),
         sample=values[sample_rows].copy(),
-        segment_shares=np.bincount(nearest, minlength=k) / values.shape[0],
-        outlier_rate=float(flagged.mean()),
-        residual_sample=residuals[sample_rows].copy(),
-        residual_median=float(np.median(residuals)),
+        segment_counts=np.bincount(nearest, minlength=k),
+        outlier_count=int(calibration.flagged.sum()),
+        outlier_rate=float(calibration.flagged.mean()),
+        residual_sample=calibration.residuals[sample_rows].copy(),
+        residual_median=float(np.median(calibration.residuals)),
     )
 
 
-def _describe_segments(values, labels, centroids, thresholds, k, imputer, scaler, pca, config) -> list[dict[str, Any]]:
-    """Per segment: size, share, threshold, centroid and profile in ORIGINAL units."""
+def _centroids_in_raw_units(centroids: np.ndarray, scaler, pca) -> np.ndarray:
+    """Centroids back to (imputed) original units: inverse PCA (a back-projection when components were
+    dropped), then inverse scaling."""
+    back = centroids if pca is None else pca.inverse_transform(centroids)
+    return back if scaler is None else scaler.inverse_transform(back)
+
+
+def _describe_segments(values, labels, nearest, back, calibration: Calibration, k, config) -> list[dict[str, Any]]:
+    """Per segment: size and share (the assign rule), thresholds, centroid and profile in ORIGINAL units.
+
+    The profile describes the clusterer's members (what the clustering found); ``size``/``share`` count the
+    assign rule's segments, as the thresholds and the drift baseline do; ``clusterer_size`` is the
+    clusterer's own count beside it.
+    """
     overall_mean = np.nanmean(values, axis=0)
     overall_std = np.nanstd(values, axis=0)
-    # Centroids back to original units: inverse PCA (a back-projection when components were
-    # dropped), then inverse scaling.
-    back = centroids if pca is None else pca.inverse_transform(centroids)
-    back = back if scaler is None else scaler.inverse_transform(back)
     frame = pd.DataFrame(values, columns=config.features)
     grouped = frame.groupby(labels)
     means, medians = grouped.mean(), grouped.median()
     stds = grouped.std(ddof=0)
-    sizes = np.bincount(labels, minlength=k)
+    sizes = np.bincount(nearest, minlength=k)
+    clusterer_sizes = np.bincount(labels, minlength=k)
     segments = []
     for c in range(k):
         profile = {}
@@ -458,7 +488,11 @@ def _describe_segments(values, labels, centroids, thresholds, k, imputer, scaler
             "label": None,
             "size": int(sizes[c]),
             "share": float(sizes[c] / values.shape[0]),
-            "distance_threshold": float(thresholds[c]),
+            "clusterer_size": int(clusterer_sizes[c]),
+            "distance_threshold": float(calibration.distance_thresholds[c]),
+            "residual_threshold": float(calibration.residual_thresholds[c]),
+            "threshold_source": "pooled" if calibration.borrowed[c] else "own",
+            "held_out_flag_rate": float(calibration.flagged[nearest == c].mean()) if sizes[c] else 0.0,
             "centroid": {name: float(back[c, j]) for j, name in enumerate(config.features)},
             "profile": profile,
         })

@@ -74,14 +74,15 @@ def assert_results_match(bundle, training: np.ndarray, x: np.ndarray, results: l
     np.testing.assert_allclose(got["residual"], ref["residual"], rtol=RTOL, atol=RTOL * ref["scaled_norm"].max())
     # outlier_reasons from the reference distances and the stored thresholds (rows within rounding skipped).
     thresholds = bundle.distance_thresholds[ref["labels"]]
+    limits = bundle.residual_thresholds[ref["labels"]]                # per segment (issue 8)
     drops = bundle.pca is not None and bundle.pca.n_components_ < len(bundle.features)
     for i, result in enumerate(results):
         near_limit = abs(ref["distance"][i] - thresholds[i]) <= RTOL * thresholds[i] or (
-            drops and abs(ref["residual"][i] - bundle.residual_threshold) <= RTOL * bundle.residual_threshold)
+            drops and abs(ref["residual"][i] - limits[i]) <= RTOL * limits[i])
         if near_limit:
             continue
         expected = (["distance"] if ref["distance"][i] > thresholds[i] else []) + (
-            ["residual"] if drops and ref["residual"][i] > bundle.residual_threshold else [])
+            ["residual"] if drops and ref["residual"][i] > limits[i] else [])
         assert result["outlier_reasons"] == expected, (i, result)
         assert result["outlier"] is bool(expected)
 

@@ -148,6 +148,29 @@ def test_doubled_segment_share_alerts(fitted):
     assert report["status"] == "alert"
 
 
+def test_segment_block_lists_each_segment_with_its_label(fitted):
+    # Issue 7 (item 16) / issue 8: one item per segment with id, the store's label, shares and its own test;
+    # the v1 arrays stay. Reference for the shares: numpy.bincount of the segments the assign route gives.
+    patched = fitted.patch(f"/v1/segmentations/{NAME}/versions/1/segments/2", json={"label": "night owls"})
+    assert patched.status_code == 200, patched.text
+    x = draw(1000, seed=105)
+    report = drift(fitted, x).json()
+    segments = report["segments"]
+    items = segments["by_segment"]
+    assert [item["id"] for item in items] == [0, 1, 2]
+    assert [item["label"] for item in items] == [None, None, "night owls"]
+    assigned = fitted.post(f"/v1/segmentations/{NAME}/assign", json={"records": records(x)}).json()["results"]
+    counts = np.bincount([r["segment"] for r in assigned], minlength=3)
+    assert [item["observed_count"] for item in items] == counts.tolist()
+    assert [item["observed_share"] for item in items] == pytest.approx((counts / 1000).tolist())
+    assert [item["expected_share"] for item in items] == pytest.approx(segments["expected_share"])
+    assert [item["observed_share"] for item in items] == pytest.approx(segments["observed_share"])
+    version = fitted.get(f"/v1/segmentations/{NAME}/versions/1").json()
+    # One truth for sizes: the fit report's shares are the drift baseline's.
+    assert [s["share"] for s in version["segments"]] == pytest.approx(segments["expected_share"])
+    assert {"cohens_h", "p_value", "q_value", "status"} <= set(items[0])
+
+
 # --------------------------------------------------------------------------- bad input: 4xx, nothing stored
 def test_batch_under_the_minimum_is_422_and_not_stored(fitted):
     response = drift(fitted, draw(49, seed=105))

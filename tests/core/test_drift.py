@@ -20,9 +20,9 @@ from sklearn.datasets import make_blobs
 from service.core.assign import compile_bundle
 from service.core.bundle import FitConfig
 from service.core.drift import (
-    PSI_FLOOR,
     DriftRules,
     bin_counts,
+    category_counts,
     drift_of_batch,
     grade,
     outlier_drift,
@@ -80,26 +80,27 @@ def assert_json_finite(report):
 
 # --------------------------------------------------------------------------- PSI by hand
 def test_psi_matches_hand_computation():
-    # Hand computation (PSI = sum (o - e) ln(o / e)), common practice, no single source:
-    #   expected counts 25, 25, 50 -> shares 0.25, 0.25, 0.50
-    #   observed counts 10, 30, 60 -> shares 0.10, 0.30, 0.60
-    #   (0.10 - 0.25) ln(0.10 / 0.25) = -0.15 * -0.916291 = 0.137444
-    #   (0.30 - 0.25) ln(0.30 / 0.25) =  0.05 *  0.182322 = 0.009116
-    #   (0.60 - 0.50) ln(0.60 / 0.50) =  0.10 *  0.182322 = 0.018232
-    #   total                                               0.164792
-    assert psi(np.array([25, 25, 50]), np.array([10, 30, 60])) == pytest.approx(0.164792, abs=1e-6)
+    # Hand computation (PSI = sum (o - e) ln(o / e)), common practice, no single source, on Jeffreys-smoothed
+    # shares (c + 0.5) / (n + 1.5) with n = 100, B = 3:
+    #   expected counts 25, 25, 50 -> 25.5 / 101.5, 25.5 / 101.5, 50.5 / 101.5 = 0.251232, 0.251232, 0.497537
+    #   observed counts 10, 30, 60 -> 10.5 / 101.5, 30.5 / 101.5, 60.5 / 101.5 = 0.103448, 0.300493, 0.596059
+    #   (0.103448 - 0.251232) ln(0.103448 / 0.251232) = -0.147783 * -0.887303 = 0.131129
+    #   (0.300493 - 0.251232) ln(0.300493 / 0.251232) =  0.049261 *  0.179048 = 0.008820
+    #   (0.596059 - 0.497537) ln(0.596059 / 0.497537) =  0.098522 *  0.180670 = 0.017800
+    #   total                                                                    0.157749
+    assert psi(np.array([25, 25, 50]), np.array([10, 30, 60])) == pytest.approx(0.157749, abs=2e-6)
 
 
-def test_psi_floors_empty_categories():
-    # Hand computation with the documented floor of 1e-4 for an empty share:
-    #   expected 0.5, 0.5; observed 1.0, 0.0 -> 0.0 floored to 1e-4 (not renormalised)
-    #   (1.0 - 0.5) ln(1.0 / 0.5)       = 0.5 * 0.693147         = 0.346574
-    #   (1e-4 - 0.5) ln(1e-4 / 0.5)     = -0.4999 * -8.517193    = 4.257745
-    #   total                                                       4.604319
-    assert PSI_FLOOR == 1e-4
-    assert psi(np.array([1, 1]), np.array([7, 0])) == pytest.approx(4.604319, abs=1e-6)
-    # Identical distributions: every term is 0.
-    assert psi(np.array([3, 5, 2]), np.array([30, 50, 20])) == 0.0
+def test_psi_smooths_shares_with_jeffreys():
+    # Hand computation with Jeffreys-smoothed shares (c + 0.5) / (n + B / 2) (Jeffreys 1946, Dirichlet(1/2)):
+    #   expected counts 1, 1 (n 2, B 2): shares 1.5 / 3 = 0.5, 0.5
+    #   observed counts 7, 0 (n 7, B 2): shares 7.5 / 8 = 0.9375, 0.5 / 8 = 0.0625
+    #   (0.9375 - 0.5) ln(0.9375 / 0.5) = 0.4375 * 0.628609 = 0.275016
+    #   (0.0625 - 0.5) ln(0.0625 / 0.5) = -0.4375 * -2.079442 = 0.909756
+    #   total                                                   1.184772
+    assert psi(np.array([1, 1]), np.array([7, 0])) == pytest.approx(1.184772, abs=1e-6)
+    # Identical shares with equal totals: every term is 0.
+    assert psi(np.array([3, 5, 2]), np.array([3, 5, 2])) == 0.0
 
 
 def test_bin_counts_use_the_fit_bins():
@@ -162,12 +163,15 @@ def test_feature_statistics_match_scipy(fitted, training):
         assert row["missing_share"]["expected"] == pytest.approx(train_missing / len(training))
         assert row["missing_share"]["observed"] == pytest.approx(batch_missing / len(col))
         miss_p.append(fisher)
-        # Reference: the PSI formula recomputed here on numpy's decile bins of the training column.
+        # Reference: the PSI formula recomputed here on numpy's decile bins of the training column, with
+        # Jeffreys-smoothed shares (c + 0.5) / (n + B / 2) on both sides (Jeffreys 1946).
         train_col = training[:, j][~np.isnan(training[:, j])]
         edges = np.unique(np.quantile(train_col, np.linspace(0.1, 0.9, 9)))
-        e = np.bincount(np.searchsorted(edges, train_col, side="left"), minlength=edges.size + 1) / train_col.size
-        o = np.bincount(np.searchsorted(edges, col[~np.isnan(col)], side="left"), minlength=edges.size + 1)
-        o = np.maximum(o / o.sum(), 1e-4)
+        bins = edges.size + 1
+        e = np.bincount(np.searchsorted(edges, train_col, side="left"), minlength=bins)
+        o = np.bincount(np.searchsorted(edges, col[~np.isnan(col)], side="left"), minlength=bins)
+        e, o = (e + 0.5) / (e.sum() + bins / 2), (o + 0.5) / (o.sum() + bins / 2)
+        assert row["bins"] == "quantiles"
         assert row["psi"] == pytest.approx(np.sum((o - e) * np.log(o / e)), rel=1e-9)
     # Reference: scipy.stats.false_discovery_control (Benjamini-Hochberg) over the features of the report.
     assert [r["q_value"] for r in report["features"]] == pytest.approx(stats.false_discovery_control(ks_p))
@@ -181,48 +185,96 @@ def test_feature_statistics_match_scipy(fitted, training):
 def test_segment_statistics_match_scipy(fitted):
     bundle, compiled = fitted
     batch = draw(900, seed=78, weights=np.array([0.5, 0.3, 0.2]))
-    report = report_of(fitted, batch)
+    report = drift_of_batch(bundle, compiled, batch, RULES, labels={1: "steady"})
     seg = report["segments"]
     counts = np.array(seg["observed_count"])
-    expected = bundle.reference.segment_shares
+    train = bundle.reference.segment_counts
     # Reference: the nearest-centroid rule computed with numpy on the imputed, scaled, projected batch.
     filled = np.where(np.isnan(batch), bundle.imputer.statistics_, batch)
     space = bundle.pca.transform(bundle.scaler.transform(filled))
     nearest = ((space[:, None, :] - bundle.centroids[None]) ** 2).sum(axis=2).argmin(axis=1)
     assert counts.tolist() == np.bincount(nearest, minlength=3).tolist()
-    # Reference: scipy.stats.chisquare (Pearson goodness of fit) against the training shares.
-    chi = stats.chisquare(counts, counts.sum() * expected)
+    # Reference: scipy.stats.chi2_contingency (test of homogeneity, training counts vs batch counts).
+    chi = stats.chi2_contingency(np.vstack([train, counts]), correction=False)
+    assert seg["test"] == "chi-square"
     assert seg["chi2"] == pytest.approx(chi.statistic, rel=1e-12)
     assert seg["p_value"] == pytest.approx(chi.pvalue, rel=1e-9, abs=1e-300)
-    o = counts / counts.sum()
-    assert seg["psi"] == pytest.approx(np.sum((o - expected) * np.log(o / expected)), rel=1e-12)
-    assert seg["expected_share"] == pytest.approx(expected.tolist())
+    # PSI on Jeffreys-smoothed shares (Jeffreys 1946).
+    e, o = (train + 0.5) / (train.sum() + 1.5), (counts + 0.5) / (counts.sum() + 1.5)
+    assert seg["psi"] == pytest.approx(np.sum((o - e) * np.log(o / e)), rel=1e-12)
+    assert seg["expected_share"] == pytest.approx((train / train.sum()).tolist())
+    # Per segment: 2 x 2 chi2_contingency, q-values by scipy.stats.false_discovery_control, Cohen's h (Cohen 1988).
+    p_values = []
+    for item, c in zip(seg["by_segment"], range(3)):
+        table = [[train[c], train.sum() - train[c]], [counts[c], counts.sum() - counts[c]]]
+        p_values.append(stats.chi2_contingency(table, correction=False).pvalue)
+        assert item["p_value"] == pytest.approx(p_values[-1], rel=1e-9, abs=1e-300)
+        h = 2 * np.arcsin(np.sqrt(counts[c] / counts.sum())) - 2 * np.arcsin(np.sqrt(train[c] / train.sum()))
+        assert item["cohens_h"] == pytest.approx(h, rel=1e-12)
+        assert item["id"] == c and item["label"] == ("steady" if c == 1 else None)
+    assert [i["q_value"] for i in seg["by_segment"]] == pytest.approx(stats.false_discovery_control(p_values))
+    assert_json_finite(report)
 
 
-def test_segment_chi_square_with_a_segment_training_never_reached():
-    # Expected share 0 for segment 2: the documented floor (1e-4, renormalised) keeps chi-square finite.
+def test_segment_mix_with_small_counts_uses_a_monte_carlo_exact_test():
+    # 12 batch rows over 3 segments: expected counts under 5, so the mix uses the exact conditional test.
+    # Reference: the exact p-value of the 2 x 3 table computed by enumerating every batch row with the same
+    # margins (multivariate hypergeometric probabilities from math.comb), summing those at least as extreme.
+    from itertools import product
+    from math import comb
+    train, batch = np.array([50, 30, 20]), np.array([2, 2, 8])
+    result = segment_drift(train, np.repeat(np.arange(3), batch), RULES)
+    assert result["test"] == "monte-carlo exact"
+    columns, n = train + batch, batch.sum()
+    expected = np.outer([train.sum(), n], columns) / columns.sum()
+
+    def statistic(b):
+        table = np.vstack([columns - b, b])
+        return np.sum((table - expected) ** 2 / expected)
+
+    observed = statistic(batch)
+    exact = 0.0
+    for b in product(*(range(min(c, n) + 1) for c in columns)):
+        if sum(b) == n:
+            if statistic(np.array(b)) >= observed * (1 - 1e-12):
+                exact += np.prod([comb(int(c), int(x)) for c, x in zip(columns, b)]) / comb(int(columns.sum()), int(n))
+    # 9,999 draws: standard error sqrt(p (1 - p) / 10,000) < 0.005.
+    assert result["p_value"] == pytest.approx(exact, abs=0.01)
+    assert result["chi2"] == pytest.approx(observed)
+
+
+def test_segment_training_never_reached_is_tested_two_sample():
+    # Training count 0 for segment 2; with a two-sample test nothing divides by zero and 5 batch rows there
+    # are significant. Reference: scipy.stats.fisher_exact on that segment's 2 x 2 table (expected count < 5).
     segments = np.array([0] * 60 + [1] * 35 + [2] * 5)
-    result = segment_drift(np.array([0.6, 0.4, 0.0]), segments, RULES)
-    floored = np.array([0.6, 0.4, 1e-4]) / 1.0001
-    # Reference: scipy.stats.chisquare with those expected counts.
-    chi = stats.chisquare([60, 35, 5], 100 * floored)
-    assert result["chi2"] == pytest.approx(chi.statistic) and result["p_value"] == pytest.approx(chi.pvalue)
-    assert result["status"] == "alert"
+    result = segment_drift(np.array([600, 400, 0]), segments, RULES)
+    item = result["by_segment"][2]
+    assert item["p_value"] == pytest.approx(stats.fisher_exact([[0, 1000], [5, 95]]).pvalue)
+    assert item["cohens_h"] == pytest.approx(2 * np.arcsin(np.sqrt(0.05)))   # 0.451: alert
+    assert item["status"] == "alert" and result["status"] == "alert"
     assert_json_finite(result)
 
 
-def test_outlier_rate_matches_binomtest():
+def test_outlier_rate_matches_fisher_exact():
     flagged = np.zeros(2000, dtype=bool)
     flagged[:61] = True
-    result = outlier_drift(0.02, flagged, RULES)
-    # Reference: scipy.stats.binomtest, exact, one-sided (the rate went up).
-    expected = stats.binomtest(61, 2000, 0.02, alternative="greater").pvalue
+    result = outlier_drift(200, 10_000, flagged, RULES)
+    # Reference: scipy.stats.fisher_exact, one-sided (the batch rate is higher), batch vs held-out counts.
+    expected = stats.fisher_exact([[61, 1939], [200, 9800]], alternative="greater").pvalue
     assert result["p_value"] == pytest.approx(expected, rel=1e-12)
-    assert result["observed_rate"] == 61 / 2000 and result["rate_ratio"] == pytest.approx(61 / 2000 / 0.02)
-    # 1.525x the training rate, significant -> watch (1.5 <= ratio < 2.0); 3x -> alert.
-    assert expected < RULES.alpha and result["status"] == "watch"
-    flagged[:120] = True
-    assert outlier_drift(0.02, flagged, RULES)["status"] == "alert"
+    assert result["observed_rate"] == 61 / 2000
+    # Rate ratio to the Jeffreys-smoothed baseline (200.5 / 10,001); the graded ratio is the lower 2.5 % Jeffreys
+    # limit of the batch rate over the upper 97.5 % limit of the baseline (scipy.stats.beta.ppf).
+    assert result["rate_ratio"] == pytest.approx(61 / 2000 / (200.5 / 10_001))
+    upper = stats.beta.ppf(0.975, 200.5, 9800.5)                          # 0.0229
+    assert result["ratio_lower_bound"] == pytest.approx(stats.beta.ppf(0.025, 61.5, 1939.5) / upper)
+    # 61 flags: lower limit 0.0236, ratio 1.03 -> stable although significant; 100 flags: 0.0411 / 0.0229 = 1.80
+    # -> watch; 150 flags: 0.0641 / 0.0229 = 2.80 -> alert.
+    assert expected < RULES.alpha and result["status"] == "stable"
+    flagged[:100] = True
+    assert outlier_drift(200, 10_000, flagged, RULES)["status"] == "watch"
+    flagged[:150] = True
+    assert outlier_drift(200, 10_000, flagged, RULES)["status"] == "alert"
 
 
 def test_residual_matches_mannwhitneyu(fitted):

@@ -21,6 +21,7 @@ from sklearn.metrics import adjusted_rand_score, pairwise_distances, silhouette_
 from sklearn.preprocessing import StandardScaler
 
 from service.core.bundle import FitConfig
+from service.core.calibration import conformal_quantile, min_own_rows
 from service.core.fit import check_fit_inputs, elbow_k, fit_bundle, jackson_mudholkar_limit, kneedle_k
 from service.errors import InvalidInput
 
@@ -171,10 +172,14 @@ def test_agglomerative_equals_sklearn_and_centroids_are_member_means(iris, linka
     # Centroids are the member means in the clustering space (API.md); reference: pandas groupby mean.
     member_means = pd.DataFrame(space).groupby(reference.labels_).mean().sort_index().to_numpy()
     np.testing.assert_allclose(bundle.centroids, member_means, rtol=1e-9, atol=1e-12)
-    # Sizes count the clusterer's labels (numpy.bincount).
-    assert [s["size"] for s in bundle.report["segments"]] == np.bincount(reference.labels_, minlength=3).tolist()
     # centroid_agreement: share of records whose nearest centroid (sklearn pairwise_distances) is their label.
     nearest = pairwise_distances(space, member_means).argmin(axis=1)
+    # One truth for sizes (issue 8): size/share count the assign rule (nearest centroid), as the thresholds and
+    # the drift baseline do; clusterer_size counts the clusterer's own labels (numpy.bincount of each).
+    assert [s["size"] for s in bundle.report["segments"]] == np.bincount(nearest, minlength=3).tolist()
+    assert [s["clusterer_size"] for s in bundle.report["segments"]] == np.bincount(reference.labels_,
+                                                                                     minlength=3).tolist()
+    assert bundle.reference.segment_counts.tolist() == np.bincount(nearest, minlength=3).tolist()
     assert bundle.report["quality"]["centroid_agreement"] == pytest.approx(np.mean(nearest == reference.labels_))
     # Inertia: sum of squared distances to the own member mean (definition; numpy).
     inertia = float(((space - member_means[reference.labels_]) ** 2).sum())
@@ -360,30 +365,50 @@ def test_residual_limits_agree_with_empirical_quantile_on_gaussian_data():
 
 
 @pytest.mark.parametrize("quantile", [0.9, 0.99])
-def test_thresholds_are_quantiles_of_training_distances_and_residuals(wine, quantile):
+def test_thresholds_are_held_out_conformal_and_share_one_multiplier(wine, quantile):
     bundle = fit_bundle(wine.data, config_for(wine.feature_names, k=3, components=3, outlier_quantile=quantile))
     # Reference pipeline in scikit-learn; residual = || scaled row - PCA reconstruction ||.
     z = StandardScaler().fit_transform(wine.data)
     pca = PCA(n_components=3, svd_solver="full").fit(z)
     residuals = np.linalg.norm(z - pca.inverse_transform(pca.transform(z)), axis=1)
-    assert bundle.report["residual_threshold"] == pytest.approx(np.quantile(residuals, quantile), rel=1e-9)
     # JM limit from the discarded eigenvalues of the covariance (numpy.linalg.eigvalsh of np.cov, ddof=1).
     eigenvalues = np.sort(np.linalg.eigvalsh(np.cov(z, rowvar=False)))[::-1]
     assert bundle.report["residual_limit_jm"] ** 2 == pytest.approx(
         _published_jackson_mudholkar(eigenvalues[3:], quantile), rel=1e-9)
-    # Per-segment distance thresholds: the quantile of distances to the nearest centroid (sklearn
-    # pairwise_distances), over the records whose nearest centroid is that segment.
+    # Held-out residuals are larger than in-sample ones (PCA was fitted on the training rows), so the pooled
+    # held-out quantile exceeds the in-sample one (numpy.quantile).
+    assert bundle.report["residual_threshold"] > np.quantile(residuals, quantile)
+    # One combined score max(d / D_c, r / R_c) per segment: the two thresholds are one multiplier times the
+    # segment's median in-sample distance and residual (numpy.median over the nearest-centroid segment, with
+    # distances from sklearn.metrics.pairwise_distances).
     space = pca.transform(z)
     distances = pairwise_distances(space, bundle.centroids)
     nearest = distances.argmin(axis=1)
     for segment in bundle.report["segments"]:
-        own = distances[nearest == segment["id"], segment["id"]]
-        assert segment["distance_threshold"] == pytest.approx(np.quantile(own, quantile), rel=1e-9)
-    # The training outlier rate is the share the same rule flags.
-    flagged = (distances.min(axis=1) > bundle.distance_thresholds[nearest]) | (
-        residuals > bundle.report["residual_threshold"])
-    assert bundle.report["training_outlier_rate"] == pytest.approx(flagged.mean())
-    assert bundle.reference.outlier_rate == pytest.approx(flagged.mean())
+        own = nearest == segment["id"]
+        ratio = segment["distance_threshold"] / segment["residual_threshold"]
+        assert ratio == pytest.approx(np.median(distances[own, segment["id"]]) / np.median(residuals[own]), rel=1e-9)
+    # Wine's segments have 50-70 rows, fewer than 2 / (1 - q) at 0.99: they borrow the pooled multiplier.
+    expected = ["pooled" if np.sum(nearest == c) < 2 / (1 - quantile) else "own" for c in range(3)]
+    assert [s["threshold_source"] for s in bundle.report["segments"]] == expected
+    # The drift baseline is the held-out flag rate; split-conformal (Vovk et al. 2005): at most 1 - q of the
+    # held-out scores lie above the ceil((n + 1) q)-th smallest one.
+    calibration = bundle.report["calibration"]
+    assert bundle.reference.outlier_rate == bundle.report["training_outlier_rate"] == calibration["held_out_flag_rate"]
+    assert bundle.reference.outlier_count == calibration["held_out_flag_count"]
+    assert calibration["held_out_rows"] == wine.data.shape[0]
+    assert bundle.reference.outlier_rate <= 1 - quantile
+
+
+def test_conformal_quantile_rank():
+    # Hand computation of the split-conformal rank ceil((n + 1) q) (Lei et al., JASA 2018):
+    #   n = 199, q = 0.99 -> ceil(198.0) = 198 (not 199: (n + 1) q rounds up to 198.00000000000003 in floats);
+    #   n = 9, q = 0.9 -> ceil(9.0) = 9; n = 5, q = 0.99 -> 6 > n: the largest score.
+    scores = np.arange(1.0, 200.0)[::-1].copy()
+    assert conformal_quantile(scores, 0.99) == 198.0
+    assert conformal_quantile(np.arange(1.0, 10.0), 0.9) == 9.0
+    assert conformal_quantile(np.arange(1.0, 6.0), 0.99) == 5.0
+    assert min_own_rows(0.99) == 200 and min_own_rows(0.95) == 40
 
 
 def test_no_pca_means_zero_residual_threshold(iris):
