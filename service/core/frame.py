@@ -153,6 +153,25 @@ def one_edit_apart(a: str, b: str) -> bool:
     return a[i + 1:] == b[i + 1:] if len(a) == len(b) else a[i:] == b[i + 1:]
 
 
+def pairs_one_edit_apart(names: Sequence[str]) -> list[tuple[str, str]]:
+    """Every pair of ``names`` one edit apart, in O(len(names) x name length) rather than comparing all pairs:
+    a deletion turns one into the other, or both lose the same position to the same string (a substitution)."""
+    present = set(names)
+    pairs: set[tuple[str, str]] = set()
+    by_deletion: dict[tuple[int, str], list[str]] = {}
+    for name in present:
+        for i in range(len(name)):
+            shorter = name[:i] + name[i + 1:]
+            if shorter in present:
+                pairs.add((shorter, name))
+            by_deletion.setdefault((i, shorter), []).append(name)
+    for group in by_deletion.values():
+        group.sort()
+        pairs.update((a, b) for j, a in enumerate(group) for b in group[j + 1:])
+    order = {name: i for i, name in enumerate(names)}
+    return sorted(((a, b) if order[a] < order[b] else (b, a) for a, b in pairs), key=lambda ab: (order[ab[0]], order[ab[1]]))
+
+
 def did_you_mean(word: str, choices: Sequence[str]) -> str:
     """' (did you mean 'x'?)' for the closest of ``choices`` (difflib's ratio >= 0.6), else ''."""
     close = difflib.get_close_matches(word, list(choices), n=1)
