@@ -77,7 +77,7 @@ def _column_from_objects(column: list[Any], name: str, problems: list[RecordProb
         except OverflowError:  # an int beyond float64 range
             array = None
         if array is not None:
-            suspicious = np.flatnonzero(~np.isfinite(array))
+            suspicious = np.flatnonzero(~(np.abs(array) <= MAX_ABS_VALUE))    # NaN, infinite or too large
             if suspicious.size == 0 or all(column[i] is None for i in suspicious):
                 return array
     # Slow path: name every offending record.
@@ -91,10 +91,13 @@ def _column_from_objects(column: list[Any], name: str, problems: list[RecordProb
             except OverflowError:
                 problems.append(RecordProblem(i, name, "value must be finite; this integer is beyond the float64 range"))
                 continue
-            if math.isfinite(number):
+            if abs(number) <= MAX_ABS_VALUE:
                 array[i] = number
-                continue
-            problems.append(RecordProblem(i, name, f"value must be finite, got {value}"))
+            elif math.isfinite(number):
+                problems.append(RecordProblem(i, name, _too_large_message()))
+            else:
+                problems.append(RecordProblem(i, name, f"value must be finite, got {value}"))
+            continue
         else:
             problems.append(RecordProblem(i, name, _describe(value)))
     return array
@@ -219,9 +222,10 @@ def _table(rows: list[dict[str, Any]], features: Sequence[str]) -> list[tuple[An
 
 
 def _matrix_from_table(table: list[tuple[Any, ...]], features: Sequence[str],
-                       problems: list[RecordProblem]) -> np.ndarray:
-    """Rows of JSON values -> (n, p) float64, None -> NaN. Checked as a whole; a column with a value that
-    is not a finite number (or None) is redone by ``_column_from_objects``, which names the records."""
+                       problems: list[RecordProblem]) -> tuple[np.ndarray, bool]:
+    """Rows of JSON values -> (n, p) float64, None -> NaN, and whether a column was redone. Checked as a whole;
+    a column with a value that is not a number within +-MAX_ABS_VALUE (or None) is redone by
+    ``_column_from_objects``, which names the records."""
     n, p = len(table), len(features)
     kinds = set(map(type, chain.from_iterable(table)))
     values = None
@@ -237,10 +241,11 @@ def _matrix_from_table(table: list[tuple[Any, ...]], features: Sequence[str],
         redo = range(p)
         values = np.empty((n, p), dtype=np.float64)
     else:
-        redo = np.flatnonzero(~np.isfinite(values).all(axis=0)).tolist()
+        # One test finds NaN (None), infinities and values beyond MAX_ABS_VALUE alike; such columns are redone.
+        redo = np.flatnonzero(~(np.abs(values) <= MAX_ABS_VALUE).all(axis=0)).tolist()
     for j in redo:
         values[:, j] = _column_from_objects([row[j] for row in table], features[j], problems)
-    return values
+    return values, bool(len(redo))
 
 
 def batch_from_json(
@@ -257,9 +262,8 @@ def batch_from_json(
         else:
             problems.append(RecordProblem(i, "", "each record must be a JSON object"))
             rows.append({})
-    values = _matrix_from_table(_table(rows, features), features, problems)
-    _flag_too_large(values, features, problems)
-    if np.isnan(values).any():      # some value is missing: was it a key with a typo?
+    values, redone = _matrix_from_table(_table(rows, features), features, problems)
+    if redone and np.isnan(values).any():     # a value is missing: was its key misspelt?
         _near_key_problems(rows, features, id_column, problems)
     ids = _ids([r.get(id_column) for r in rows] if id_column is not None else rows, id_column, problems)
     problems.sort(key=lambda p: (p.record if p.record is not None else -1))
