@@ -55,9 +55,6 @@ def body_kind(request: Request) -> BodyKind:
     raise UnsupportedMediaType(media_type)
 
 
-def is_csv(request: Request) -> bool:
-    return body_kind(request) == "csv"
-
 
 async def read_body(request: Request, limit: int) -> bytes:
     declared = request.headers.get("content-length")

@@ -38,7 +38,7 @@ from service.core.frame import (
     did_you_mean,
     json_columns,
     numeric_csv_columns,
-    one_edit_apart,
+    pairs_one_edit_apart,
     read_csv,
 )
 from service.deps import FitScope, ReadScope, SettingsDep, StoreDep
@@ -161,14 +161,13 @@ def json_feature_candidates(records: list[Any], id_column: str | None) -> list[s
         # A column of nulls only is a candidate too: it is then dropped with a warning, never silently.
         if any(type(v) in (int, float) for v in values) or all(v is None for v in values):
             candidates.append(name)
-    _refuse_split_columns(records, candidates)
     return candidates
 
 
 def _refuse_split_columns(records: list[Any], columns: list[str]) -> None:
     """Two columns one edit apart that never appear in the same record are one column with a typo in some
     records (``tenure_month`` / ``tenure_months``): a 422 naming both, not two half-missing features."""
-    close = [(a, b) for i, a in enumerate(columns) for b in columns[i + 1:] if one_edit_apart(a, b)]
+    close = pairs_one_edit_apart(columns)
     if not close:
         return
     rows = [r for r in records if isinstance(r, dict)]
@@ -270,6 +269,8 @@ def training_inputs(params: FitRequest, settings, *, frame: pd.DataFrame | None 
     if frame is not None:
         batch = batch_from_frame(frame, features, params.id_column)
     else:
+        if params.features is None:
+            _refuse_split_columns(records, features)
         batch = batch_from_json(records, features, params.id_column)
     batch.raise_if_problems()
     values, dropped = batch.values, ()

@@ -119,6 +119,3 @@ def error_responses(*statuses: int) -> dict[int | str, dict[str, Any]]:
     """``responses=`` for a route: each status with the ErrorResponse schema and what it means here."""
     return {status: {"model": ErrorResponse, "description": _ERROR_MEANINGS[status]} for status in statuses}
 
-
-AUTH_ERRORS = (401, 403)
-BODY_ERRORS = (400, 413, 415, 422)

@@ -65,14 +65,17 @@ def unusable_features(values: np.ndarray, features: list[str]) -> dict[str, str]
         scale = float(np.max(np.abs(column)))
         spread = float(np.std(column))
         if spread <= NEAR_CONSTANT_RTOL * scale:
-            shown = "constant" if np.ptp(column) == 0 else f"near-constant (std {spread:.3g} <= 1e-9 x {scale:.3g})"
-            reasons[name] = f"{shown} at {column[0]:.6g}: no information to cluster on"
+            # No value is quoted: error bodies and reports carry no record values.
+            shown = ("constant" if np.ptp(column) == 0
+                     else f"near-constant (std at most {NEAR_CONSTANT_RTOL:g} x its largest |value|)")
+            reasons[name] = f"{shown}: no information to cluster on"
     return reasons
 
 
 def distinct_rows_at_least(values: np.ndarray, needed: int) -> int:
     """min(needed, number of distinct rows after median imputation): cheap when there are plenty."""
     medians = np.nanmedian(values, axis=0) if np.isnan(values).any() else None
+
     def filled(rows: np.ndarray) -> np.ndarray:
         return rows if medians is None else np.where(np.isnan(rows), medians, rows)
     probe = filled(values[:_DISTINCT_PROBE_ROWS])

@@ -77,7 +77,7 @@ def _column_from_objects(column: list[Any], name: str, problems: list[RecordProb
         except OverflowError:  # an int beyond float64 range
             array = None
         if array is not None:
-            suspicious = np.flatnonzero(~np.isfinite(array))
+            suspicious = np.flatnonzero(~(np.abs(array) <= MAX_ABS_VALUE))    # NaN, infinite or too large
             if suspicious.size == 0 or all(column[i] is None for i in suspicious):
                 return array
     # Slow path: name every offending record.
@@ -91,10 +91,13 @@ def _column_from_objects(column: list[Any], name: str, problems: list[RecordProb
             except OverflowError:
                 problems.append(RecordProblem(i, name, "value must be finite; this integer is beyond the float64 range"))
                 continue
-            if math.isfinite(number):
+            if abs(number) <= MAX_ABS_VALUE:
                 array[i] = number
-                continue
-            problems.append(RecordProblem(i, name, f"value must be finite, got {value}"))
+            elif math.isfinite(number):
+                problems.append(RecordProblem(i, name, _too_large_message()))
+            else:
+                problems.append(RecordProblem(i, name, f"value must be finite, got {value}"))
+            continue
         else:
             problems.append(RecordProblem(i, name, _describe(value)))
     return array
@@ -153,6 +156,25 @@ def one_edit_apart(a: str, b: str) -> bool:
     return a[i + 1:] == b[i + 1:] if len(a) == len(b) else a[i:] == b[i + 1:]
 
 
+def pairs_one_edit_apart(names: Sequence[str]) -> list[tuple[str, str]]:
+    """Every pair of ``names`` one edit apart, in O(len(names) x name length) rather than comparing all pairs:
+    a deletion turns one into the other, or both lose the same position to the same string (a substitution)."""
+    present = set(names)
+    pairs: set[tuple[str, str]] = set()
+    by_deletion: dict[tuple[int, str], list[str]] = {}
+    for name in present:
+        for i in range(len(name)):
+            shorter = name[:i] + name[i + 1:]
+            if shorter in present:
+                pairs.add((shorter, name))
+            by_deletion.setdefault((i, shorter), []).append(name)
+    for group in by_deletion.values():
+        group.sort()
+        pairs.update((a, b) for j, a in enumerate(group) for b in group[j + 1:])
+    order = {name: i for i, name in enumerate(names)}
+    return sorted(((a, b) if order[a] < order[b] else (b, a) for a, b in pairs), key=lambda ab: (order[ab[0]], order[ab[1]]))
+
+
 def did_you_mean(word: str, choices: Sequence[str]) -> str:
     """' (did you mean 'x'?)' for the closest of ``choices`` (difflib's ratio >= 0.6), else ''."""
     close = difflib.get_close_matches(word, list(choices), n=1)
@@ -200,9 +222,10 @@ def _table(rows: list[dict[str, Any]], features: Sequence[str]) -> list[tuple[An
 
 
 def _matrix_from_table(table: list[tuple[Any, ...]], features: Sequence[str],
-                       problems: list[RecordProblem]) -> np.ndarray:
-    """Rows of JSON values -> (n, p) float64, None -> NaN. Checked as a whole; a column with a value that
-    is not a finite number (or None) is redone by ``_column_from_objects``, which names the records."""
+                       problems: list[RecordProblem]) -> tuple[np.ndarray, bool]:
+    """Rows of JSON values -> (n, p) float64, None -> NaN, and whether a column was redone. Checked as a whole;
+    a column with a value that is not a number within +-MAX_ABS_VALUE (or None) is redone by
+    ``_column_from_objects``, which names the records."""
     n, p = len(table), len(features)
     kinds = set(map(type, chain.from_iterable(table)))
     values = None
@@ -218,10 +241,11 @@ def _matrix_from_table(table: list[tuple[Any, ...]], features: Sequence[str],
         redo = range(p)
         values = np.empty((n, p), dtype=np.float64)
     else:
-        redo = np.flatnonzero(~np.isfinite(values).all(axis=0)).tolist()
+        # One test finds NaN (None), infinities and values beyond MAX_ABS_VALUE alike; such columns are redone.
+        redo = np.flatnonzero(~(np.abs(values) <= MAX_ABS_VALUE).all(axis=0)).tolist()
     for j in redo:
         values[:, j] = _column_from_objects([row[j] for row in table], features[j], problems)
-    return values
+    return values, bool(len(redo))
 
 
 def batch_from_json(
@@ -238,9 +262,8 @@ def batch_from_json(
         else:
             problems.append(RecordProblem(i, "", "each record must be a JSON object"))
             rows.append({})
-    values = _matrix_from_table(_table(rows, features), features, problems)
-    _flag_too_large(values, features, problems)
-    if np.isnan(values).any():      # some value is missing: was it a key with a typo?
+    values, redone = _matrix_from_table(_table(rows, features), features, problems)
+    if redone and np.isnan(values).any():     # a value is missing: was its key misspelt?
         _near_key_problems(rows, features, id_column, problems)
     ids = _ids([r.get(id_column) for r in rows] if id_column is not None else rows, id_column, problems)
     problems.sort(key=lambda p: (p.record if p.record is not None else -1))

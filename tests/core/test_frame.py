@@ -164,3 +164,15 @@ def test_csv_bodies_that_cannot_be_read():
         read_csv(b'a,b,c\n"1,2,3\n')
     with pytest.raises(InvalidInput):
         read_csv(b"  \n")
+
+
+def test_pairs_one_edit_apart_match_the_pairwise_definition():
+    # Reference: the Levenshtein distance (one insertion, deletion or substitution), checked pair by pair with
+    # one_edit_apart on names that include each kind of edit and near misses (a transposition is two edits).
+    from service.core.frame import one_edit_apart, pairs_one_edit_apart
+
+    names = ["tenure_months", "tenure_month", "tenure_monthz", "tenure_mnoths", "a", "b", "ab", "ba", "abc", "",
+             "q1", "q2", "q10"]
+    expected = {(a, b) for i, a in enumerate(names) for b in names[i + 1:] if one_edit_apart(a, b)}
+    assert set(pairs_one_edit_apart(names)) == expected
+    assert ("tenure_months", "tenure_month") in expected and ("ab", "ba") not in expected
