@@ -5,10 +5,8 @@ from __future__ import annotations
 from functools import lru_cache
 from pathlib import Path
 
-from pydantic import Field, field_validator, model_validator
+from pydantic import Field, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
-
-SCOPES = ("fit", "read", "assign", "drift")
 
 
 class Settings(BaseSettings):
@@ -18,8 +16,22 @@ class Settings(BaseSettings):
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=1, le=65535)
 
-    # API keys: {"<key>": ["fit", "read", ...]}. Empty means authentication is off (local use).
-    api_keys: dict[str, list[str]] = Field(default_factory=dict)
+    # API keys live in the store (``segscore keys create``); there is no key setting.
+
+    # Slow clients. uvicorn closes a kept-alive connection idle for this long; it has no time-out for a
+    # client that drips its request headers (see the README: a reverse proxy in front should add one).
+    keep_alive_seconds: int = Field(5, ge=1, le=300)
+    # A request body that sends nothing for this long is answered 408 and the connection is closed.
+    body_read_timeout_seconds: float = Field(30.0, gt=0)
+    # Largest incomplete request head (request line + headers) uvicorn's HTTP parser holds before refusing it.
+    max_header_bytes: int = Field(64 * 1024, ge=4096)
+
+    # Data protection: stored drift reports older than this many days are deleted at start-up and then every
+    # hour; 0 keeps them forever.
+    drift_retention_days: int = Field(0, ge=0)
+
+    # /docs, /redoc and /openapi.json (turn off where the API description should not be public).
+    docs_enabled: bool = True
 
     max_body_bytes: int = Field(256 * 1024 * 1024, ge=1024)
     max_fit_rows: int = Field(1_000_000, ge=2)
@@ -52,17 +64,6 @@ class Settings(BaseSettings):
     access_log: bool = False
     log_level: str = "info"
 
-    @field_validator("api_keys")
-    @classmethod
-    def _known_scopes(cls, value: dict[str, list[str]]) -> dict[str, list[str]]:
-        for key, scopes in value.items():
-            if len(key) < 16:
-                raise ValueError("every API key must be at least 16 characters long")
-            unknown = sorted(set(scopes) - set(SCOPES))
-            if unknown:
-                raise ValueError(f"unknown scope(s) {unknown}; allowed: {list(SCOPES)}")
-        return value
-
     @model_validator(mode="after")
     def _drift_bands_ordered(self) -> "Settings":
         pairs = (("drift_psi_watch", "drift_psi_alert"),
@@ -72,10 +73,6 @@ class Settings(BaseSettings):
             if getattr(self, watch) > getattr(self, alert):
                 raise ValueError(f"{watch} ({getattr(self, watch)}) must not exceed {alert} ({getattr(self, alert)})")
         return self
-
-    @property
-    def auth_enabled(self) -> bool:
-        return bool(self.api_keys)
 
 
 @lru_cache

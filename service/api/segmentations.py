@@ -8,7 +8,7 @@ import anyio
 import numpy as np
 import pandas as pd
 from fastapi import APIRouter, Request
-from fastapi.responses import JSONResponse
+from fastapi.responses import JSONResponse, Response
 
 from schemas import FitReport, FitRequest, LabelUpdate, LiveUpdate, Segment, SegmentationDetail, SegmentationList
 from service.api.payload import check_name, is_csv, parse_json, read_body, records_of, request_body_openapi
@@ -22,7 +22,7 @@ from service.core.frame import (
     numeric_csv_columns,
     read_csv,
 )
-from service.deps import FitScope, ReadScope, SettingsDep, StoreDep
+from service.deps import ActorDep, AdminScope, FitScope, ReadScope, SettingsDep, StoreDep
 from service.errors import InvalidInput, PayloadTooLarge, RecordProblem
 
 router = APIRouter(prefix="/segmentations", tags=["segmentations"])
@@ -155,7 +155,7 @@ def _resolve_features(requested: list[str] | None, available: list[str], numeric
 
 @router.post("/{name}/fit", status_code=201, response_model=FitReport, openapi_extra=FIT_BODY,
              dependencies=[FitScope], summary="Fit a new version from records")
-async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep) -> JSONResponse:
+async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep, actor: ActorDep) -> JSONResponse:
     check_name(name)
     body = await read_body(request, settings.max_body_bytes)
     # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
@@ -164,7 +164,7 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
 
     def fit_and_save() -> dict[str, Any]:
         bundle = fit_bundle(values, config, max_agglomerative_rows=settings.max_agglomerative_rows)
-        return store.save_version(name, bundle, make_live=make_live)
+        return store.save_version(name, bundle, make_live=make_live, actor=actor)
 
     report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
     request.app.state.metrics.fits.inc()
@@ -227,11 +227,27 @@ def get_version(name: str, version: int, store: StoreDep) -> dict[str, Any]:
 
 @router.put("/{name}/live", response_model=SegmentationDetail, dependencies=[FitScope],
             summary="Make a version live (promote or roll back)")
-def set_live(name: str, update: LiveUpdate, store: StoreDep) -> dict[str, Any]:
-    return store.set_live(check_name(name), update.version)
+def set_live(name: str, update: LiveUpdate, store: StoreDep, actor: ActorDep) -> dict[str, Any]:
+    return store.set_live(check_name(name), update.version, actor=actor)
 
 
 @router.patch("/{name}/versions/{version}/segments/{segment}", response_model=Segment, dependencies=[FitScope],
               summary="Label a segment (metadata only)")
-def label_segment(name: str, version: int, segment: int, update: LabelUpdate, store: StoreDep) -> dict[str, Any]:
-    return store.set_label(check_name(name), version, segment, update.label)
+def label_segment(name: str, version: int, segment: int, update: LabelUpdate, store: StoreDep,
+                  actor: ActorDep) -> dict[str, Any]:
+    return store.set_label(check_name(name), version, segment, update.label, actor=actor)
+
+
+@router.delete("/{name}/versions/{version}", status_code=204, dependencies=[FitScope],
+               summary="Erase a version that is not live (its artifact, report, labels and drift reports)",
+               responses={409: {"description": "the version is live"}})
+def delete_version(name: str, version: int, store: StoreDep, actor: ActorDep) -> Response:
+    store.delete_version(check_name(name), version, actor=actor)
+    return Response(status_code=204)
+
+
+@router.delete("/{name}", status_code=204, dependencies=[AdminScope],
+               summary="Erase a segmentation: every version, artifact, report, label and drift report")
+def delete_segmentation(name: str, store: StoreDep, actor: ActorDep) -> Response:
+    store.delete_segmentation(check_name(name), actor=actor)
+    return Response(status_code=204)
