@@ -5,6 +5,7 @@ from __future__ import annotations
 import asyncio
 import gc
 import logging
+import os
 from contextlib import asynccontextmanager, suppress
 from datetime import datetime, timedelta, timezone
 
@@ -84,14 +85,23 @@ async def _http_error(request: Request, exc: StarletteHTTPException) -> JSONResp
 
 
 RETENTION_EVERY_SECONDS = 3600.0
+LEGACY_KEYS_VARIABLE = "SEGSCORE_API_KEYS"
 
 
-def open_server_refusal(settings: Settings) -> str:
-    """Why a server without keys may not start on ``settings.host``, with the command that fixes it."""
-    return (f"refusing to serve on {settings.host}: the store {settings.store_dir} has no API key, so every "
-            "caller would have full access. Create one first, e.g.\n"
-            f"  segscore keys create --store {settings.store_dir} --scope admin --name ops\n"
-            "or bind to a loopback address (127.0.0.1) for local use without keys.")
+def start_up_refusal(settings: Settings, keyring: KeyRing) -> str | None:
+    """Why the server must not start (with the command that fixes it), or None."""
+    if os.environ.get(LEGACY_KEYS_VARIABLE):
+        # Keys used to be plain text in this variable; it is no longer read. Starting anyway would serve with
+        # an authentication other than the one the operator set up.
+        return (f"{LEGACY_KEYS_VARIABLE} is no longer read: API keys live in the store. Create one key per caller "
+                f"with 'segscore keys create --store {settings.store_dir} --name NAME --scope SCOPE', hand the "
+                f"new keys out, then unset {LEGACY_KEYS_VARIABLE} (README: 'Moving from SEGSCORE_API_KEYS').")
+    if not keyring.has_keys and not is_loopback(settings.host):
+        return (f"refusing to serve on {settings.host}: the store {settings.store_dir} has no API key, so every "
+                "caller would have full access. Create one first, e.g.\n"
+                f"  segscore keys create --store {settings.store_dir} --scope admin --name ops\n"
+                "or bind to a loopback address (127.0.0.1) for local use without keys.")
+    return None
 
 
 def _prune_drift_reports(app: FastAPI) -> None:
@@ -125,9 +135,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     @asynccontextmanager
     async def lifespan(app: FastAPI):
         keyring: KeyRing = app.state.keyring
+        refusal = start_up_refusal(settings, keyring)
+        if refusal:
+            raise RuntimeError(refusal)
         if not keyring.has_keys:
-            if not is_loopback(settings.host):
-                raise RuntimeError(open_server_refusal(settings))
             log.warning("no API key in the store %s: authentication is OFF; serving open on the loopback "
                         "address %s only. Create a key with 'segscore keys create --store %s --scope admin "
                         "--name NAME' to turn it on.", settings.store_dir, settings.host, settings.store_dir)

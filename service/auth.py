@@ -17,10 +17,12 @@ import threading
 import time
 from dataclasses import dataclass
 
+from service.settings import SCOPES
 from service.store import BundleStore
 from service.store.keys import SHOWN_PREFIX, digest_matches
 
-SCOPES = ("read", "fit", "assign", "drift", "admin")
+__all__ = ["ADMIN_SCOPE", "SCOPES", "Caller", "KeyRing", "is_loopback"]
+
 ADMIN_SCOPE = "admin"      # implies every scope, including those of routes added later
 KEY_POLL_SECONDS = 1.0
 KEYS_VISIBLE_WITHIN = 2.0

@@ -8,6 +8,9 @@ from pathlib import Path
 from pydantic import Field, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+# The scopes an API key can carry; "admin" implies every scope, including those of routes added later.
+SCOPES = ("read", "fit", "assign", "drift", "admin")
+
 
 class Settings(BaseSettings):
     model_config = SettingsConfigDict(env_prefix="SEGSCORE_", frozen=True)
