@@ -115,8 +115,8 @@ def _prune_drift_reports(app: FastAPI) -> None:
 
 async def _maintenance(app: FastAPI) -> None:
     """Background loop, off the request path: re-read changed API keys about every second, and apply the
-    drift-report retention at start-up and then every hour."""
-    next_retention = 0.0
+    drift-report retention every hour (it also runs once at start-up, before the first request)."""
+    next_retention = anyio.current_time() + RETENTION_EVERY_SECONDS
     while True:
         try:
             await anyio.to_thread.run_sync(app.state.keyring.refresh)
@@ -142,6 +142,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             log.warning("no API key in the store %s: authentication is OFF; serving open on the loopback "
                         "address %s only. Create a key with 'segscore keys create --store %s --scope admin "
                         "--name NAME' to turn it on.", settings.store_dir, settings.host, settings.store_dir)
+        await anyio.to_thread.run_sync(_prune_drift_reports, app)
         maintenance = asyncio.get_running_loop().create_task(_maintenance(app))
         app.state.fit_limiter = anyio.CapacityLimiter(settings.fit_concurrency)
         if settings.gc_gen0_threshold:
