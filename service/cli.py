@@ -66,7 +66,6 @@ def main() -> None:
 @click.option("--demo", is_flag=True, help="fit the 'demo' segmentation from synthetic data if absent")
 def serve(host: str | None, port: int | None, store_dir: Path | None, demo: bool) -> None:
     """Run the HTTP API with uvicorn (one process)."""
-    import uvicorn
     from threadpoolctl import threadpool_limits
 
     from service.app import create_app, start_up_refusal
@@ -84,6 +83,13 @@ def serve(host: str | None, port: int | None, store_dir: Path | None, demo: bool
     # One BLAS/OpenMP thread per server process: on small machines two pools fighting over two cores make
     # the small products of the assign path erratic (threadpoolctl limits are process-wide).
     threadpool_limits(limits=1)
+    run_server(app, settings)
+
+
+def run_server(app, settings: Settings) -> None:
+    """uvicorn with the service's connection settings (also used by the tests that start a real server)."""
+    import uvicorn
+
     # log_config=None: uvicorn keeps our logging set-up (request ids in every line) instead of its own.
     uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
                 access_log=settings.access_log, log_level=settings.log_level,
