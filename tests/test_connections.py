@@ -24,9 +24,10 @@ def _free_port() -> int:
         return probe.getsockname()[1]
 
 
-@pytest.fixture
-def server(tmp_path):
-    """A running server: base URL and port. Body-read and keep-alive time-outs are 1 s."""
+@pytest.fixture(scope="module")
+def server(tmp_path_factory):
+    """A running server (one for this module): base URL, port, log. Body-read and keep-alive time-outs are 1 s."""
+    tmp_path = tmp_path_factory.mktemp("server")
     port = _free_port()
     env = {k: v for k, v in os.environ.items() if not k.startswith("SEGSCORE_")}
     env.update(SEGSCORE_STORE_DIR=str(tmp_path / "store"), SEGSCORE_BODY_READ_TIMEOUT_SECONDS="1",

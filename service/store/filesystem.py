@@ -21,7 +21,6 @@ import json
 import os
 import sqlite3
 import tempfile
-import secrets
 import shutil
 import threading
 import time
@@ -283,7 +282,9 @@ class FilesystemStore:
             previous = db.execute("SELECT live_version FROM segmentations WHERE name=?", (name,)).fetchone()[0]
             db.execute("UPDATE segmentations SET live_version=?, updated_at=? WHERE name=?",
                        (version, utc_now(), name))
-            self._record_event(db, actor, "set_live", name, version, {"previous": previous})
+            change = ("promote" if previous is None or version > previous
+                      else "roll_back" if version < previous else "unchanged")
+            self._record_event(db, actor, "set_live", name, version, {"previous": previous, "change": change})
         return self.get_segmentation(name)
 
     def set_label(self, name: str, version: int, segment: int, label: str | None, *,

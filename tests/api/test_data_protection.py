@@ -47,7 +47,9 @@ def test_events_newest_first_and_created_by(two_versions):
     actions = [(e["action"], e["version"]) for e in detail["events"]]
     assert actions == [("set_live", 2), ("label", 2), ("label", 1), ("fit", 2), ("fit", 1)]
     assert all(e["actor"] == "local" for e in detail["events"])      # auth is off in this fixture
-    assert detail["events"][0]["details"] == {"previous": 1}
+    assert detail["events"][0]["details"] == {"previous": 1, "change": "promote"}
+    assert client.put(f"{BASE}/live", json={"version": 1}).status_code == 200
+    assert client.get(BASE).json()["events"][0]["details"] == {"previous": 2, "change": "roll_back"}
     assert detail["events"][1]["details"] == {"segment": 0, "label": "l2"}
     ats = [e["at"] for e in detail["events"]]
     assert ats == sorted(ats, reverse=True) and all(a.endswith("Z") and len(a) == 20 for a in ats)
