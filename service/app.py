@@ -33,9 +33,8 @@ from service.errors import (
     ServiceError,
     StoreUnavailable,
 )
-from service.logs import RequestIdMiddleware
 from service.metrics import Metrics, MetricsMiddleware
-from service.middleware import BodyReadTimeout, ErrorBoundary
+from service.middleware import BodyReadTimeout, ErrorBoundary, RequestIdMiddleware
 from service.settings import Settings, get_settings
 from service.store import FilesystemStore
 

@@ -48,33 +48,3 @@ def configure_logging(level: str = "info") -> None:
     root.addHandler(handler)
     root.setLevel(level.upper())
 
-
-class RequestIdMiddleware:
-    """Pure ASGI: set the request id for the request's duration and send it back as ``X-Request-ID``."""
-
-    def __init__(self, app) -> None:
-        self.app = app
-
-    async def __call__(self, scope, receive, send) -> None:
-        if scope["type"] != "http":
-            await self.app(scope, receive, send)
-            return
-        sent = None
-        for name, value in scope["headers"]:
-            if name == b"x-request-id":
-                sent = value.decode("latin-1")
-                break
-        request_id = request_id_from(sent)
-        token = request_id_var.set(request_id)
-
-        async def send_with_id(message) -> None:
-            if message["type"] == "http.response.start":
-                headers = [(k, v) for k, v in message.get("headers", []) if k.lower() != b"x-request-id"]
-                headers.append((b"x-request-id", request_id.encode()))
-                message = {**message, "headers": headers}
-            await send(message)
-
-        try:
-            await self.app(scope, receive, send_with_id)
-        finally:
-            request_id_var.reset(token)

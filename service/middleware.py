@@ -1,5 +1,5 @@
-"""Pure ASGI middleware that keeps connections healthy: a time limit on slow request bodies, and a last
-catch for unexpected errors that answers a plain 500 instead of letting the server drop the connection."""
+"""Pure ASGI middleware: the request id, a time limit on slow request bodies, and a last catch for
+unexpected errors that answers a plain 500 instead of letting the server drop the connection."""
 
 from __future__ import annotations
 
@@ -10,13 +10,51 @@ import anyio
 import orjson
 
 from service.errors import BodyTimeout
+from service.logs import request_id_from, request_id_var
 
 log = logging.getLogger("segscore")
 
 INTERNAL_ERROR_BODY = orjson.dumps({"detail": "internal error; see the server log (quote the X-Request-ID)"})
 
 
-class BodyReadTimeout:
+class HttpMiddleware:
+    """Base: ``handle`` sees HTTP requests only; other ASGI traffic (lifespan) passes straight through."""
+
+    def __init__(self, app) -> None:
+        self.app = app
+
+    async def __call__(self, scope, receive, send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+        else:
+            await self.handle(scope, receive, send)
+
+    async def handle(self, scope, receive, send) -> None:
+        raise NotImplementedError
+
+
+class RequestIdMiddleware(HttpMiddleware):
+    """Set the request id for the request's duration (log lines read it) and send it back as ``X-Request-ID``."""
+
+    async def handle(self, scope, receive, send) -> None:
+        sent = next((value.decode("latin-1") for name, value in scope["headers"] if name == b"x-request-id"), None)
+        request_id = request_id_from(sent)
+        token = request_id_var.set(request_id)
+
+        async def send_with_id(message) -> None:
+            if message["type"] == "http.response.start":
+                headers = [(k, v) for k, v in message.get("headers", []) if k.lower() != b"x-request-id"]
+                headers.append((b"x-request-id", request_id.encode()))
+                message = {**message, "headers": headers}
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_with_id)
+        finally:
+            request_id_var.reset(token)
+
+
+class BodyReadTimeout(HttpMiddleware):
     """A request body that sends nothing for ``seconds`` fails with BodyTimeout (408, connection closed).
 
     Only the body is timed: once it is complete, later ``receive`` calls (waiting for a disconnect) are
@@ -24,13 +62,10 @@ class BodyReadTimeout:
     README for what a reverse proxy must add for that."""
 
     def __init__(self, app, seconds: float) -> None:
-        self.app = app
+        super().__init__(app)
         self.seconds = seconds
 
-    async def __call__(self, scope, receive, send) -> None:
-        if scope["type"] != "http":
-            await self.app(scope, receive, send)
-            return
+    async def handle(self, scope, receive, send) -> None:
         body_done = False
 
         async def timed_receive():
@@ -49,7 +84,7 @@ class BodyReadTimeout:
         await self.app(scope, timed_receive, send)
 
 
-class ErrorBoundary:
+class ErrorBoundary(HttpMiddleware):
     """Turns an unexpected exception into a JSON 500 and does not re-raise it.
 
     Starlette's outermost error middleware re-raises after answering, and uvicorn then closes the
@@ -57,13 +92,7 @@ class ErrorBoundary:
     response is complete and the keep-alive connection stays usable. The log line has the exception's type
     and the code location, not its message (which may quote a value from the request)."""
 
-    def __init__(self, app) -> None:
-        self.app = app
-
-    async def __call__(self, scope, receive, send) -> None:
-        if scope["type"] != "http":
-            await self.app(scope, receive, send)
-            return
+    async def handle(self, scope, receive, send) -> None:
         started = False
 
         async def tracking_send(message) -> None:

@@ -13,22 +13,18 @@ from pathlib import Path
 import httpx2
 import pytest
 
+from tests.conftest import free_port, stop_process
+
 START_TIMEOUT = 60
 SOCKET_TIMEOUT = 15          # an upper bound for each wait below, never the expected time
 REPO = Path(__file__).resolve().parents[1]
-
-
-def _free_port() -> int:
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
 
 
 @pytest.fixture(scope="module")
 def server(tmp_path_factory):
     """A running server (one for this module): base URL, port, log. Body-read and keep-alive time-outs are 1 s."""
     tmp_path = tmp_path_factory.mktemp("server")
-    port = _free_port()
+    port = free_port()
     env = {k: v for k, v in os.environ.items() if not k.startswith("SEGSCORE_")}
     env.update(SEGSCORE_STORE_DIR=str(tmp_path / "store"), SEGSCORE_BODY_READ_TIMEOUT_SECONDS="1",
                SEGSCORE_KEEP_ALIVE_SECONDS="1", PYTHONPATH=str(REPO))
@@ -49,12 +45,7 @@ def server(tmp_path_factory):
             time.sleep(0.2)
         yield base, port, tmp_path / "server.log"
     finally:
-        process.terminate()
-        try:
-            process.wait(20)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait(20)
+        stop_process(process)
         log.close()
 
 
