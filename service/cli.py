@@ -176,7 +176,6 @@ def list_segmentations(store_dir: Path | None) -> None:
                    f"updated={row['updated_at']}")
 
 
-
 @main.group()
 def keys() -> None:
     """Create, list and revoke the API keys of a store (a running server sees changes within 2 s)."""
@@ -196,8 +195,7 @@ def _open_store(store_dir: Path | None):
 @keys.command("create")
 @_store_option
 @click.option("--name", required=True, help="unique name; recorded as the actor of this key's writes")
-@click.option("--scope", "scopes", multiple=True, required=True,
-              type=click.Choice(SCOPES),
+@click.option("--scope", "scopes", multiple=True, required=True, type=click.Choice(SCOPES),
               help="repeat for several; admin implies every scope")
 def keys_create(store_dir: Path | None, name: str, scopes: tuple[str, ...]) -> None:
     """Create a key and print it once, alone on the last line (the store keeps only a salted digest)."""
@@ -206,11 +204,12 @@ def keys_create(store_dir: Path | None, name: str, scopes: tuple[str, ...]) -> N
 
     if not NAME_PATTERN.fullmatch(name):
         raise click.BadParameter(f"must match {NAME_PATTERN.pattern}", param_hint="--name")
+    scopes = sorted(set(scopes))
     try:
-        key = _open_store(store_dir).create_key(name, sorted(set(scopes)))
+        key = _open_store(store_dir).create_key(name, scopes)
     except ServiceError as exc:
         raise click.ClickException(str(exc.detail)) from None
-    click.echo(f"created API key '{name}' with scope(s) {', '.join(sorted(set(scopes)))}. "
+    click.echo(f"created API key '{name}' with scope(s) {', '.join(scopes)}. "
                "It is shown once; store it now. Send it as 'Authorization: Bearer <key>'.")
     click.echo(key)
 
