@@ -9,6 +9,7 @@ import sys
 
 from service.app import create_app
 from service.cli import run_server
+from service.errors import BundleCorrupt
 from service.logs import configure_logging
 from service.settings import Settings
 
@@ -25,6 +26,10 @@ def main() -> None:
     @app.post("/test-only/fails")
     async def fails_post():
         raise RuntimeError("a bug, before the body was read")
+
+    @app.get("/test-only/fails-handled")
+    async def fails_handled():
+        raise BundleCorrupt("shop", 1)        # a deliberate 500 from the error table
 
     run_server(app, settings)
 

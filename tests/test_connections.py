@@ -87,14 +87,18 @@ def test_a_pooled_client_keeps_working_after_a_500(server):
             failed = client.post("/test-only/fails", content=b"x" * 50_000)
             assert failed.status_code == 500
             assert client.get("/v1/segmentations").status_code == 200
+            failed = client.get("/test-only/fails-handled")
+            assert failed.status_code == 500 and "SHA-256" in failed.json()["detail"]
+            assert client.get("/healthz").status_code == 200
     assert "RuntimeError" in log.read_text()          # logged by type, with the request id
 
 
-def test_the_connection_itself_stays_open_after_a_500(server):
+@pytest.mark.parametrize("path", ["/test-only/fails", "/test-only/fails-handled"], ids=["unexpected", "handled"])
+def test_the_connection_itself_stays_open_after_a_500(server, path):
     """Raw socket: the same TCP connection answers a second request after the 500 (no silent close)."""
     _, port, _ = server
     with socket.create_connection(("127.0.0.1", port), timeout=SOCKET_TIMEOUT) as sock:
-        sock.sendall(b"GET /test-only/fails HTTP/1.1\r\nHost: t\r\nX-Request-ID: first\r\n\r\n")
+        sock.sendall(f"GET {path} HTTP/1.1\r\nHost: t\r\nX-Request-ID: first\r\n\r\n".encode())
         status, headers, _ = _read_response(sock)
         assert (status, headers["x-request-id"]) == (500, "first")
         assert headers.get("connection", "").lower() != "close"
