@@ -22,6 +22,7 @@ bench: $(STAMP)  ## in-process benchmarks (figures for the README)
 	$(BIN)/python bench/bench_fit.py
 	$(BIN)/python bench/bench_assign.py
 	$(BIN)/python bench/bench_drift.py
+	$(BIN)/python bench/bench_auth.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info
