@@ -90,10 +90,13 @@ def run_server(app, settings: Settings) -> None:
     """uvicorn with the service's connection settings (also used by the tests that start a real server)."""
     import uvicorn
 
+    from service.connections import head_limited_protocol
+
     # log_config=None: uvicorn keeps our logging set-up (request ids in every line) instead of its own.
     uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
                 access_log=settings.access_log, log_level=settings.log_level,
-                timeout_keep_alive=settings.keep_alive_seconds)
+                timeout_keep_alive=settings.keep_alive_seconds,
+                http=head_limited_protocol(settings.header_read_timeout_seconds, settings.max_header_bytes))
 
 
 @main.command("demo-data")

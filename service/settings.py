@@ -21,13 +21,15 @@ class Settings(BaseSettings):
 
     # API keys live in the store (``segscore keys create``); there is no key setting.
 
-    # Slow clients. uvicorn closes a kept-alive connection idle for this long; it has no time-out for a
-    # client that drips its request headers (see the README: a reverse proxy in front should add one).
+    # Slow clients (service/connections.py, service/middleware.py). A kept-alive connection idle this long is
+    # closed (uvicorn's timeout_keep_alive).
     keep_alive_seconds: int = Field(5, ge=1, le=300)
+    # A request line and headers not complete this long after the connection opened or the request began:
+    # the connection is closed. So is a head larger than max_header_bytes.
+    header_read_timeout_seconds: float = Field(10.0, gt=0)
+    max_header_bytes: int = Field(64 * 1024, ge=4096)
     # A request body that sends nothing for this long is answered 408 and the connection is closed.
     body_read_timeout_seconds: float = Field(30.0, gt=0)
-    # Largest incomplete request head (request line + headers) uvicorn's HTTP parser holds before refusing it.
-    max_header_bytes: int = Field(64 * 1024, ge=4096)
 
     # Data protection: stored drift reports older than this many days are deleted at start-up and then every
     # hour; 0 keeps them forever.

@@ -22,12 +22,14 @@ REPO = Path(__file__).resolve().parents[1]
 
 @pytest.fixture(scope="module")
 def server(tmp_path_factory):
-    """A running server (one for this module): base URL, port, log. Body-read and keep-alive time-outs are 1 s."""
+    """A running server (one for this module): base URL, port, log. Body-read and keep-alive time-outs 1 s,
+    header-read time-out 2 s, request heads up to 8 KB."""
     tmp_path = tmp_path_factory.mktemp("server")
     port = free_port()
     env = {k: v for k, v in os.environ.items() if not k.startswith("SEGSCORE_")}
     env.update(SEGSCORE_STORE_DIR=str(tmp_path / "store"), SEGSCORE_BODY_READ_TIMEOUT_SECONDS="1",
-               SEGSCORE_KEEP_ALIVE_SECONDS="1", PYTHONPATH=str(REPO))
+               SEGSCORE_KEEP_ALIVE_SECONDS="1", SEGSCORE_HEADER_READ_TIMEOUT_SECONDS="2",
+               SEGSCORE_MAX_HEADER_BYTES="8192", PYTHONPATH=str(REPO))
     log = (tmp_path / "server.log").open("w")
     process = subprocess.Popen([sys.executable, "-m", "tests.server_child", str(port)], cwd=REPO, env=env,
                                stdout=log, stderr=subprocess.STDOUT)
@@ -125,3 +127,59 @@ def test_an_idle_kept_alive_connection_is_closed(server):
         sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: t\r\n\r\n")
         assert _read_response(sock)[0] == 200
         assert _closed_by_server(sock)                  # keep-alive time-out 1 s; we wait up to 15 s
+
+
+def test_a_connection_that_sends_nothing_is_closed(server):
+    _, port, _ = server
+    with socket.create_connection(("127.0.0.1", port), timeout=SOCKET_TIMEOUT) as sock:
+        assert _closed_by_server(sock)                  # header time-out 2 s; we wait up to 15 s
+
+
+def test_dripped_headers_are_cut_off(server):
+    """One header byte every 0.2 s: the head is never complete within the 2 s limit, so the server closes."""
+    _, port, _ = server
+    with socket.create_connection(("127.0.0.1", port), timeout=SOCKET_TIMEOUT) as sock:
+        sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: t\r\nX-Slow: ")
+        deadline = time.monotonic() + SOCKET_TIMEOUT
+        closed = False
+        while not closed and time.monotonic() < deadline:
+            try:
+                sock.sendall(b"a")
+            except (BrokenPipeError, ConnectionResetError):
+                closed = True
+                break
+            sock.settimeout(0.2)
+            try:
+                closed = sock.recv(1) == b""
+            except socket.timeout:
+                pass
+            except ConnectionResetError:
+                closed = True
+        assert closed, "the server kept a dripping connection open"
+
+
+def test_the_head_time_limit_applies_to_each_request_on_a_kept_alive_connection(server):
+    _, port, _ = server
+    with socket.create_connection(("127.0.0.1", port), timeout=SOCKET_TIMEOUT) as sock:
+        sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: t\r\n\r\n")
+        assert _read_response(sock)[0] == 200
+        sock.sendall(b"GET /healthz HTTP/1.1\r\n")          # begins a second request, never finishes it
+        assert _closed_by_server(sock)
+
+
+def test_an_oversized_request_head_is_refused(server):
+    _, port, _ = server
+    with socket.create_connection(("127.0.0.1", port), timeout=SOCKET_TIMEOUT) as sock:
+        try:
+            sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: t\r\nX-Big: " + b"a" * 20_000 + b"\r\n\r\n")
+        except (BrokenPipeError, ConnectionResetError):
+            return
+        assert _closed_by_server(sock)
+
+
+def test_a_normal_request_with_a_large_body_still_works(server):
+    """The head limits do not touch bodies: a 200 KB body reaches the route (a 4xx from the route, not a close)."""
+    base, _, _ = server
+    response = httpx2.post(f"{base}/v1/segmentations/shop/assign", content=b'{"records": [' + b" " * 200_000 + b"]}",
+                           headers={"content-type": "application/json"}, timeout=SOCKET_TIMEOUT)
+    assert response.status_code in (404, 422)
