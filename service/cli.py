@@ -240,5 +240,15 @@ def keys_revoke(store_dir: Path | None, name: str) -> None:
     click.echo(f"revoked API key '{name}'")
 
 
+@main.command()
+@_store_option
+@click.option("--name", default=None, help="a segmentation; default: key and retention events")
+@click.option("--limit", type=click.IntRange(1, 100_000), default=50, show_default=True)
+def events(store_dir: Path | None, name: str | None, limit: int) -> None:
+    """Who did what, newest first: one JSON object per line (at, actor, action, version, details)."""
+    for event in _open_store(store_dir).events(name, limit=limit):
+        click.echo(json.dumps(event))
+
+
 if __name__ == "__main__":
     main()

@@ -6,6 +6,7 @@ The authorization matrix is built from the app's own route table: every /v1 rout
 
 from __future__ import annotations
 
+import json
 import logging
 import shutil
 import sqlite3
@@ -261,8 +262,9 @@ def test_keys_duplicate_name_and_unknown_revoke_exit_1(tmp_path):
     assert unknown.exit_code == 1 and "nope" in unknown.output
     assert run("keys", "revoke", "--store", store, "--name", "crm").exit_code == 0
     assert run("keys", "list", "--store", store).output == ""
-    actions = [(e["action"], e["actor"]) for e in FilesystemStore(tmp_path / "s").events(None, limit=10)]
-    assert actions == [("revoke_key", "cli"), ("create_key", "cli")]
+    shown = [json.loads(line) for line in run("events", "--store", store).output.splitlines()]
+    assert [(e["action"], e["actor"], e["details"]["key"]) for e in shown] == [("revoke_key", "cli", "crm"),
+                                                                              ("create_key", "cli", "crm")]
 
 
 def test_keys_create_refuses_an_unknown_scope(tmp_path):
