@@ -19,9 +19,9 @@ import fcntl
 import hashlib
 import json
 import os
+import shutil
 import sqlite3
 import tempfile
-import shutil
 import threading
 import time
 import uuid
