@@ -30,6 +30,7 @@ bench: $(STAMP)  ## in-process benchmarks (figures for the README)
 	$(BIN)/python bench/bench_fit.py
 	$(BIN)/python bench/bench_assign.py
 	$(BIN)/python bench/bench_drift.py
+	$(BIN)/python bench/bench_auth.py
 
 calibrate: $(STAMP)  ## calibration sweeps of the outlier flag and the drift p-values (figures for the README)
 	$(BIN)/python bench/calibrate.py

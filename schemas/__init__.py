@@ -4,10 +4,10 @@ from schemas.assign import AssignResponse, AssignResult
 from schemas.common import ErrorItem, ErrorResponse
 from schemas.drift import DriftReport, DriftReportList
 from schemas.fit import FitReport, FitRequest, KRange, LabelUpdate, LiveUpdate, Segment
-from schemas.segmentation import SegmentationDetail, SegmentationList, SegmentationSummary, VersionSummary
+from schemas.segmentation import Event, SegmentationDetail, SegmentationList, SegmentationSummary, VersionSummary
 
 __all__ = [
-    "AssignResponse", "AssignResult", "DriftReport", "DriftReportList", "ErrorItem", "ErrorResponse",
+    "AssignResponse", "AssignResult", "DriftReport", "DriftReportList", "ErrorItem", "ErrorResponse", "Event",
     "FitReport", "FitRequest", "KRange", "LabelUpdate", "LiveUpdate", "Segment", "SegmentationDetail",
     "SegmentationList", "SegmentationSummary", "VersionSummary",
 ]

@@ -1,5 +1,7 @@
 from __future__ import annotations
 
+from typing import Any
+
 from pydantic import BaseModel
 
 
@@ -22,7 +24,19 @@ class VersionSummary(BaseModel):
     k: int
     n_records: int
     data_sha256: str
+    created_by: str | None = None   # the actor of the fit (a key name, 'local' or 'cli'); None before events
+
+
+class Event(BaseModel):
+    """One write: when, by whom (a key name, 'local' when auth is off, 'cli' from the shell), what."""
+
+    at: str
+    actor: str
+    action: str   # fit | set_live | label | delete_version | delete_segmentation
+    version: int | None
+    details: dict[str, Any]
 
 
 class SegmentationDetail(SegmentationSummary):
     versions: list[VersionSummary]
+    events: list[Event] = []   # newest first

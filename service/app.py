@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import asyncio
 import gc
 import logging
-from contextlib import asynccontextmanager
+import os
+from contextlib import asynccontextmanager, suppress
+from datetime import datetime, timedelta, timezone
 
 import anyio
 import swagger_ui_bundle
@@ -19,9 +22,11 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from service import __version__
 from service.api import assign, drift, health, segmentations
 from service.api.validation import problems_from_pydantic
+from service.auth import KEY_POLL_SECONDS, KeyRing, is_loopback
 from service.errors import (
     AuthError,
     BadBody,
+    BodyTimeout,
     BundleCorrupt,
     Conflict,
     InvalidInput,
@@ -34,6 +39,7 @@ from service.errors import (
     UnsupportedMediaType,
 )
 from service.metrics import Metrics, MetricsMiddleware
+from service.middleware import BodyReadTimeout, ErrorBoundary, RequestIdMiddleware
 from service.settings import Settings, get_settings
 from service.store import FilesystemStore
 
@@ -46,6 +52,7 @@ STATUS_BY_ERROR: dict[type[ServiceError], int] = {
     ScopeDenied: 403,
     AuthError: 401,
     NotFound: 404,
+    BodyTimeout: 408,
     Conflict: 409,
     PayloadTooLarge: 413,
     UnsupportedMediaType: 415,
@@ -68,6 +75,8 @@ async def _service_error(request: Request, exc: ServiceError) -> JSONResponse:
     if status >= 500:
         log.error("request failed: %s %s -> %s: %s", request.method, request.url.path, status, exc.detail)
     headers = {"WWW-Authenticate": "Bearer"} if status == 401 else None
+    if status == 408:
+        headers = {"Connection": "close"}  # the rest of the body may still be on its way
     return JSONResponse({"detail": exc.detail}, status_code=status, headers=headers)
 
 
@@ -80,9 +89,48 @@ async def _http_error(request: Request, exc: StarletteHTTPException) -> JSONResp
     return JSONResponse({"detail": exc.detail}, status_code=exc.status_code, headers=getattr(exc, "headers", None))
 
 
-async def _unexpected(request: Request, exc: Exception) -> JSONResponse:
-    log.exception("unexpected error on %s %s", request.method, request.url.path)
-    return JSONResponse({"detail": "internal error; see the server log"}, status_code=500)
+RETENTION_EVERY_SECONDS = 3600.0
+LEGACY_KEYS_VARIABLE = "SEGSCORE_API_KEYS"
+
+
+def start_up_refusal(settings: Settings, keyring: KeyRing) -> str | None:
+    """Why the server must not start (with the command that fixes it), or None."""
+    if os.environ.get(LEGACY_KEYS_VARIABLE):
+        # Keys used to be plain text in this variable; it is no longer read. Starting anyway would serve with
+        # an authentication other than the one the operator set up.
+        return (f"{LEGACY_KEYS_VARIABLE} is no longer read: API keys live in the store. Create one key per caller "
+                f"with 'segscore keys create --store {settings.store_dir} --name NAME --scope SCOPE', hand the "
+                f"new keys out, then unset {LEGACY_KEYS_VARIABLE} (README: 'Moving from SEGSCORE_API_KEYS').")
+    if not keyring.has_keys and not is_loopback(settings.host):
+        return (f"refusing to serve on {settings.host}: the store {settings.store_dir} has no API key, so every "
+                "caller would have full access. Create one first, e.g.\n"
+                f"  segscore keys create --store {settings.store_dir} --scope admin --name ops\n"
+                "or bind to a loopback address (127.0.0.1) for local use without keys.")
+    return None
+
+
+def _prune_drift_reports(app: FastAPI) -> None:
+    days = app.state.settings.drift_retention_days
+    if days:
+        cutoff = (datetime.now(timezone.utc) - timedelta(days=days)).strftime("%Y-%m-%dT%H:%M:%SZ")
+        gone = app.state.store.prune_drift_reports(cutoff)
+        if gone:
+            log.info("drift-report retention (%d days): deleted %d report(s)", days, gone)
+
+
+async def _maintenance(app: FastAPI) -> None:
+    """Background loop, off the request path: re-read changed API keys about every second, and apply the
+    drift-report retention every hour (it also runs once at start-up, before the first request)."""
+    next_retention = anyio.current_time() + RETENTION_EVERY_SECONDS
+    while True:
+        try:
+            await anyio.to_thread.run_sync(app.state.keyring.refresh)
+            if anyio.current_time() >= next_retention:
+                next_retention = anyio.current_time() + RETENTION_EVERY_SECONDS
+                await anyio.to_thread.run_sync(_prune_drift_reports, app)
+        except Exception as exc:  # a store that is briefly unreadable must not end the loop
+            log.warning("background store check failed: %s", type(exc).__name__)
+        await anyio.sleep(KEY_POLL_SECONDS)
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
@@ -91,6 +139,16 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
+        keyring: KeyRing = app.state.keyring
+        refusal = start_up_refusal(settings, keyring)
+        if refusal:
+            raise RuntimeError(refusal)
+        if not keyring.has_keys:
+            log.warning("no API key in the store %s: authentication is OFF; serving open on the loopback "
+                        "address %s only. Create a key with 'segscore keys create --store %s --scope admin "
+                        "--name NAME' to turn it on.", settings.store_dir, settings.host, settings.store_dir)
+        await anyio.to_thread.run_sync(_prune_drift_reports, app)
+        maintenance = asyncio.get_running_loop().create_task(_maintenance(app))
         app.state.fit_limiter = anyio.CapacityLimiter(settings.fit_concurrency)
         # Bodies over large_body_bytes are read and parsed by at most this many requests at once; the others
         # wait their turn before their body is read, so memory stays bounded (see README, "Limits").
@@ -102,32 +160,46 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             # cached bundles) out of the collector's reach.
             gc.freeze()
             gc.set_threshold(settings.gc_gen0_threshold, *gc.get_threshold()[1:])
-        yield
+        try:
+            yield
+        finally:
+            maintenance.cancel()
+            with suppress(asyncio.CancelledError):
+                await maintenance
 
     app = FastAPI(
         title="segscore",
         version=__version__,
         description="Fit and version customer segmentations; assign new records; report drift.",
         lifespan=lifespan,
-        # /docs is served below from the Swagger UI files of an installed package (no CDN: it works offline);
-        # ReDoc has no such package, so it is off.
-        docs_url=None,
-        redoc_url=None,
+        # Unexpected exceptions are caught by ErrorBoundary (below), not by an ``Exception`` handler here:
+        # Starlette re-raises after such a handler, and the server then drops the keep-alive connection.
         exception_handlers={
             ServiceError: _service_error,
             RequestValidationError: _validation_error,
             StarletteHTTPException: _http_error,
-            Exception: _unexpected,
         },
+        # /docs is served below from the Swagger UI files of an installed package (no CDN: it works offline);
+        # ReDoc has no such package, so it is off.
+        docs_url=None,
+        redoc_url=None,
+        openapi_url="/openapi.json" if settings.docs_enabled else None,
     )
     app.state.settings = settings
     app.state.store = FilesystemStore(settings.store_dir, cache_size=settings.bundle_cache_size)
+    app.state.keyring = KeyRing(app.state.store, open_without_keys=is_loopback(settings.host))
     app.state.metrics = metrics
     for router in (segmentations.router, assign.router, drift.router):
         app.include_router(router, prefix="/v1")
     app.include_router(health.router)
-    _offline_docs(app)
+    if settings.docs_enabled:
+        _offline_docs(app)
+    # The last added is the outermost: the request id is set before anything else runs (so every log line
+    # of the request carries it), metrics count the boundary's 500s, and the body timer is innermost.
+    app.add_middleware(BodyReadTimeout, seconds=settings.body_read_timeout_seconds)
+    app.add_middleware(ErrorBoundary)
     app.add_middleware(MetricsMiddleware, metrics=metrics)
+    app.add_middleware(RequestIdMiddleware)
     return app
 
 

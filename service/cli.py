@@ -1,15 +1,14 @@
-"""The ``segscore`` command: serve the API, write demo data, fit and list from the shell."""
+"""The ``segscore`` command: serve the API, write demo data, fit and list from the shell, manage API keys."""
 
 from __future__ import annotations
 
 import json
-import logging
 import sys
 from pathlib import Path
 
 import click
 
-from service.settings import Settings
+from service.settings import SCOPES, Settings
 
 DEMO_NAME = "demo"
 
@@ -78,7 +77,9 @@ def ensure_demo(settings: Settings) -> None:
 @click.group()
 def main() -> None:
     """segscore: fit, version and serve customer segmentations."""
-    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    from service.logs import configure_logging
+
+    configure_logging("info")
 
 
 @main.command()
@@ -89,16 +90,33 @@ def main() -> None:
 @click.option("--demo", is_flag=True, help="fit the 'demo' segmentation from synthetic data if absent")
 def serve(host: str | None, port: int | None, store_dir: Path | None, demo: bool) -> None:
     """Run the HTTP API with uvicorn (one process)."""
-    import uvicorn
-
-    from service.app import create_app
+    from service.app import create_app, start_up_refusal
+    from service.logs import configure_logging
 
     settings = _settings(host=host, port=port, store_dir=store_dir)
+    configure_logging(settings.log_level)
+    app = create_app(settings)
+    refusal = start_up_refusal(settings, app.state.keyring)
+    if refusal:
+        click.echo(refusal, err=True)
+        sys.exit(1)
     pin_blas_threads()
     if demo:
         ensure_demo(settings)
-    uvicorn.run(create_app(settings), host=settings.host, port=settings.port,
-                access_log=settings.access_log, log_level=settings.log_level)
+    run_server(app, settings)
+
+
+def run_server(app, settings: Settings) -> None:
+    """uvicorn with the service's connection settings (also used by the tests that start a real server)."""
+    import uvicorn
+
+    from service.connections import head_limited_protocol
+
+    # log_config=None: uvicorn keeps our logging set-up (request ids in every line) instead of its own.
+    uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
+                access_log=settings.access_log, log_level=settings.log_level,
+                timeout_keep_alive=settings.keep_alive_seconds,
+                http=head_limited_protocol(settings.header_read_timeout_seconds, settings.max_header_bytes))
 
 
 @main.command("demo-data")
@@ -181,6 +199,77 @@ def list_segmentations(store_dir: Path | None) -> None:
     for row in FilesystemStore(settings.store_dir).list_segmentations():
         click.echo(f"{row['name']}\tlive={row['live_version']}\tlatest={row['latest_version']}\t"
                    f"updated={row['updated_at']}")
+
+
+@main.group()
+def keys() -> None:
+    """Create, list and revoke the API keys of a store (a running server sees changes within 2 s)."""
+
+
+def _store_option(function):
+    return click.option("--store", "store_dir", type=click.Path(path_type=Path), default=None,
+                        help="store directory (default models_store; env SEGSCORE_STORE_DIR)")(function)
+
+
+def _open_store(store_dir: Path | None):
+    from service.store import FilesystemStore
+
+    return FilesystemStore(_settings(store_dir=store_dir).store_dir)
+
+
+@keys.command("create")
+@_store_option
+@click.option("--name", required=True, help="unique name; recorded as the actor of this key's writes")
+@click.option("--scope", "scopes", multiple=True, required=True, type=click.Choice(SCOPES),
+              help="repeat for several; admin implies every scope")
+def keys_create(store_dir: Path | None, name: str, scopes: tuple[str, ...]) -> None:
+    """Create a key and print it once, alone on the last line (the store keeps only a salted digest)."""
+    from service.api.payload import NAME_PATTERN
+    from service.errors import ServiceError
+
+    if not NAME_PATTERN.fullmatch(name):
+        raise click.BadParameter(f"must match {NAME_PATTERN.pattern}", param_hint="--name")
+    scopes = sorted(set(scopes))
+    try:
+        key = _open_store(store_dir).create_key(name, scopes)
+    except ServiceError as exc:
+        raise click.ClickException(str(exc.detail)) from None
+    click.echo(f"created API key '{name}' with scope(s) {', '.join(scopes)}. "
+               "It is shown once; store it now. Send it as 'Authorization: Bearer <key>'.")
+    click.echo(key)
+
+
+@keys.command("list")
+@_store_option
+def keys_list(store_dir: Path | None) -> None:
+    """Name, scopes, creation time and the first characters of every key (never a whole key)."""
+    for stored in _open_store(store_dir).stored_keys():
+        click.echo(f"{stored.name}\tscopes={','.join(stored.scopes)}\tcreated={stored.created_at}\t"
+                   f"starts={stored.prefix}...")
+
+
+@keys.command("revoke")
+@_store_option
+@click.option("--name", required=True)
+def keys_revoke(store_dir: Path | None, name: str) -> None:
+    """Delete a key; a running server refuses it within 2 s."""
+    from service.errors import ServiceError
+
+    try:
+        _open_store(store_dir).revoke_key(name)
+    except ServiceError as exc:
+        raise click.ClickException(str(exc.detail)) from None
+    click.echo(f"revoked API key '{name}'")
+
+
+@main.command()
+@_store_option
+@click.option("--name", default=None, help="a segmentation; default: key and retention events")
+@click.option("--limit", type=click.IntRange(1, 100_000), default=50, show_default=True)
+def events(store_dir: Path | None, name: str | None, limit: int) -> None:
+    """Who did what, newest first: one JSON object per line (at, actor, action, version, details)."""
+    for event in _open_store(store_dir).events(name, limit=limit):
+        click.echo(json.dumps(event))
 
 
 if __name__ == "__main__":

@@ -2,11 +2,11 @@
 
 from __future__ import annotations
 
-import hmac
 from typing import Annotated, Any
 
 from fastapi import Depends, Request
 
+from service.auth import LOCAL_ACTOR, SCOPES, KeyRing
 from service.errors import MissingKey, ScopeDenied
 from service.settings import Settings
 from service.store import FilesystemStore
@@ -29,24 +29,22 @@ StoreDep = Annotated[FilesystemStore, Depends(get_store)]
 
 
 def authorize(request: Request, key: str | None, scope: str) -> None:
-    """Raise unless ``key`` is a known API key carrying ``scope`` (no-op when auth is off).
+    """Raise unless ``key`` is a known API key carrying ``scope`` (or ``admin``); no-op when auth is off.
 
     The one place that decides whether a key may do something: the API's bearer header and any other
-    caller that holds a key (a console session, say) go through here.
+    caller that holds a key (a console session, say) go through here. On success the key's name is the
+    request's actor (``request.state.actor``), recorded with every write.
     """
-    settings: Settings = request.app.state.settings
-    if not settings.auth_enabled:
+    keyring: KeyRing = request.app.state.keyring
+    if not keyring.auth_required:
+        request.state.actor = LOCAL_ACTOR
         return
-    if not key:
+    caller = keyring.caller(key.strip()) if key else None
+    if caller is None:
         raise MissingKey()
-    scopes = None
-    for known, granted in settings.api_keys.items():
-        if hmac.compare_digest(known.encode(), key.strip().encode()):
-            scopes = granted
-    if scopes is None:
-        raise MissingKey()
-    if scope not in scopes:
+    if not caller.may(scope):
         raise ScopeDenied(scope)
+    request.state.actor = caller.name
 
 
 def bearer_key(request: Request) -> str | None:
@@ -56,15 +54,29 @@ def bearer_key(request: Request) -> str | None:
 
 
 def require_scope(scope: str) -> Any:
-    """Dependency factory: the request's bearer key must carry ``scope`` (no-op when auth is off)."""
+    """Dependency factory: the request's bearer key must carry ``scope`` (no-op when auth is off).
+
+    The check function carries ``required_scope`` so that the route table says which scope each route
+    needs (the authorization test reads it; a /v1 route without one fails that test)."""
+    if scope not in SCOPES:
+        raise ValueError(f"unknown scope {scope!r}; known: {SCOPES}")
 
     async def check(request: Request) -> None:
         authorize(request, bearer_key(request), scope)
 
+    check.required_scope = scope  # type: ignore[attr-defined]
     return Depends(check)
 
+
+async def get_actor(request: Request) -> str:
+    """Who makes this write: the verified key's name, or 'local' when auth is off (set by ``authorize``)."""
+    return getattr(request.state, "actor", LOCAL_ACTOR)
+
+
+ActorDep = Annotated[str, Depends(get_actor)]
 
 FitScope = require_scope("fit")
 ReadScope = require_scope("read")
 AssignScope = require_scope("assign")
 DriftScope = require_scope("drift")
+AdminScope = require_scope("admin")

@@ -8,9 +8,12 @@
     ├── NotFound
     │   ├── SegmentationNotFound
     │   ├── VersionNotFound
-    │   └── SegmentNotFound
+    │   ├── SegmentNotFound
+    │   └── KeyNotFound          no API key of that name (keys revoke)
     ├── Conflict
-    │   └── NoLiveVersion
+    │   ├── NoLiveVersion
+    │   └── KeyNameTaken         an API key of that name exists
+    ├── BodyTimeout              the client stopped sending its body
     ├── PayloadTooLarge
     ├── UnsupportedMediaType     body neither JSON nor CSV
     ├── InvalidInput             well-formed body, unusable content
@@ -81,6 +84,13 @@ class SegmentNotFound(NotFound):
         super().__init__(f"'{name}' version {version} has segments 0..{k - 1}; got {segment}")
 
 
+class KeyNotFound(NotFound):
+    """No API key of that name."""
+
+    def __init__(self, name: str) -> None:
+        super().__init__(f"there is no API key named '{name}'")
+
+
 class Conflict(ServiceError):
     """The request conflicts with the current state."""
 
@@ -92,6 +102,20 @@ class NoLiveVersion(Conflict):
         super().__init__(
             f"segmentation '{name}' has no live version; pass ?version=N or PUT .../live first"
         )
+
+
+class KeyNameTaken(Conflict):
+    """An API key of that name exists."""
+
+    def __init__(self, name: str) -> None:
+        super().__init__(f"an API key named '{name}' exists; revoke it first or choose another name")
+
+
+class BodyTimeout(ServiceError):
+    """The client stopped sending the request body."""
+
+    def __init__(self, seconds: float) -> None:
+        super().__init__(f"no part of the request body arrived for {seconds:g} s; the connection is closed")
 
 
 class PayloadTooLarge(ServiceError):

@@ -5,10 +5,11 @@ from __future__ import annotations
 from functools import lru_cache
 from pathlib import Path
 
-from pydantic import Field, field_validator, model_validator
+from pydantic import Field, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
-SCOPES = ("fit", "read", "assign", "drift")
+# The scopes an API key can carry; "admin" implies every scope, including those of routes added later.
+SCOPES = ("read", "fit", "assign", "drift", "admin")
 
 
 class Settings(BaseSettings):
@@ -18,8 +19,24 @@ class Settings(BaseSettings):
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=1, le=65535)
 
-    # API keys: {"<key>": ["fit", "read", ...]}. Empty means authentication is off (local use).
-    api_keys: dict[str, list[str]] = Field(default_factory=dict)
+    # API keys live in the store (``segscore keys create``); there is no key setting.
+
+    # Slow clients (service/connections.py, service/middleware.py). A kept-alive connection idle this long is
+    # closed (uvicorn's timeout_keep_alive).
+    keep_alive_seconds: int = Field(5, ge=1, le=300)
+    # A request line and headers not complete this long after the connection opened or the request began:
+    # the connection is closed. So is a head larger than max_header_bytes.
+    header_read_timeout_seconds: float = Field(10.0, gt=0)
+    max_header_bytes: int = Field(64 * 1024, ge=4096)
+    # A request body that sends nothing for this long is answered 408 and the connection is closed.
+    body_read_timeout_seconds: float = Field(30.0, gt=0)
+
+    # Data protection: stored drift reports older than this many days are deleted at start-up and then every
+    # hour; 0 keeps them forever.
+    drift_retention_days: int = Field(0, ge=0)
+
+    # /docs, /redoc and /openapi.json (turn off where the API description should not be public).
+    docs_enabled: bool = True
 
     max_body_bytes: int = Field(256 * 1024 * 1024, ge=1024)
     max_fit_rows: int = Field(1_000_000, ge=2)
@@ -58,17 +75,6 @@ class Settings(BaseSettings):
     access_log: bool = False
     log_level: str = "info"
 
-    @field_validator("api_keys")
-    @classmethod
-    def _known_scopes(cls, value: dict[str, list[str]]) -> dict[str, list[str]]:
-        for key, scopes in value.items():
-            if len(key) < 16:
-                raise ValueError("every API key must be at least 16 characters long")
-            unknown = sorted(set(scopes) - set(SCOPES))
-            if unknown:
-                raise ValueError(f"unknown scope(s) {unknown}; allowed: {list(SCOPES)}")
-        return value
-
     @model_validator(mode="after")
     def _drift_bands_ordered(self) -> "Settings":
         pairs = (("drift_psi_watch", "drift_psi_alert"),
@@ -78,10 +84,6 @@ class Settings(BaseSettings):
             if getattr(self, watch) > getattr(self, alert):
                 raise ValueError(f"{watch} ({getattr(self, watch)}) must not exceed {alert} ({getattr(self, alert)})")
         return self
-
-    @property
-    def auth_enabled(self) -> bool:
-        return bool(self.api_keys)
 
 
 @lru_cache

@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import json
 import os
-import signal
-import socket
 import subprocess
 import sys
 import time
@@ -19,6 +17,7 @@ from click.testing import CliRunner
 
 from service.cli import main
 from service.demo import FEATURES
+from tests.conftest import free_port, stop_process
 
 SERVER_START_TIMEOUT = 180      # the demo fit runs first; the machine may be busy
 HTTP_TIMEOUT = 10
@@ -96,19 +95,13 @@ def test_fit_unparseable_option_is_a_usage_error(tmp_path, demo_csv, arguments):
     assert arguments[0] in result.output
 
 
-def _free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
-
-
 def _get(url: str):
     with urllib.request.urlopen(url, timeout=HTTP_TIMEOUT) as response:
         return response.status, json.loads(response.read())
 
 
 def test_serve_demo_answers_readyz_and_lists_demo(tmp_path):
-    port = _free_port()
+    port = free_port()
     store = tmp_path / "store"
     env = {k: v for k, v in os.environ.items() if not k.startswith("SEGSCORE_")}
     segscore = Path(sys.executable).with_name("segscore")
@@ -135,12 +128,7 @@ def test_serve_demo_answers_readyz_and_lists_demo(tmp_path):
         status, report = _get(f"{base}/v1/segmentations/demo/versions/1")
         assert report["features"] == FEATURES and report["id_column"] == "customer_id"
     finally:
-        server.send_signal(signal.SIGTERM)
-        try:
-            server.wait(30)
-        except subprocess.TimeoutExpired:
-            server.kill()
-            server.wait(30)
+        stop_process(server)
         log.close()
     # The store outlives the server, and --demo does not fit again when 'demo' exists.
     from service.cli import ensure_demo

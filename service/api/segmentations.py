@@ -8,7 +8,7 @@ import anyio
 import numpy as np
 import pandas as pd
 from fastapi import APIRouter, Path, Request
-from fastapi.responses import JSONResponse
+from fastapi.responses import JSONResponse, Response
 
 from schemas import FitReport, FitRequest, LabelUpdate, LiveUpdate, Segment, SegmentationDetail, SegmentationList
 from service.api.payload import (
@@ -41,7 +41,7 @@ from service.core.frame import (
     pairs_one_edit_apart,
     read_csv,
 )
-from service.deps import FitScope, ReadScope, SettingsDep, StoreDep
+from service.deps import ActorDep, AdminScope, FitScope, ReadScope, SettingsDep, StoreDep
 from service.errors import InvalidInput, PayloadTooLarge, RecordProblem
 
 router = APIRouter(prefix="/segmentations", tags=["segmentations"])
@@ -224,7 +224,7 @@ def _resolve_features(requested: list[str] | None, available: list[str], numeric
 @router.post("/{name}/fit", status_code=201, response_model=FitReport, openapi_extra=FIT_BODY,
              dependencies=[FitScope, StrictQuery], summary="Fit a new version from records",
              responses=error_responses(400, 401, 403, 413, 415, 422, 500, 503))
-async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep) -> JSONResponse:
+async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep, actor: ActorDep) -> JSONResponse:
     check_name(name)
     csv = body_kind(request) == "csv"
     if not csv and request.query_params:
@@ -240,7 +240,7 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
 
     def fit_and_save() -> dict[str, Any]:
         bundle = fit_bundle(values, config, max_agglomerative_rows=settings.max_agglomerative_rows)
-        return store.save_version(name, bundle, make_live=make_live)
+        return store.save_version(name, bundle, make_live=make_live, actor=actor)
 
     report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
     request.app.state.metrics.fits.inc()
@@ -326,12 +326,28 @@ def get_version(name: str, version: Annotated[VersionNumber, Path()], store: Sto
 @router.put("/{name}/live", response_model=SegmentationDetail, dependencies=[FitScope, StrictQuery],
             summary="Make a version live (promote or roll back)",
             responses=error_responses(400, 401, 403, 404, 422, 503))
-def set_live(name: str, update: LiveUpdate, store: StoreDep) -> dict[str, Any]:
-    return store.set_live(check_name(name), update.version)
+def set_live(name: str, update: LiveUpdate, store: StoreDep, actor: ActorDep) -> dict[str, Any]:
+    return store.set_live(check_name(name), update.version, actor=actor)
 
 
 @router.patch("/{name}/versions/{version}/segments/{segment}", response_model=Segment, dependencies=[FitScope, StrictQuery],
               summary="Label a segment (metadata only)", responses=error_responses(400, 401, 403, 404, 422, 503))
 def label_segment(name: str, version: Annotated[VersionNumber, Path()], segment: Annotated[SegmentNumber, Path()],
-                  update: LabelUpdate, store: StoreDep) -> dict[str, Any]:
-    return store.set_label(check_name(name), version, segment, update.label)
+                  update: LabelUpdate, store: StoreDep, actor: ActorDep) -> dict[str, Any]:
+    return store.set_label(check_name(name), version, segment, update.label, actor=actor)
+
+
+@router.delete("/{name}/versions/{version}", status_code=204, dependencies=[FitScope, StrictQuery],
+               summary="Erase a version that is not live (its artifact, report, labels and drift reports)",
+               responses=error_responses(400, 401, 403, 404, 409, 422, 503))
+def delete_version(name: str, version: Annotated[VersionNumber, Path()], store: StoreDep, actor: ActorDep) -> Response:
+    store.delete_version(check_name(name), version, actor=actor)
+    return Response(status_code=204)
+
+
+@router.delete("/{name}", status_code=204, dependencies=[AdminScope, StrictQuery],
+               summary="Erase a segmentation: every version, artifact, report, label and drift report",
+               responses=error_responses(400, 401, 403, 404, 422, 503))
+def delete_segmentation(name: str, store: StoreDep, actor: ActorDep) -> Response:
+    store.delete_segmentation(check_name(name), actor=actor)
+    return Response(status_code=204)

@@ -20,6 +20,7 @@ import hashlib
 import json
 import os
 import re
+import shutil
 import sqlite3
 import tempfile
 import threading
@@ -37,13 +38,17 @@ from service.core.assign import compile_bundle
 from service.core.bundle import Bundle
 from service.errors import (
     BundleCorrupt,
+    Conflict,
+    KeyNameTaken,
+    KeyNotFound,
     NoLiveVersion,
     SegmentationNotFound,
     SegmentNotFound,
     StoreUnavailable,
     VersionNotFound,
 )
-from service.store.base import LoadedVersion
+from service.store.base import LoadedVersion, StoredKey
+from service.store.keys import SHOWN_PREFIX, key_digest, new_key, new_salt
 
 SCHEMA = """
 CREATE TABLE IF NOT EXISTS segmentations (
@@ -81,7 +86,36 @@ CREATE TABLE IF NOT EXISTS drift_reports (
     report TEXT NOT NULL
 );
 CREATE INDEX IF NOT EXISTS drift_by_name ON drift_reports (name, version, seq);
+CREATE TABLE IF NOT EXISTS api_keys (
+    name TEXT PRIMARY KEY,
+    prefix TEXT NOT NULL,              -- the first characters of the key, to tell keys apart in a list
+    salt BLOB NOT NULL,
+    digest BLOB NOT NULL,              -- HMAC-SHA256(salt, key); the key itself is never stored
+    scopes TEXT NOT NULL,              -- JSON list
+    created_at TEXT NOT NULL,
+    created_by TEXT NOT NULL
+);
+CREATE TABLE IF NOT EXISTS counters (
+    name TEXT PRIMARY KEY,             -- 'keys': bumped by every key change, polled by running servers
+    value INTEGER NOT NULL
+);
+CREATE TABLE IF NOT EXISTS events (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT,
+    at TEXT NOT NULL,
+    actor TEXT NOT NULL,               -- a key name, 'local' (auth off), 'cli' (the shell) or 'server'
+    action TEXT NOT NULL,
+    name TEXT,                         -- the segmentation (NULL for key events)
+    version INTEGER,
+    details TEXT NOT NULL              -- JSON object; never record values
+);
+CREATE INDEX IF NOT EXISTS events_by_name ON events (name, seq);
+CREATE INDEX IF NOT EXISTS drift_by_time ON drift_reports (created_at);
 """
+
+# The actor of writes made from the shell (``segscore fit``, ``segscore keys ...``).
+CLI_ACTOR = "cli"
+# How many events ``get_segmentation`` returns (newest first).
+MAX_LISTED_EVENTS = 200
 
 
 def utc_now() -> str:
@@ -218,7 +252,8 @@ class FilesystemStore:
             raise StoreUnavailable(f"the store directory {self.root} is not writable")
 
     # ----------------------------------------------------------------- writes
-    def save_version(self, name: str, bundle: Bundle, *, make_live: bool | None) -> dict[str, Any]:
+    def save_version(self, name: str, bundle: Bundle, *, make_live: bool | None,
+                     actor: str = CLI_ACTOR) -> dict[str, Any]:
         """Persist ``bundle`` as the next version of ``name``; return its report."""
         folder = self.root / "segmentations" / name
         folder.mkdir(parents=True, exist_ok=True)
@@ -255,19 +290,25 @@ class FilesystemStore:
                 db.execute("UPDATE segmentations SET last_version=?, updated_at=?,"
                            " live_version=CASE WHEN ? THEN ? ELSE live_version END WHERE name=?",
                            (version, now, go_live, version, name))
+                self._record_event(db, actor, "fit", name, version, {"live": bool(go_live)}, at=now)
         except BaseException:
             staged.unlink(missing_ok=True)
             raise
         return self.version_report(name, version)
 
-    def set_live(self, name: str, version: int) -> dict[str, Any]:
+    def set_live(self, name: str, version: int, *, actor: str = CLI_ACTOR) -> dict[str, Any]:
         with self._writing(f"the live version of '{name}'") as db:
             self._require_version(db, name, version)
+            previous = db.execute("SELECT live_version FROM segmentations WHERE name=?", (name,)).fetchone()[0]
             db.execute("UPDATE segmentations SET live_version=?, updated_at=? WHERE name=?",
                        (version, utc_now(), name))
+            change = ("promote" if previous is None or version > previous
+                      else "roll_back" if version < previous else "unchanged")
+            self._record_event(db, actor, "set_live", name, version, {"previous": previous, "change": change})
         return self.get_segmentation(name)
 
-    def set_label(self, name: str, version: int, segment: int, label: str | None) -> dict[str, Any]:
+    def set_label(self, name: str, version: int, segment: int, label: str | None, *,
+                  actor: str = CLI_ACTOR) -> dict[str, Any]:
         with self._writing(f"a segment label of '{name}'") as db:
             row = self._require_version(db, name, version)
             if not 0 <= segment < row["k"]:
@@ -276,6 +317,7 @@ class FilesystemStore:
                        " ON CONFLICT (name, version, segment) DO UPDATE SET label=excluded.label",
                        (name, version, segment, label))
             db.execute("UPDATE segmentations SET updated_at=? WHERE name=?", (utc_now(), name))
+            self._record_event(db, actor, "label", name, version, {"segment": segment, "label": label})
         report = self.version_report(name, version)
         return report["segments"][segment]
 
@@ -310,12 +352,15 @@ class FilesystemStore:
             raise SegmentationNotFound(name)
         result = self._segmentation_row(rows[0])
         live = rows[0]["live_version"]
+        authors = self._version_authors(name)
         result["versions"] = [
             {"version": v["version"], "created_at": v["created_at"], "live": v["version"] == live, "k": v["k"],
-             "n_records": v["n_records"], "data_sha256": v["data_sha256"]}
+             "n_records": v["n_records"], "data_sha256": v["data_sha256"],
+             "created_by": authors.get(v["version"])}
             for v in self._query("SELECT version, created_at, k, n_records, data_sha256 FROM versions"
                                  " WHERE name=? ORDER BY version", (name,))
         ]
+        result["events"] = self.events(name, limit=MAX_LISTED_EVENTS)
         return result
 
     def version_report(self, name: str, version: int) -> dict[str, Any]:
@@ -378,3 +423,126 @@ class FilesystemStore:
             rows = self._query("SELECT report FROM drift_reports WHERE name=? AND version=? ORDER BY seq DESC"
                                " LIMIT ?", (name, version, limit))
         return [json.loads(r["report"]) for r in rows]
+
+    # ----------------------------------------------------------------- events (who did what)
+    @staticmethod
+    def _record_event(db: sqlite3.Connection, actor: str, action: str, name: str | None, version: int | None,
+                      details: dict[str, Any], *, at: str | None = None) -> None:
+        """Append an event inside the caller's write transaction, so the write and its record commit together."""
+        db.execute("INSERT INTO events (at, actor, action, name, version, details) VALUES (?, ?, ?, ?, ?, ?)",
+                   (at or utc_now(), actor, action, name, version, json.dumps(details, allow_nan=False)))
+
+    def _since_last_deletion(self, name: str) -> int:
+        """The seq of the last deletion of segmentation ``name`` (0 if never): a later segmentation of the same
+        name starts its history there."""
+        rows = self._query("SELECT MAX(seq) AS seq FROM events WHERE name=? AND action='delete_segmentation'",
+                           (name,))
+        return rows[0]["seq"] or 0
+
+    def events(self, name: str | None, *, limit: int) -> list[dict[str, Any]]:
+        """Events of segmentation ``name`` (its deletion and everything since), or key events for None;
+        newest first."""
+        if name is None:
+            rows = self._query("SELECT * FROM events WHERE name IS NULL ORDER BY seq DESC LIMIT ?", (limit,))
+        else:
+            rows = self._query("SELECT * FROM events WHERE name=? AND seq>=? ORDER BY seq DESC LIMIT ?",
+                               (name, self._since_last_deletion(name), limit))
+        return [{"at": r["at"][:19] + "Z", "actor": r["actor"], "action": r["action"], "version": r["version"],
+                 "details": json.loads(r["details"])} for r in rows]
+
+    def _version_authors(self, name: str) -> dict[int, str]:
+        rows = self._query("SELECT version, actor FROM events WHERE name=? AND action='fit' AND seq>? ORDER BY seq",
+                           (name, self._since_last_deletion(name)))
+        return {r["version"]: r["actor"] for r in rows}
+
+    # ----------------------------------------------------------------- deletion (personal data)
+    def _version_files(self, name: str, version: int) -> list[Path]:
+        """Every file of one version, whatever the artifact layout (all are named v<number>.*)."""
+        return sorted((self.root / "segmentations" / name).glob(f"v{version:06d}.*"))
+
+    def _forget_cached(self, name: str, version: int | None = None) -> None:
+        with self._cache_lock:
+            for key in [k for k in self._cache if k[0] == name and (version is None or k[1] == version)]:
+                del self._cache[key]
+
+    def delete_version(self, name: str, version: int, *, actor: str = CLI_ACTOR) -> None:
+        """Erase one version: its index row, labels, drift reports and files. The live version is refused (409).
+
+        The index rows go first (one transaction), then the files; a crash in between leaves unlisted files
+        that no request can reach and that a second deletion of the segmentation removes."""
+        with self._writing(f"the deletion of '{name}' version {version}") as db:
+            self._require_version(db, name, version)
+            live = db.execute("SELECT live_version FROM segmentations WHERE name=?", (name,)).fetchone()[0]
+            if live == version:
+                raise Conflict(f"version {version} of '{name}' is live; make another version live before "
+                               "deleting it (or delete the whole segmentation)")
+            reports = db.execute("DELETE FROM drift_reports WHERE name=? AND version=?", (name, version)).rowcount
+            db.execute("DELETE FROM labels WHERE name=? AND version=?", (name, version))
+            db.execute("DELETE FROM versions WHERE name=? AND version=?", (name, version))
+            db.execute("UPDATE segmentations SET updated_at=? WHERE name=?", (utc_now(), name))
+            self._record_event(db, actor, "delete_version", name, version, {"drift_reports": reports})
+        self._forget_cached(name, version)
+        for path in self._version_files(name, version):
+            path.unlink(missing_ok=True)
+
+    def delete_segmentation(self, name: str, *, actor: str = CLI_ACTOR) -> None:
+        """Erase a segmentation: every version, artifact, report, label and drift report. The event stays."""
+        with self._writing(f"the deletion of '{name}'") as db:
+            if db.execute("SELECT 1 FROM segmentations WHERE name=?", (name,)).fetchone() is None:
+                raise SegmentationNotFound(name)
+            versions = [r[0] for r in db.execute("SELECT version FROM versions WHERE name=? ORDER BY version",
+                                                 (name,))]
+            reports = db.execute("DELETE FROM drift_reports WHERE name=?", (name,)).rowcount
+            db.execute("DELETE FROM labels WHERE name=?", (name,))
+            db.execute("DELETE FROM versions WHERE name=?", (name,))
+            db.execute("DELETE FROM segmentations WHERE name=?", (name,))
+            self._record_event(db, actor, "delete_segmentation", name, None,
+                               {"versions": versions, "drift_reports": reports})
+        self._forget_cached(name)
+        shutil.rmtree(self.root / "segmentations" / name, ignore_errors=True)
+
+    def prune_drift_reports(self, older_than: str, *, actor: str = "server") -> int:
+        """Delete drift reports created before ``older_than`` (ISO UTC); return how many went."""
+        with self._writing("the drift-report retention") as db:
+            gone = db.execute("DELETE FROM drift_reports WHERE created_at < ?", (older_than,)).rowcount
+            if gone:
+                self._record_event(db, actor, "prune_drift_reports", None, None,
+                                   {"deleted": gone, "older_than": older_than})
+        return gone
+
+    # ----------------------------------------------------------------- API keys
+    def _bump_keys_counter(self, db: sqlite3.Connection) -> None:
+        db.execute("INSERT INTO counters (name, value) VALUES ('keys', 1)"
+                   " ON CONFLICT (name) DO UPDATE SET value = value + 1")
+
+    def create_key(self, name: str, scopes: list[str], *, actor: str = CLI_ACTOR) -> str:
+        """Create a key; return it (the only time it exists in clear). A taken name raises KeyNameTaken."""
+        key, salt = new_key(), new_salt()
+        with self._writing(f"the API key '{name}'") as db:
+            if db.execute("SELECT 1 FROM api_keys WHERE name=?", (name,)).fetchone() is not None:
+                raise KeyNameTaken(name)
+            db.execute("INSERT INTO api_keys (name, prefix, salt, digest, scopes, created_at, created_by)"
+                       " VALUES (?, ?, ?, ?, ?, ?, ?)",
+                       (name, key[:SHOWN_PREFIX], salt, key_digest(salt, key), json.dumps(sorted(scopes)),
+                        utc_now(), actor))
+            self._bump_keys_counter(db)
+            self._record_event(db, actor, "create_key", None, None, {"key": name, "scopes": sorted(scopes)})
+        return key
+
+    def revoke_key(self, name: str, *, actor: str = CLI_ACTOR) -> None:
+        with self._writing(f"the revocation of API key '{name}'") as db:
+            if db.execute("DELETE FROM api_keys WHERE name=?", (name,)).rowcount == 0:
+                raise KeyNotFound(name)
+            self._bump_keys_counter(db)
+            self._record_event(db, actor, "revoke_key", None, None, {"key": name})
+
+    def stored_keys(self) -> list[StoredKey]:
+        rows = self._query("SELECT * FROM api_keys ORDER BY name")
+        return [StoredKey(name=r["name"], prefix=r["prefix"], salt=r["salt"], digest=r["digest"],
+                          scopes=tuple(json.loads(r["scopes"])), created_at=r["created_at"][:19] + "Z")
+                for r in rows]
+
+    def keys_counter(self) -> int:
+        """A number that changes whenever a key is created or revoked (cheap to poll)."""
+        rows = self._query("SELECT value FROM counters WHERE name='keys'")
+        return rows[0]["value"] if rows else 0

@@ -23,6 +23,7 @@ from sklearn.datasets import make_blobs
 from schemas import DriftReport
 from service.app import create_app
 from service.settings import Settings
+from service.store import FilesystemStore
 from tests.conftest import walk_numbers
 
 NAME = "shoppers"
@@ -264,18 +265,20 @@ def test_no_live_version_is_409(client):
 
 
 def test_drift_scope_is_required(tmp_path):
-    keys = {"f" * 16: ["fit"], "a" * 16: ["assign", "read"], "d" * 16: ["drift"]}
-    with TestClient(create_app(Settings(store_dir=tmp_path / "s", api_keys=keys))) as client:
+    store = FilesystemStore(tmp_path / "s")
+    fit_key, assign_key, drift_key = (store.create_key(name, scopes) for name, scopes in
+                                      (("f", ["fit"]), ("a", ["assign", "read"]), ("d", ["drift"])))
+    with TestClient(create_app(Settings(store_dir=tmp_path / "s"))) as client:
         body = {"records": records(draw(3000, 1)), "k": 3, "components": 2}
         assert client.post(f"/v1/segmentations/{NAME}/fit", json=body,
-                           headers={"authorization": "Bearer " + "f" * 16}).status_code == 201
+                           headers={"authorization": "Bearer " + fit_key}).status_code == 201
         batch = {"records": records(draw(60, seed=114))}
         url = f"/v1/segmentations/{NAME}/drift"
         assert client.post(url, json=batch).status_code == 401
-        assert client.post(url, json=batch, headers={"authorization": "Bearer " + "a" * 16}).status_code == 403
-        assert client.get(url, headers={"authorization": "Bearer " + "a" * 16}).status_code == 403
-        assert client.post(url, json=batch, headers={"authorization": "Bearer " + "d" * 16}).status_code == 200
-        assert len(client.get(url, headers={"authorization": "Bearer " + "d" * 16}).json()["reports"]) == 1
+        assert client.post(url, json=batch, headers={"authorization": "Bearer " + assign_key}).status_code == 403
+        assert client.get(url, headers={"authorization": "Bearer " + assign_key}).status_code == 403
+        assert client.post(url, json=batch, headers={"authorization": "Bearer " + drift_key}).status_code == 200
+        assert len(client.get(url, headers={"authorization": "Bearer " + drift_key}).json()["reports"]) == 1
 
 
 # --------------------------------------------------------------------------- listing, versions, persistence

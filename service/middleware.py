@@ -1,0 +1,114 @@
+"""Pure ASGI middleware: the request id, a time limit on slow request bodies, and a last catch for
+unexpected errors that answers a plain 500 instead of letting the server drop the connection."""
+
+from __future__ import annotations
+
+import logging
+import traceback
+
+import anyio
+import orjson
+
+from service.errors import BodyTimeout
+from service.logs import request_id_from, request_id_var
+
+log = logging.getLogger("segscore")
+
+INTERNAL_ERROR_BODY = orjson.dumps({"detail": "internal error; see the server log (quote the X-Request-ID)"})
+
+
+class HttpMiddleware:
+    """Base: ``handle`` sees HTTP requests only; other ASGI traffic (lifespan) passes straight through."""
+
+    def __init__(self, app) -> None:
+        self.app = app
+
+    async def __call__(self, scope, receive, send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+        else:
+            await self.handle(scope, receive, send)
+
+    async def handle(self, scope, receive, send) -> None:
+        raise NotImplementedError
+
+
+class RequestIdMiddleware(HttpMiddleware):
+    """Set the request id for the request's duration (log lines read it) and send it back as ``X-Request-ID``."""
+
+    async def handle(self, scope, receive, send) -> None:
+        sent = next((value.decode("latin-1") for name, value in scope["headers"] if name == b"x-request-id"), None)
+        request_id = request_id_from(sent)
+        token = request_id_var.set(request_id)
+
+        async def send_with_id(message) -> None:
+            if message["type"] == "http.response.start":
+                headers = [(k, v) for k, v in message.get("headers", []) if k.lower() != b"x-request-id"]
+                headers.append((b"x-request-id", request_id.encode()))
+                message = {**message, "headers": headers}
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_with_id)
+        finally:
+            request_id_var.reset(token)
+
+
+class BodyReadTimeout(HttpMiddleware):
+    """A request body that sends nothing for ``seconds`` fails with BodyTimeout (408, connection closed).
+
+    Only the body is timed: once it is complete, later ``receive`` calls (waiting for a disconnect) are
+    passed through untouched. A client that drips its *headers* never reaches the application; see the
+    README for what a reverse proxy must add for that."""
+
+    def __init__(self, app, seconds: float) -> None:
+        super().__init__(app)
+        self.seconds = seconds
+
+    async def handle(self, scope, receive, send) -> None:
+        body_done = False
+
+        async def timed_receive():
+            nonlocal body_done
+            if body_done:
+                return await receive()
+            try:
+                with anyio.fail_after(self.seconds):
+                    message = await receive()
+            except TimeoutError:
+                raise BodyTimeout(self.seconds) from None
+            if message["type"] != "http.request" or not message.get("more_body", False):
+                body_done = True
+            return message
+
+        await self.app(scope, timed_receive, send)
+
+
+class ErrorBoundary(HttpMiddleware):
+    """Turns an unexpected exception into a JSON 500 and does not re-raise it.
+
+    Starlette's outermost error middleware re-raises after answering, and uvicorn then closes the
+    connection without ``Connection: close``, so a pooled client's next request fails. Caught here, the
+    response is complete and the keep-alive connection stays usable. The log line has the exception's type
+    and the code location, not its message (which may quote a value from the request)."""
+
+    async def handle(self, scope, receive, send) -> None:
+        started = False
+
+        async def tracking_send(message) -> None:
+            nonlocal started
+            if message["type"] == "http.response.start":
+                started = True
+            await send(message)
+
+        try:
+            await self.app(scope, receive, tracking_send)
+        except Exception as exc:
+            where = "".join(traceback.format_tb(exc.__traceback__))
+            log.error("unexpected %s on %s %s\n%s", type(exc).__name__, scope["method"], scope["path"], where)
+            if started:
+                raise  # half a response is out: only closing the connection is left (the server does it)
+            await send({"type": "http.response.start", "status": 500,
+                        "headers": [(b"content-type", b"application/json"),
+                                    (b"content-length", str(len(INTERNAL_ERROR_BODY)).encode())]})
+            await send({"type": "http.response.body", "body": INTERNAL_ERROR_BODY})
