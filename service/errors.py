@@ -15,7 +15,7 @@
     ├── InvalidInput             well-formed body, unusable content
     │   ├── InvalidRecords       per-record problems (index and field)
     │   └── FeatureMismatch      columns the version needs are absent
-    ├── BundleCorrupt            stored artifact fails its SHA-256 check
+    ├── BundleCorrupt            stored artifact missing, fails its SHA-256 check, or unreadable
     └── StoreUnavailable
 """
 
@@ -128,11 +128,11 @@ class FeatureMismatch(InvalidInput):
 
 
 class BundleCorrupt(ServiceError):
-    """A stored artifact does not match its recorded SHA-256; that version cannot be loaded."""
+    """A stored artifact is missing, fails its SHA-256 check or cannot be read; that version cannot be loaded."""
 
-    def __init__(self, name: str, version: int) -> None:
+    def __init__(self, name: str, version: int, reason: str = "fails its SHA-256 check") -> None:
         super().__init__(
-            f"the stored artifact of '{name}' version {version} fails its SHA-256 check; "
+            f"the stored artifact of '{name}' version {version} {reason}; "
             "the version cannot be used (other versions are unaffected)"
         )
 

@@ -59,17 +59,17 @@ def crash(store_dir: str, bundle_path: str, point: str, signal_file: str) -> Non
 
         filesystem.joblib.dump = dump
     elif point in ("artifact-renamed", "report-renamed"):
-        # os.replace calls in save_version: 1 temp -> staged artifact, 2 staged -> vN.joblib (inside the
-        # index transaction), 3 temp -> vN.json.
+        # os.replace calls in save_version: 1 temp -> staged serving artifact, 2 temp -> staged analysts' file,
+        # 3 staged -> vN.npz and 4 staged -> vN.joblib (inside the index transaction), 5 temp -> vN.json.
         real_replace = os.replace
         calls = [0]
 
         def replace(src, dst):
             calls[0] += 1
-            if point == "artifact-renamed" and calls[0] == 3:
+            if point == "artifact-renamed" and calls[0] == 5:
                 _hold(signal_file)
             real_replace(src, dst)
-            if point == "report-renamed" and calls[0] == 3:
+            if point == "report-renamed" and calls[0] == 5:
                 _hold(signal_file)
 
         filesystem.os.replace = replace
