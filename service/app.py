@@ -109,6 +109,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     )
     app.state.settings = settings
     app.state.store = FilesystemStore(settings.store_dir, cache_size=settings.bundle_cache_size)
+    legacy = app.state.store.legacy_versions()
+    if legacy:
+        log.warning("%d version(s) are stored in the legacy pickle format, which the server does not load "
+                    "(first: '%s' version %d); convert them once with 'segscore upgrade-store --store %s'",
+                    len(legacy), *legacy[0], settings.store_dir)
     app.state.metrics = metrics
     for router in (segmentations.router, assign.router, drift.router):
         app.include_router(router, prefix="/v1")

@@ -85,7 +85,7 @@ def dumps(value: Any) -> bytes:
     """The artifact bytes of ``value`` (a registered dataclass). Deterministic."""
     encoder = _Encoder()
     tree = encoder.node(value, type(value).__name__)
-    manifest = json.dumps({"format": FORMAT, "root": tree}, allow_nan=False, sort_keys=True).encode()
+    manifest = json.dumps({"format": FORMAT, "root": tree}, allow_nan=False).encode()
     buffer = io.BytesIO()
     with zipfile.ZipFile(buffer, "w", compression=zipfile.ZIP_DEFLATED) as archive:
         archive.writestr(zipfile.ZipInfo(MANIFEST, _ZIP_DATE), manifest, compress_type=zipfile.ZIP_DEFLATED)
