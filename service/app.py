@@ -20,6 +20,8 @@ from service.errors import (
     BadBody,
     BundleCorrupt,
     Conflict,
+    FitTimeLimit,
+    FitWorkerDied,
     InvalidInput,
     MissingKey,
     NotFound,
@@ -45,6 +47,8 @@ STATUS_BY_ERROR: dict[type[ServiceError], int] = {
     PayloadTooLarge: 413,
     InvalidInput: 422,
     BundleCorrupt: 500,
+    FitTimeLimit: 504,     # the server's own worker did not answer in time (documented in the README)
+    FitWorkerDied: 503,    # a resource failure of the server (killed, out of memory): retry later
     StoreUnavailable: 503,
     ServiceError: 500,
 }
