@@ -258,8 +258,12 @@ class FilesystemStore:
             raise StoreUnavailable(f"a version of '{name}' could not be written to the store: "
                                    f"{exc.strerror or type(exc).__name__}") from None
         finally:
-            staged_serving.unlink(missing_ok=True)
-            staged_fitted.unlink(missing_ok=True)
+            for staged in (staged_serving, staged_fitted):
+                try:
+                    staged.unlink(missing_ok=True)
+                except OSError:
+                    pass    # a read-only file system answers EROFS even for a missing file; leftovers are
+                            # removed when a store opens (_remove_crash_leftovers)
         return self.version_report(name, version)
 
     def set_live(self, name: str, version: int) -> dict[str, Any]:
