@@ -53,6 +53,7 @@ from service.errors import (
 from service.store import artifacts
 from service.store.base import LoadedVersion
 
+SQLITE_MAX_INTEGER = 2**63 - 1
 SERVING_SUFFIX = ".npz"
 FITTED_SUFFIX = ".joblib"     # scikit-learn objects for analysts; also the artifact of a legacy version
 
@@ -294,7 +295,9 @@ class FilesystemStore:
 
     # ----------------------------------------------------------------- reads
     def _require_version(self, db: sqlite3.Connection, name: str, version: int) -> sqlite3.Row:
-        row = db.execute("SELECT * FROM versions WHERE name=? AND version=?", (name, version)).fetchone()
+        # SQLite cannot even bind an int past 2**63 - 1 (OverflowError); no version has such a number anyway.
+        number = version if 0 < version <= SQLITE_MAX_INTEGER else 0
+        row = db.execute("SELECT * FROM versions WHERE name=? AND version=?", (name, number)).fetchone()
         if row is None:
             if db.execute("SELECT 1 FROM segmentations WHERE name=?", (name,)).fetchone() is None:
                 raise SegmentationNotFound(name)
