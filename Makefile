@@ -3,7 +3,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed-stamp
 
-.PHONY: demo test bench clean
+.PHONY: demo test bench load clean
 
 $(STAMP): pyproject.toml
 	python3 -m venv $(VENV)
@@ -22,6 +22,9 @@ bench: $(STAMP)  ## in-process benchmarks (figures for the README)
 	$(BIN)/python bench/bench_fit.py
 	$(BIN)/python bench/bench_assign.py
 	$(BIN)/python bench/bench_drift.py
+
+load: $(STAMP)  ## HTTP load on 127.0.0.1 (~3 min, stops by itself): assign p99 during a fit, 60 s mixed traffic
+	$(BIN)/python bench/load_mixed.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info
