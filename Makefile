@@ -3,7 +3,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed-stamp
 
-.PHONY: demo test bench calibrate clean
+.PHONY: demo test bench calibrate load clean
 
 # `make demo` and `make test` started at once on a fresh clone must not both build .venv: the set-up runs
 # under an exclusive lock (flock, util-linux), and whoever gets it second finds the stamp fresh and skips.
@@ -34,6 +34,9 @@ bench: $(STAMP)  ## in-process benchmarks (figures for the README)
 
 calibrate: $(STAMP)  ## calibration sweeps of the outlier flag and the drift p-values (figures for the README)
 	$(BIN)/python bench/calibrate.py
+
+load: $(STAMP)  ## HTTP load on 127.0.0.1 (~3 min, stops by itself): assign p99 during a fit, 60 s mixed traffic
+	$(BIN)/python bench/load_mixed.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info .setup.lock

@@ -29,6 +29,8 @@ from service.errors import (
     BodyTimeout,
     BundleCorrupt,
     Conflict,
+    FitTimeLimit,
+    FitWorkerDied,
     InvalidInput,
     MissingKey,
     NotFound,
@@ -58,6 +60,8 @@ STATUS_BY_ERROR: dict[type[ServiceError], int] = {
     UnsupportedMediaType: 415,
     InvalidInput: 422,
     BundleCorrupt: 500,
+    FitTimeLimit: 504,     # the server's own worker did not answer in time (documented in the README)
+    FitWorkerDied: 503,    # a resource failure of the server (killed, out of memory): retry later
     StoreUnavailable: 503,
     ServiceError: 500,
 }
@@ -188,6 +192,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.store = FilesystemStore(settings.store_dir, cache_size=settings.bundle_cache_size)
     app.state.keyring = KeyRing(app.state.store, open_without_keys=is_loopback(settings.host))
+    legacy = app.state.store.legacy_versions()
+    if legacy:
+        log.warning("%d version(s) are stored in the legacy pickle format, which the server does not load "
+                    "(first: '%s' version %d); convert them once with 'segscore upgrade-store --store %s'",
+                    len(legacy), *legacy[0], settings.store_dir)
     app.state.metrics = metrics
     for router in (segmentations.router, assign.router, drift.router):
         app.include_router(router, prefix="/v1")

@@ -272,5 +272,24 @@ def events(store_dir: Path | None, name: str | None, limit: int) -> None:
         click.echo(json.dumps(event))
 
 
+@main.command("upgrade-store")
+@click.option("--store", "store_dir", type=click.Path(path_type=Path), default=None)
+def upgrade_store(store_dir: Path | None) -> None:
+    """Convert versions written in the legacy pickle format into pickle-free serving artifacts (run once).
+
+    This reads the old pickled files, so run it only on a store whose files you trust."""
+    from service.errors import ServiceError
+    from service.store import FilesystemStore
+
+    settings = _settings(store_dir=store_dir)
+    try:
+        converted = FilesystemStore(settings.store_dir).upgrade_legacy_versions()
+    except ServiceError as exc:
+        raise click.ClickException(str(exc.detail)) from None
+    for name, version in converted:
+        click.echo(f"converted '{name}' version {version}")
+    click.echo(f"{len(converted)} version(s) converted")
+
+
 if __name__ == "__main__":
     main()

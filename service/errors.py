@@ -19,7 +19,9 @@
     ├── InvalidInput             well-formed body, unusable content
     │   ├── InvalidRecords       per-record problems (index and field)
     │   └── FeatureMismatch      columns the version needs are absent
-    ├── BundleCorrupt            stored artifact fails its SHA-256 check
+    ├── FitTimeLimit             a fit ran past SEGSCORE_FIT_TIME_LIMIT_SECONDS; its worker was stopped
+    ├── FitWorkerDied            the worker process of a fit ended without an answer (killed, out of memory)
+    ├── BundleCorrupt            stored artifact missing, fails its SHA-256 check, or unreadable
     └── StoreUnavailable
 """
 
@@ -161,13 +163,31 @@ class FeatureMismatch(InvalidInput):
 
 
 class BundleCorrupt(ServiceError):
-    """A stored artifact does not match its recorded SHA-256; that version cannot be loaded."""
+    """A stored artifact is missing, fails its SHA-256 check or cannot be read; that version cannot be loaded."""
 
-    def __init__(self, name: str, version: int) -> None:
+    def __init__(self, name: str, version: int, reason: str = "fails its SHA-256 check") -> None:
         super().__init__(
-            f"the stored artifact of '{name}' version {version} fails its SHA-256 check; "
+            f"the stored artifact of '{name}' version {version} {reason}; "
             "the version cannot be used (other versions are unaffected)"
         )
+
+
+class FitTimeLimit(ServiceError):
+    """The fit ran past its time limit; its worker was stopped and nothing was written."""
+
+    def __init__(self, seconds: float) -> None:
+        super().__init__(f"the fit did not finish within {seconds:g} s (setting SEGSCORE_FIT_TIME_LIMIT_SECONDS); "
+                         "its worker was stopped and nothing was written; fit fewer records or a smaller k range")
+
+
+class FitWorkerDied(ServiceError):
+    """The worker process of a fit ended without an answer; nothing was written."""
+
+    def __init__(self, exitcode: int | None) -> None:
+        how = (f"was killed by signal {-exitcode}" if exitcode is not None and exitcode < 0
+               else f"exited with code {exitcode}")
+        super().__init__(f"the fit worker process {how} (for instance out of memory) before answering; "
+                         "nothing was written; the fit can be retried")
 
 
 class StoreUnavailable(ServiceError):

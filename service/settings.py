@@ -56,7 +56,9 @@ class Settings(BaseSettings):
     bundle_cache_size: int = Field(16, ge=1)
     # Batches up to this size are assigned on the event loop; larger ones in a worker thread.
     inline_assign_rows: int = Field(2_000, ge=1)
-    fit_concurrency: int = Field(1, ge=1)
+    fit_concurrency: int = Field(1, ge=1)     # fits running at once, each in its own worker process
+    # A fit still running after this many seconds is stopped (its worker killed, nothing written; 504).
+    fit_time_limit_seconds: float = Field(1800.0, gt=0)
 
     drift_min_rows: int = Field(50, ge=2)
     drift_alpha: float = Field(0.01, gt=0, lt=0.5)

@@ -31,7 +31,7 @@ from service.api.validation import (
     validate_model,
 )
 from service.core.bundle import FitConfig
-from service.core.fit import fit_bundle, unusable_features
+from service.core.fit import unusable_features
 from service.core.frame import (
     batch_from_frame,
     batch_from_json,
@@ -43,6 +43,7 @@ from service.core.frame import (
 )
 from service.deps import ActorDep, AdminScope, FitScope, ReadScope, SettingsDep, StoreDep
 from service.errors import InvalidInput, PayloadTooLarge, RecordProblem
+from service.fitting import fit_in_worker
 
 router = APIRouter(prefix="/segmentations", tags=["segmentations"])
 
@@ -239,7 +240,9 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
             _prepare_fit, body, csv, request.query_params, settings)
 
     def fit_and_save() -> dict[str, Any]:
-        bundle = fit_bundle(values, config, max_agglomerative_rows=settings.max_agglomerative_rows)
+        # The fit runs in a worker process (service.fitting); the store is written here, by the server.
+        bundle = fit_in_worker(values, config, max_agglomerative_rows=settings.max_agglomerative_rows,
+                               time_limit=settings.fit_time_limit_seconds)
         return store.save_version(name, bundle, make_live=make_live, actor=actor)
 
     report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)

@@ -239,13 +239,17 @@ def jackson_mudholkar_limit(discarded_eigenvalues: np.ndarray, quantile: float) 
     lam = lam[lam > 0]
     if lam.size == 0:
         return 0.0
+    # Q scales linearly with the eigenvalues (h0 is scale-free; theta_i scales as s^i): compute on eigenvalues
+    # divided by the largest, where theta_2^2 cannot underflow nor theta_3 overflow, and scale back at the end.
+    unit = float(lam.max())
+    lam = lam / unit
     t1, t2, t3 = (float(np.sum(lam ** i)) for i in (1, 2, 3))
     h0 = 1.0 - 2.0 * t1 * t3 / (3.0 * t2 ** 2)
     c = float(norm.ppf(quantile))
     if abs(h0) < 1e-6:
-        return float(np.sqrt(t1 * np.exp(c * np.sqrt(2.0 * t2) / t1 - t2 / t1 ** 2)))
+        return float(np.sqrt(unit) * np.sqrt(t1 * np.exp(c * np.sqrt(2.0 * t2) / t1 - t2 / t1 ** 2)))
     base = c * h0 * np.sqrt(2.0 * t2) / t1 + 1.0 + t2 * h0 * (h0 - 1.0) / t1 ** 2
-    return float(np.sqrt(t1 * base ** (1.0 / h0)))
+    return float(np.sqrt(unit) * np.sqrt(t1 * base ** (1.0 / h0)))
 
 
 # --------------------------------------------------------------------------- the fit

@@ -7,13 +7,14 @@ from typing import Any, Protocol
 
 from service.core.assign import CompiledBundle
 from service.core.bundle import Bundle
+from service.core.serving import ServingBundle
 
 
 @dataclass(frozen=True)
 class LoadedVersion:
     name: str
     version: int
-    bundle: Bundle
+    bundle: ServingBundle            # the fitted bundle without its scikit-learn objects
     compiled: CompiledBundle
 
 

@@ -1,16 +1,24 @@
-"""Local store: one directory per segmentation, joblib artifacts, JSON reports, a SQLite index.
+"""Local store: one directory per segmentation, pickle-free serving artifacts, JSON reports, a SQLite index.
 
 Layout under the store root::
 
-    index.sqlite3                      segmentations, versions, labels, live pointer, drift reports
-    segmentations/<name>/v000003.joblib    the immutable fitted bundle
-    segmentations/<name>/v000003.json      its fit report (identity fields included)
+    index.sqlite3                          segmentations, versions, labels, live pointer, drift reports
+    segmentations/<name>/v000003.npz       the serving artifact: arrays + JSON manifest, no pickle
+                                           (``service.store.artifacts``); its SHA-256 is in the index
+    segmentations/<name>/v000003.joblib    the fitted scikit-learn objects, for analysts; the server never
+                                           reads it
+    segmentations/<name>/v000003.json      the fit report (identity fields included)
 
-A version becomes visible only when its index row commits, and that happens last: artifact and
+A version becomes visible only when its index row commits, and that happens last: artifacts and
 report are written to temporary files, fsynced and renamed into place first. A crash before the
-commit leaves at most an unlisted file that the next fit of that number overwrites. Version numbers
+commit leaves at most unlisted files that the next fit of that number overwrites. Version numbers
 come from a per-segmentation counter bumped inside the same ``BEGIN IMMEDIATE`` transaction, so
 concurrent fits (threads or processes) never share a number.
+
+Stores written before the serving artifact existed list a ``.joblib`` file as a version's artifact. The
+server does not unpickle it (a pickle is code): such a version answers an error that names it until
+``segscore upgrade-store`` (``FilesystemStore.upgrade_legacy_versions``) converts it, once, on the operator's
+say-so.
 """
 
 from __future__ import annotations
@@ -34,8 +42,8 @@ from typing import Any, Iterator
 
 import joblib
 
-from service.core.assign import compile_bundle
 from service.core.bundle import Bundle
+from service.core.serving import serving_version
 from service.errors import (
     BundleCorrupt,
     Conflict,
@@ -47,8 +55,13 @@ from service.errors import (
     StoreUnavailable,
     VersionNotFound,
 )
+from service.store import artifacts
 from service.store.base import LoadedVersion, StoredKey
 from service.store.keys import SHOWN_PREFIX, key_digest, new_key, new_salt
+
+SQLITE_MAX_INTEGER = 2**63 - 1
+SERVING_SUFFIX = ".npz"
+FITTED_SUFFIX = ".joblib"     # scikit-learn objects for analysts; also the artifact of a legacy version
 
 SCHEMA = """
 CREATE TABLE IF NOT EXISTS segmentations (
@@ -254,13 +267,19 @@ class FilesystemStore:
     # ----------------------------------------------------------------- writes
     def save_version(self, name: str, bundle: Bundle, *, make_live: bool | None,
                      actor: str = CLI_ACTOR) -> dict[str, Any]:
-        """Persist ``bundle`` as the next version of ``name``; return its report."""
+        """Persist ``bundle`` as the next version of ``name``; return its report.
+
+        A write the file system refuses (read-only, full, no permission) is StoreUnavailable."""
+        serving = artifacts.dumps(serving_version(bundle))
         folder = self.root / "segmentations" / name
-        folder.mkdir(parents=True, exist_ok=True)
-        staged = folder / f".staged-{uuid.uuid4().hex}.joblib"
-        # The heavy write happens outside the index lock; the rename to the numbered name inside it.
-        bundle_sha = _write_atomic(staged, lambda handle: joblib.dump(bundle, handle, compress=3))
+        token = uuid.uuid4().hex
+        staged_serving = folder / f".staged-{token}{SERVING_SUFFIX}"
+        staged_fitted = folder / f".staged-{token}{FITTED_SUFFIX}"
         try:
+            folder.mkdir(parents=True, exist_ok=True)
+            # The heavy writes happen outside the index lock; the renames to numbered names inside it.
+            bundle_sha = _write_atomic(staged_serving, lambda handle: handle.write(serving))
+            _write_atomic(staged_fitted, lambda handle: joblib.dump(bundle, handle, compress=3))
             with self._writing(f"a version of '{name}'") as db:
                 now = utc_now()
                 row = db.execute("SELECT last_version, live_version FROM segmentations WHERE name=?",
@@ -277,8 +296,9 @@ class FilesystemStore:
                     "name": name, "version": version, "created_at": now[:19] + "Z",
                     **bundle.report, "bundle_sha256": bundle_sha,
                 }
-                artifact = folder / f"v{version:06d}.joblib"
-                os.replace(staged, artifact)
+                artifact = folder / f"v{version:06d}{SERVING_SUFFIX}"
+                os.replace(staged_serving, artifact)
+                os.replace(staged_fitted, folder / f"v{version:06d}{FITTED_SUFFIX}")
                 text = json.dumps(report, allow_nan=False)  # no NaN/Infinity may reach a stored report
                 _write_atomic(folder / f"v{version:06d}.json", lambda handle: handle.write(text.encode()))
                 _fsync_dir(folder)
@@ -291,9 +311,16 @@ class FilesystemStore:
                            " live_version=CASE WHEN ? THEN ? ELSE live_version END WHERE name=?",
                            (version, now, go_live, version, name))
                 self._record_event(db, actor, "fit", name, version, {"live": bool(go_live)}, at=now)
-        except BaseException:
-            staged.unlink(missing_ok=True)
-            raise
+        except OSError as exc:
+            raise StoreUnavailable(f"a version of '{name}' could not be written to the store: "
+                                   f"{exc.strerror or type(exc).__name__}") from None
+        finally:
+            for staged in (staged_serving, staged_fitted):
+                try:
+                    staged.unlink(missing_ok=True)
+                except OSError:
+                    pass    # a read-only file system answers EROFS even for a missing file; leftovers are
+                            # removed when a store opens (_remove_crash_leftovers)
         return self.version_report(name, version)
 
     def set_live(self, name: str, version: int, *, actor: str = CLI_ACTOR) -> dict[str, Any]:
@@ -330,7 +357,9 @@ class FilesystemStore:
 
     # ----------------------------------------------------------------- reads
     def _require_version(self, db: sqlite3.Connection, name: str, version: int) -> sqlite3.Row:
-        row = db.execute("SELECT * FROM versions WHERE name=? AND version=?", (name, version)).fetchone()
+        # SQLite cannot even bind an int past 2**63 - 1 (OverflowError); no version has such a number anyway.
+        number = version if 0 < version <= SQLITE_MAX_INTEGER else 0
+        row = db.execute("SELECT * FROM versions WHERE name=? AND version=?", (name, number)).fetchone()
         if row is None:
             if db.execute("SELECT 1 FROM segmentations WHERE name=?", (name,)).fetchone() is None:
                 raise SegmentationNotFound(name)
@@ -391,7 +420,7 @@ class FilesystemStore:
         return int(rows[0]["live_version"])
 
     def load(self, name: str, version: int) -> LoadedVersion:
-        """The verified, compiled bundle of a version (cached in memory, LRU)."""
+        """The verified serving artifact of a version (cached in memory, LRU). Never unpickles anything."""
         key = (name, version)
         with self._cache_lock:
             hit = self._cache.get(key)
@@ -399,19 +428,65 @@ class FilesystemStore:
                 self._cache.move_to_end(key)
                 return hit
         row = self._require_version(self._db(), name, version)
+        if not row["artifact"].endswith(SERVING_SUFFIX):
+            raise BundleCorrupt(name, version, "is in the legacy pickle format, which the server does not load; "
+                                "run 'segscore upgrade-store' once to convert it")
         path = self.root / "segmentations" / name / row["artifact"]
         try:
-            if _sha256_file(path) != row["bundle_sha256"]:
-                raise BundleCorrupt(name, version)
-            bundle = joblib.load(path)
-        except FileNotFoundError:
-            raise BundleCorrupt(name, version) from None
-        loaded = LoadedVersion(name, version, bundle, compile_bundle(bundle))
+            data = path.read_bytes()
+        except OSError:
+            raise BundleCorrupt(name, version, "is missing or unreadable") from None
+        # Hash the very bytes that get parsed: no window in which the file could change in between.
+        if hashlib.sha256(data).hexdigest() != row["bundle_sha256"]:
+            raise BundleCorrupt(name, version)
+        try:
+            serving = artifacts.loads(data)
+        except artifacts.ArtifactError:
+            raise BundleCorrupt(name, version, "cannot be read as a serving artifact") from None
+        loaded = LoadedVersion(name, version, serving.bundle, serving.compiled)
         with self._cache_lock:
             self._cache[key] = loaded
             while len(self._cache) > self._cache_size:
                 self._cache.popitem(last=False)
         return loaded
+
+    def legacy_versions(self) -> list[tuple[str, int]]:
+        """Versions whose artifact is still a legacy pickle (written before serving artifacts existed)."""
+        rows = self._query(f"SELECT name, version FROM versions WHERE artifact NOT LIKE '%{SERVING_SUFFIX}'"
+                           " ORDER BY name, version")
+        return [(r["name"], r["version"]) for r in rows]
+
+    def upgrade_legacy_versions(self) -> list[tuple[str, int]]:
+        """Convert every legacy (pickle) version into a serving artifact; return the converted versions.
+
+        The one place in the code base that unpickles a stored file, and only a file that still matches the
+        SHA-256 recorded when it was written. Run by an operator (``segscore upgrade-store``) on a store they
+        trust, never by the server. The old file stays beside the new one as the analysts' copy of the fitted
+        scikit-learn objects.
+        """
+        converted = []
+        for name, version in self.legacy_versions():
+            row = self._require_version(self._db(), name, version)
+            folder = self.root / "segmentations" / name
+            legacy = folder / row["artifact"]
+            try:
+                if _sha256_file(legacy) != row["bundle_sha256"]:
+                    raise BundleCorrupt(name, version)
+            except FileNotFoundError:
+                raise BundleCorrupt(name, version, "is missing") from None
+            bundle = _legacy_read_pickled_bundle(legacy)
+            serving = artifacts.dumps(serving_version(bundle))
+            artifact = folder / f"v{version:06d}{SERVING_SUFFIX}"
+            sha = _write_atomic(artifact, lambda handle: handle.write(serving))
+            report = json.loads(row["report"])
+            report["bundle_sha256"] = sha
+            text = json.dumps(report, allow_nan=False)
+            _write_atomic(folder / f"v{version:06d}.json", lambda handle: handle.write(text.encode()))
+            with self._writing(f"the upgraded artifact of '{name}' version {version}") as db:
+                db.execute("UPDATE versions SET artifact=?, bundle_sha256=?, report=? WHERE name=? AND version=?",
+                           (artifact.name, sha, text, name, version))
+            converted.append((name, version))
+        return converted
 
     def list_drift_reports(self, name: str, *, version: int | None, limit: int) -> list[dict[str, Any]]:
         if not self._query("SELECT 1 FROM segmentations WHERE name=?", (name,)):
@@ -546,3 +621,8 @@ class FilesystemStore:
         """A number that changes whenever a key is created or revoked (cheap to poll)."""
         rows = self._query("SELECT value FROM counters WHERE name='keys'")
         return rows[0]["value"] if rows else 0
+
+
+def _legacy_read_pickled_bundle(path: Path) -> Bundle:
+    """Unpickle a legacy version's joblib artifact. Only ``upgrade_legacy_versions`` calls this."""
+    return joblib.load(path)

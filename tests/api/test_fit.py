@@ -168,7 +168,7 @@ def test_make_live_false_on_first_version_leaves_nothing_live(client, iris):
 
 
 # --------------------------------------------------------------------------- fits run off the event loop
-@pytest.mark.parametrize("stage, csv", [("fit_bundle", False), ("parse_json", False), ("read_csv", True)])
+@pytest.mark.parametrize("stage, csv", [("fit_in_worker", False), ("parse_json", False), ("read_csv", True)])
 def test_a_running_fit_does_not_block_other_requests(client, iris, monkeypatch, stage, csv):
     # Hold the fit inside one CPU-heavy stage (parsing the body, or fitting) and check that the app still
     # answers another request meanwhile: the stage runs off the event loop.

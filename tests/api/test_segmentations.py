@@ -187,7 +187,7 @@ def test_readyz_ready_with_loadable_live_bundles(fitted):
 
 
 def test_readyz_503_when_a_live_artifact_is_corrupted(fitted, settings):
-    artifact = Path(settings.store_dir) / "segmentations" / NAME / "v000001.joblib"
+    artifact = Path(settings.store_dir) / "segmentations" / NAME / "v000001.npz"
     data = bytearray(artifact.read_bytes())
     data[len(data) // 2] ^= 0xFF
     artifact.write_bytes(bytes(data))

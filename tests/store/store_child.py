@@ -8,6 +8,9 @@
       report-renamed    artifact and report are in place; the index rows are not committed yet
       commit            the index rows are inserted; COMMIT has not run
 
+``promote STORE NAME VERSION READY_FILE GO_FILE``
+    Write READY_FILE, wait (bounded) for GO_FILE, make VERSION of NAME live, print the live version read back.
+
 ``save STORE BUNDLE NAME READY_FILE GO_FILE``
     Write READY_FILE, wait (bounded) for GO_FILE, then open the store (creating it if needed), save BUNDLE as
     the next version of NAME and print the version number.
@@ -59,17 +62,17 @@ def crash(store_dir: str, bundle_path: str, point: str, signal_file: str) -> Non
 
         filesystem.joblib.dump = dump
     elif point in ("artifact-renamed", "report-renamed"):
-        # os.replace calls in save_version: 1 temp -> staged artifact, 2 staged -> vN.joblib (inside the
-        # index transaction), 3 temp -> vN.json.
+        # os.replace calls in save_version: 1 temp -> staged serving artifact, 2 temp -> staged analysts' file,
+        # 3 staged -> vN.npz and 4 staged -> vN.joblib (inside the index transaction), 5 temp -> vN.json.
         real_replace = os.replace
         calls = [0]
 
         def replace(src, dst):
             calls[0] += 1
-            if point == "artifact-renamed" and calls[0] == 3:
+            if point == "artifact-renamed" and calls[0] == 5:
                 _hold(signal_file)
             real_replace(src, dst)
-            if point == "report-renamed" and calls[0] == 3:
+            if point == "report-renamed" and calls[0] == 5:
                 _hold(signal_file)
 
         filesystem.os.replace = replace
@@ -95,6 +98,21 @@ def save(store_dir: str, bundle_path: str, name: str, ready_file: str, go_file: 
     print(report["version"])
 
 
+def _wait_for_go(ready_file: str, go_file: str) -> None:
+    Path(ready_file).write_text("ready")
+    deadline = time.monotonic() + 120
+    while not Path(go_file).exists():
+        if time.monotonic() > deadline:
+            raise SystemExit("no go signal")
+        time.sleep(0.001)
+
+
+def promote(store_dir: str, name: str, version: str, ready_file: str, go_file: str) -> None:
+    store = filesystem.FilesystemStore(store_dir)
+    _wait_for_go(ready_file, go_file)
+    print(store.set_live(name, int(version))["live_version"])
+
+
 if __name__ == "__main__":
     command, *arguments = sys.argv[1:]
-    {"crash": crash, "save": save}[command](*arguments)
+    {"crash": crash, "save": save, "promote": promote}[command](*arguments)

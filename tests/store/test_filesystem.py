@@ -49,7 +49,8 @@ def bundle_file(tmp_path_factory, bundles):
 
 
 def artifact_path(store: FilesystemStore, name: str, version: int) -> Path:
-    return store.root / "segmentations" / name / f"v{version:06d}.joblib"
+    """The serving artifact (the file whose SHA-256 the index records)."""
+    return store.root / "segmentations" / name / f"v{version:06d}.npz"
 
 
 def sha256_of(path: Path) -> str:
@@ -77,7 +78,7 @@ def test_a_save_leaves_only_numbered_files(store, bundles):
     store.save_version("shop", bundles[0], make_live=None)
     store.save_version("shop", bundles[1], make_live=None)
     names = sorted(p.name for p in (store.root / "segmentations" / "shop").iterdir())
-    assert names == ["v000001.joblib", "v000001.json", "v000002.joblib", "v000002.json"]
+    assert names == ["v000001.joblib", "v000001.json", "v000001.npz", "v000002.joblib", "v000002.json", "v000002.npz"]
 
 
 def test_versions_count_up_per_segmentation(store, bundles):
@@ -162,13 +163,14 @@ def test_an_exception_during_save_leaves_no_version_and_no_files(store, bundles,
         raise OSError("disk full (simulated)")
 
     monkeypatch.setattr(filesystem.joblib, "dump", broken_dump)
-    with pytest.raises(OSError):
+    with pytest.raises(StoreUnavailable) as caught:
         store.save_version("shop", bundles[1], make_live=True)
+    assert "'shop'" in str(caught.value.detail)
     monkeypatch.undo()
     assert [v["version"] for v in store.get_segmentation("shop")["versions"]] == [1]
     assert store.get_segmentation("shop")["live_version"] == 1
     assert sorted(p.name for p in (store.root / "segmentations" / "shop").iterdir()) == [
-        "v000001.joblib", "v000001.json"]
+        "v000001.joblib", "v000001.json", "v000001.npz"]
     assert store.save_version("shop", bundles[1], make_live=None)["version"] == 2
 
 
@@ -258,7 +260,7 @@ def test_a_save_killed_mid_write_leaves_the_store_readable(tmp_path, bundles, bu
     if point == "dump":
         assert any(name.startswith(".tmp-") for name in leftovers), leftovers
     else:
-        assert "v000002.joblib" in leftovers, leftovers
+        assert "v000002.npz" in leftovers, leftovers
 
     # Readable by a new instance (as after a restart): no partial version is listed.
     after = FilesystemStore(root)

@@ -1,0 +1,100 @@
+"""Fits in worker processes: the time limit stops the worker and writes nothing; a worker killed mid-fit (as
+the kernel's out-of-memory killer would) fails that fit with a clear 503 and leaves the store consistent.
+
+The worker death is real: the test sends SIGKILL to the worker's process id.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import threading
+import time
+
+import numpy as np
+import pytest
+from fastapi.testclient import TestClient
+
+from service.app import create_app
+from service.fitting import running_fit_workers
+from service.settings import Settings
+from tests.conftest import records_from
+
+NAME = "shop"
+
+
+def slow_fit_csv(rows: int = 60_000, features: int = 8) -> bytes:
+    """A fit that takes many seconds with one thread (k searched over 2-12, 10 restarts each)."""
+    values = np.random.default_rng(0).normal(size=(rows, features))
+    header = ",".join(f"f{i}" for i in range(features))
+    return (header + "\n" + "\n".join(",".join(f"{v:.6f}" for v in row) for row in values)).encode()
+
+
+def post_slow_fit(client: TestClient):
+    return client.post(f"/v1/segmentations/{NAME}/fit?k=2-12", content=slow_fit_csv(),
+                       headers={"content-type": "text/csv"})
+
+
+def pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    return True
+
+
+def test_a_fit_past_its_time_limit_is_stopped_and_writes_nothing(tmp_path, iris):
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store", fit_time_limit_seconds=1.0))) as client:
+        assert client.post(f"/v1/segmentations/{NAME}/fit", json={"records": records_from(iris), "k": 2}
+                           ).status_code == 201          # an ordinary fit finishes within the limit
+        seen: list[int] = []
+        watcher = threading.Thread(target=lambda: [seen.extend(running_fit_workers()) or time.sleep(0.05)
+                                                   for _ in range(200) if not seen])
+        watcher.start()
+        response = post_slow_fit(client)
+        watcher.join(30)
+        assert response.status_code == 504, response.text
+        assert "SEGSCORE_FIT_TIME_LIMIT_SECONDS" in response.json()["detail"]
+        assert [v["version"] for v in client.get(f"/v1/segmentations/{NAME}").json()["versions"]] == [1]
+        assert running_fit_workers() == []
+        assert seen and not pid_alive(seen[0])           # the worker was stopped, not left running
+        folder = tmp_path / "store" / "segmentations" / NAME
+        assert sorted(p.name for p in folder.iterdir()) == ["v000001.joblib", "v000001.json", "v000001.npz"]
+
+
+def test_a_killed_worker_fails_that_fit_with_503_and_the_store_stays_consistent(tmp_path, iris):
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store"))) as client:
+        assert client.post(f"/v1/segmentations/{NAME}/fit", json={"records": records_from(iris), "k": 2}
+                           ).status_code == 201
+        result: dict = {}
+        fitter = threading.Thread(target=lambda: result.setdefault("fit", post_slow_fit(client)))
+        fitter.start()
+        deadline = time.monotonic() + 60
+        while not running_fit_workers() and time.monotonic() < deadline:
+            time.sleep(0.02)
+        workers = running_fit_workers()
+        assert workers, "the slow fit never started a worker"
+        time.sleep(0.5)                                   # well inside the fit
+        os.kill(workers[0], signal.SIGKILL)
+        fitter.join(60)
+        assert not fitter.is_alive()
+        response = result["fit"]
+        assert response.status_code == 503, response.text
+        assert "killed by signal 9" in response.json()["detail"]
+        detail = client.get(f"/v1/segmentations/{NAME}").json()
+        assert [v["version"] for v in detail["versions"]] == [1] and detail["live_version"] == 1
+        # The server is fine: assign works and the next fit gets version 2.
+        assert client.post(f"/v1/segmentations/{NAME}/assign", json={"records": records_from(iris)[:2]}
+                           ).status_code == 200
+        assert client.post(f"/v1/segmentations/{NAME}/fit", json={"records": records_from(iris), "k": 3}
+                           ).json()["version"] == 2
+
+
+@pytest.mark.parametrize("body, field", [
+    ({"k": 200}, "k"),                                     # more segments than records: refused in the worker
+])
+def test_a_refusal_inside_the_worker_keeps_its_4xx_and_detail(client, iris, body, field):
+    response = client.post(f"/v1/segmentations/{NAME}/fit", json={"records": records_from(iris), **body})
+    assert response.status_code == 422, response.text
+    assert any(p["field"] == field for p in response.json()["detail"]), response.text
+    assert client.get("/v1/segmentations").json()["segmentations"] == []
