@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import hmac
-from typing import Annotated, Any
+from typing import Annotated, Any, Callable
 
 from fastapi import Depends, Request
 
@@ -55,11 +55,22 @@ def bearer_key(request: Request) -> str | None:
     return key.strip() or None if scheme.lower() == "bearer" else None
 
 
-def require_scope(scope: str) -> Any:
-    """Dependency factory: the request's bearer key must carry ``scope`` (no-op when auth is off)."""
+# The web console keeps the key a person typed in once in this cookie (HttpOnly, SameSite=Strict; see
+# service/console/pages.py), so that the pages and the chart images they show need no header.
+CONSOLE_COOKIE = "segscore_console_key"
+
+
+def bearer_or_console_key(request: Request) -> str | None:
+    """The request's Bearer key, else the key of the console's session cookie, else None."""
+    return bearer_key(request) or request.cookies.get(CONSOLE_COOKIE) or None
+
+
+def require_scope(scope: str, key_of: Callable[[Request], str | None] = bearer_key) -> Any:
+    """Dependency factory: the request's key (by default its bearer key) must carry ``scope`` (no-op when
+    auth is off)."""
 
     async def check(request: Request) -> None:
-        authorize(request, bearer_key(request), scope)
+        authorize(request, key_of(request), scope)
 
     return Depends(check)
 
@@ -68,3 +79,5 @@ FitScope = require_scope("fit")
 ReadScope = require_scope("read")
 AssignScope = require_scope("assign")
 DriftScope = require_scope("drift")
+# Charts are read by API clients (Bearer header) and by the console's <img> tags (session cookie).
+ChartReadScope = require_scope("read", bearer_or_console_key)

@@ -8,7 +8,9 @@
     ├── NotFound
     │   ├── SegmentationNotFound
     │   ├── VersionNotFound
-    │   └── SegmentNotFound
+    │   ├── SegmentNotFound
+    │   ├── ChartNotFound
+    │   └── DriftReportNotFound
     ├── Conflict
     │   └── NoLiveVersion
     ├── PayloadTooLarge
@@ -78,6 +80,20 @@ class SegmentNotFound(NotFound):
 
     def __init__(self, name: str, version: int, segment: int, k: int) -> None:
         super().__init__(f"'{name}' version {version} has segments 0..{k - 1}; got {segment}")
+
+
+class ChartNotFound(NotFound):
+    """No such chart."""
+
+    def __init__(self, chart: str, known: tuple[str, ...]) -> None:
+        super().__init__(f"no chart named {chart!r}; charts of a version: {', '.join(known)}")
+
+
+class DriftReportNotFound(NotFound):
+    """No such drift report."""
+
+    def __init__(self, name: str, report_id: str) -> None:
+        super().__init__(f"segmentation '{name}' has no stored drift report {report_id!r}")
 
 
 class Conflict(ServiceError):
