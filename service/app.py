@@ -12,7 +12,7 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service import __version__
+from service import __version__, console
 from service.api import assign, charts, drift, health, segmentations
 from service.charts import ChartCache
 from service.api.validation import problems_from_pydantic
@@ -115,6 +115,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     for router in (segmentations.router, assign.router, drift.router, charts.router):
         app.include_router(router, prefix="/v1")
     app.include_router(health.router)
+    console.install(app)
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     return app
 
