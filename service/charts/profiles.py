@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
+import matplotlib
 import numpy as np
 
 from service.charts.style import DIVERGING_COLOURMAP, new_figure, segment_name, to_png
@@ -24,8 +25,8 @@ def profiles_png(report: dict[str, Any]) -> bytes:
     limit = max(MIN_COLOUR_LIMIT, float(np.nanmax(np.abs(z))) if np.isfinite(z).any() else 0.0)
     figure = new_figure()
     axes = figure.subplots()
-    image = axes.imshow(np.ma.masked_invalid(z), cmap=DIVERGING_COLOURMAP, vmin=-limit, vmax=limit, aspect="auto")
-    image.cmap.set_bad("#bbbbbb")
+    colourmap = matplotlib.colormaps[DIVERGING_COLOURMAP].with_extremes(bad="#bbbbbb")   # grey: no z
+    image = axes.imshow(np.ma.masked_invalid(z), cmap=colourmap, vmin=-limit, vmax=limit, aspect="auto")
     # Fewer cells, larger print; the printed value carries the information, the colour only helps find it.
     size = 11 if z.size <= 40 else 9 if z.size <= 120 else 7
     for (i, j), value in np.ndenumerate(z):

@@ -52,7 +52,8 @@ def selection_png(report: dict[str, Any]) -> bytes:
                 axes.plot([k], [value], linestyle="none", marker=style["marker"], markersize=15,
                           markerfacecolor=style["colour"], markeredgecolor="black", label=text)
         axes.grid(True, color="#dddddd", linewidth=0.8)
-        axes.legend(loc="best", fontsize=9, framealpha=0.95)
+        if axes.get_legend_handles_labels()[0]:
+            axes.legend(loc="best", fontsize=9, framealpha=0.95)
     if len(ks) == 1:
         top.set_xlim(ks[0] - 1, ks[0] + 1)
     return to_png(figure)
