@@ -43,3 +43,15 @@ def test_every_service_error_has_an_http_status():
     assert status_for(InvalidRecords([])) == 422
     assert status_for(BundleCorrupt("x", 1)) == 500
     assert status_for(StoreUnavailable()) == 503
+
+
+def test_charts_import_no_web_framework_and_no_store():
+    # service.charts draws from plain data (report dicts, numpy arrays): no web layer, no store.
+    code = (
+        "import sys, service.charts;"
+        "bad = [m for m in ('fastapi', 'starlette', 'pydantic', 'schemas', 'service.store', 'service.api') "
+        "if m in sys.modules];"
+        "print(','.join(bad))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == ""
