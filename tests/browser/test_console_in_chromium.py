@@ -63,11 +63,6 @@ def browser(tmp_path):
         driver.quit()
 
 
-@pytest.fixture(scope="module")
-def demo_store(tmp_path_factory) -> Path:
-    return tmp_path_factory.mktemp("browser") / "store"
-
-
 def wait_for_images(driver) -> list[list]:
     from selenium.webdriver.support.ui import WebDriverWait
 
@@ -85,8 +80,13 @@ def save_full_page(driver, name: str) -> Path:
     return path
 
 
-def test_segmentation_page_in_chromium(browser, demo_store, tmp_path):
-    with segscore_server(tmp_path, "--demo", "--store", str(demo_store)) as base:
+def test_console_in_chromium_open_then_behind_a_key(browser, tmp_path):
+    """One test, two server processes on one store, so the demo is fitted once: first without keys (the
+    loopback demo), then with a key, where the login form comes first."""
+    from selenium.webdriver.common.by import By
+
+    store = tmp_path / "store"
+    with segscore_server(tmp_path, "--demo", "--store", str(store)) as base:
         _, report = get_json(f"{base}/v1/segmentations/demo/versions/1")
         browser.get(f"{base}/console/segmentations/demo")
         assert browser.title.startswith("demo v1")
@@ -100,13 +100,9 @@ def test_segmentation_page_in_chromium(browser, demo_store, tmp_path):
     width, height = png_size(shot.read_bytes())
     assert width >= 1000 and height > 2000          # the whole page, charts included
 
-
-def test_login_then_segmentation_page_in_chromium(browser, demo_store, tmp_path):
-    from selenium.webdriver.common.by import By
-
+    browser.set_window_size(1280, 1000)
     keys = json.dumps({READ_KEY: ["read"]})
-    with segscore_server(tmp_path, "--demo", "--store", str(demo_store),
-                         settings_env={"SEGSCORE_API_KEYS": keys}) as base:
+    with segscore_server(tmp_path, "--demo", "--store", str(store), settings_env={"SEGSCORE_API_KEYS": keys}) as base:
         browser.get(f"{base}/console/segmentations/demo")
         assert browser.find_elements(By.ID, "login") and not browser.find_elements(By.ID, "segments")
         assert browser.execute_script("return document.images.length;") == 0
@@ -115,6 +111,6 @@ def test_login_then_segmentation_page_in_chromium(browser, demo_store, tmp_path)
         images = wait_for_images(browser)
         assert browser.current_url == f"{base}/console/segmentations/demo"
         assert len(images) == 4 and all(complete and width >= 800 for _, complete, width in images), images
-        assert browser.execute_script(SEGMENT_ROWS) >= 2
+        assert browser.execute_script(SEGMENT_ROWS) == report["k"]
         # The session cookie is out of reach of page scripts (HttpOnly).
         assert "segscore" not in browser.execute_script("return document.cookie;")
