@@ -5,6 +5,7 @@
 
 from __future__ import annotations
 
+import textwrap
 from dataclasses import dataclass
 from typing import Any
 
@@ -13,6 +14,7 @@ import numpy as np
 from service.charts.style import new_figure, segment_name, series_style, to_png
 
 JITTER_SEED = 0
+TITLE_WIDTH = 110        # characters per title line (12-point type on a 1000-pixel figure)
 
 
 @dataclass(frozen=True)
@@ -77,8 +79,8 @@ def map_layout(filled: np.ndarray, projected: np.ndarray, centroids: np.ndarray,
         points = standardised @ axes.T
         x_label = _pc_label(1, "standardised units", shares[0])
         y_label = _pc_label(2, "standardised units", shares[1])
-        plane = ("PCs of the standardised sample, computed for this picture (the version's clustering space "
-                 "has one dimension); centroids shown as segment means")
+        plane = ("PCs of the standardised sample, computed for this picture (the version clusters on one "
+                 "component); centroids shown as segment means")
     else:
         jitter = np.random.default_rng(JITTER_SEED).uniform(-0.5, 0.5, size=filled.shape[0])
         points = np.column_stack([standardised[:, 0], jitter])
@@ -125,5 +127,5 @@ def map_png(report: dict[str, Any], layout: MapLayout, segment: np.ndarray, outl
     axes.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=9, markerscale=1.6, frameon=False)
     n_outliers = int(outlier.sum())
     figure.suptitle(f"Segment map: '{report['name']}' version {report['version']}, {len(points):,} training records "
-                    f"({n_outliers:,} outliers)\nplane: {layout.plane}", fontsize=12)
+                    f"({n_outliers:,} outliers)\n" + textwrap.fill(f"plane: {layout.plane}", TITLE_WIDTH), fontsize=12)
     return to_png(figure)

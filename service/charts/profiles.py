@@ -19,6 +19,17 @@ def z_matrix(report: dict[str, Any]) -> np.ndarray:
                      for seg in report["segments"]], dtype=float)
 
 
+def _cell_font_size(figure, axes, shape: tuple[int, int]) -> float:
+    """Points at which '+0.00' (5 characters, ~0.62 em each in DejaVu Sans) fills at most 70 % of a cell."""
+    figure.canvas.draw()                            # lay out first, so the axes' size in pixels is known
+    box = axes.get_window_extent()
+    cell_width, cell_height = box.width / shape[1], box.height / shape[0]
+    points_per_pixel = 72.0 / figure.dpi
+    by_width = 0.7 * cell_width / (5 * 0.62) * points_per_pixel
+    by_height = 0.5 * cell_height * points_per_pixel
+    return max(5.0, min(11.0, by_width, by_height))
+
+
 def profiles_png(report: dict[str, Any]) -> bytes:
     features, segments = report["features"], report["segments"]
     z = z_matrix(report)
@@ -27,8 +38,8 @@ def profiles_png(report: dict[str, Any]) -> bytes:
     axes = figure.subplots()
     colourmap = matplotlib.colormaps[DIVERGING_COLOURMAP].with_extremes(bad="#bbbbbb")   # grey: no z
     image = axes.imshow(np.ma.masked_invalid(z), cmap=colourmap, vmin=-limit, vmax=limit, aspect="auto")
-    # Fewer cells, larger print; the printed value carries the information, the colour only helps find it.
-    size = 11 if z.size <= 40 else 9 if z.size <= 120 else 7
+    # The printed value carries the information (the colour only helps find it): as large as fits the cell.
+    size = _cell_font_size(figure, axes, z.shape)
     for (i, j), value in np.ndenumerate(z):
         text = "n/a" if np.isnan(value) else f"{value:+.2f}"
         dark = not np.isnan(value) and abs(value) > 0.6 * limit
