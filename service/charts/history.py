@@ -12,7 +12,9 @@ from matplotlib.ticker import FuncFormatter
 
 from service.charts.style import STATUS_STYLE, new_figure, series_style, to_png
 
-MAX_TICK_LABELS = 12
+MAX_TICK_LABELS = 8      # 'mm-dd hh:mm' labels that fit side by side under the plot
+MAX_STATUS_WORDS = 15    # above this many reports the status words would overlap: shapes only
+MAX_FEATURE_LINES = 10   # more lines than this cannot be told apart: the features with the highest PSI are drawn
 SQRT_SCALE_ABOVE = 1.0   # a PSI above this would squash the bands on a linear axis: use a square-root axis
 
 
@@ -37,12 +39,18 @@ def drift_history_png(name: str, reports: list[dict[str, Any]], *, psi_watch: fl
         for item in report["features"]:
             psi[features.index(item["name"]), j] = item["psi"]
     top = max(psi_alert * 1.4, float(np.nanmax(psi)) * 1.08 if np.isfinite(psi).any() else 0.0)
+    drawn = list(range(len(features)))
+    if len(features) > MAX_FEATURE_LINES:
+        highest = np.nanmax(np.where(np.isnan(psi), -np.inf, psi), axis=1)
+        drawn = sorted(np.argsort(-highest, kind="stable")[:MAX_FEATURE_LINES].tolist())
+        figure.suptitle(f"Drift history: '{name}', PSI of the {MAX_FEATURE_LINES} features (of {len(features)}) "
+                        f"with the highest PSI in the last {len(ordered)} stored reports", fontsize=13)
 
     positions = np.arange(len(ordered))
-    for i, feature in enumerate(features):
-        style = series_style(i)
+    for line, i in enumerate(drawn):
+        style = series_style(line)
         axes.plot(positions, psi[i], color=style["colour"], marker=style["marker"], markersize=7, linewidth=1.5,
-                  label=feature)
+                  label=features[i])
     bands = [(0.0, psi_watch, "stable"), (psi_watch, psi_alert, "watch"), (psi_alert, top, "alert")]
     for low, high, status in bands:
         axes.axhspan(low, high, color=STATUS_STYLE[status]["colour"], alpha=0.10, linewidth=0)
@@ -70,7 +78,8 @@ def drift_history_png(name: str, reports: list[dict[str, Any]], *, psi_watch: fl
         style = STATUS_STYLE[report["status"]]
         status_axes.plot([j], [0.62], marker=style["marker"], markersize=11, color=style["colour"],
                          markeredgecolor="black", linestyle="none")
-        status_axes.text(j, 0.05, report["status"], ha="center", va="bottom", fontsize=7)
+        if len(ordered) <= MAX_STATUS_WORDS:
+            status_axes.text(j, 0.05, report["status"], ha="center", va="bottom", fontsize=7)
     status_axes.set_ylim(0, 1)
     for spine in ("top", "right", "left"):
         status_axes.spines[spine].set_visible(False)

@@ -46,3 +46,14 @@ def test_profile_matrix_is_the_reports_z(iris):
 
 def test_drift_history_draws_an_empty_history():
     assert png_size(charts.drift_history_png("iris", [], psi_watch=0.1, psi_alert=0.25)) == (1000, 625)
+
+
+def test_drift_history_draws_many_features_and_reports(wine):
+    """Thirteen features (Wine) over 30 reports: at most ten lines, thinned time labels; still one PNG."""
+    rng = np.random.default_rng(3)
+    names = list(wine.feature_names)
+    reports = [{"id": f"r{i}", "version": 1 + i // 20, "created_at": f"2026-12-{1 + i // 24:02d}T{i % 24:02d}:00:00Z",
+                "status": ("stable", "watch", "alert")[i % 3],
+                "features": [{"name": n, "psi": float(rng.gamma(1.0, 0.1 * (1 + j)))} for j, n in enumerate(names)]}
+               for i in range(30)][::-1]
+    assert png_size(charts.drift_history_png("wine", reports, psi_watch=0.1, psi_alert=0.25)) == (1000, 625)
