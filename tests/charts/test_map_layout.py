@@ -65,7 +65,7 @@ def test_with_one_component_the_sample_is_standardised_for_the_picture(iris):
     assert_equal_up_to_sign(layout.points, PCA(n_components=2, svd_solver="full").fit_transform(standardised))
     for c in range(3):
         np.testing.assert_allclose(layout.centroids[c], layout.points[segment == c].mean(axis=0), atol=1e-12)
-    assert "standardised" in layout.plane and "one dimension" in layout.plane
+    assert "standardised" in layout.plane and "one component" in layout.plane
 
 
 def test_with_one_feature_the_second_axis_is_jitter(iris):
