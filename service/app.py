@@ -14,8 +14,8 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service import __version__, console
 from service.api import assign, charts, drift, health, segmentations
-from service.charts import ChartCache
 from service.api.validation import problems_from_pydantic
+from service.charts import ChartCache
 from service.errors import (
     AuthError,
     BadBody,

@@ -86,7 +86,7 @@ class ChartNotFound(NotFound):
     """No such chart."""
 
     def __init__(self, chart: str, known: tuple[str, ...]) -> None:
-        super().__init__(f"no chart named {chart!r}; charts of a version: {', '.join(known)}")
+        super().__init__(f"no chart named {chart[:40]!r}; charts of a version: {', '.join(known)}")
 
 
 class DriftReportNotFound(NotFound):
