@@ -19,10 +19,11 @@ from fastapi.responses import HTMLResponse, JSONResponse
 from fastapi.staticfiles import StaticFiles
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service import __version__
-from service.api import assign, drift, health, segmentations
+from service import __version__, console
+from service.api import assign, charts, drift, health, segmentations
 from service.api.validation import problems_from_pydantic
 from service.auth import KEY_POLL_SECONDS, KeyRing, is_loopback
+from service.charts import ChartCache
 from service.errors import (
     AuthError,
     BadBody,
@@ -198,9 +199,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                     "(first: '%s' version %d); convert them once with 'segscore upgrade-store --store %s'",
                     len(legacy), *legacy[0], settings.store_dir)
     app.state.metrics = metrics
-    for router in (segmentations.router, assign.router, drift.router):
+    app.state.chart_cache = ChartCache(settings.chart_cache_size)
+    for router in (segmentations.router, assign.router, drift.router, charts.router):
         app.include_router(router, prefix="/v1")
     app.include_router(health.router)
+    console.install(app)
     if settings.docs_enabled:
         _offline_docs(app)
     # The last added is the outermost: the request id is set before anything else runs (so every log line

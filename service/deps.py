@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated, Any
+from typing import Annotated, Any, Callable
 
 from fastapi import Depends, Request
 
@@ -53,8 +53,19 @@ def bearer_key(request: Request) -> str | None:
     return key.strip() or None if scheme.lower() == "bearer" else None
 
 
-def require_scope(scope: str) -> Any:
-    """Dependency factory: the request's bearer key must carry ``scope`` (no-op when auth is off).
+# The web console keeps the key a person typed in once in this cookie (HttpOnly, SameSite=Strict; see
+# service/console/pages.py), so that the pages and the chart images they show need no header.
+CONSOLE_COOKIE = "segscore_console_key"
+
+
+def bearer_or_console_key(request: Request) -> str | None:
+    """The request's Bearer key, else the key of the console's session cookie, else None."""
+    return bearer_key(request) or request.cookies.get(CONSOLE_COOKIE) or None
+
+
+def require_scope(scope: str, key_of: Callable[[Request], str | None] = bearer_key) -> Any:
+    """Dependency factory: the request's key (by default its bearer key) must carry ``scope`` (no-op when
+    auth is off).
 
     The check function carries ``required_scope`` so that the route table says which scope each route
     needs (the authorization test reads it; a /v1 route without one fails that test)."""
@@ -62,7 +73,7 @@ def require_scope(scope: str) -> Any:
         raise ValueError(f"unknown scope {scope!r}; known: {SCOPES}")
 
     async def check(request: Request) -> None:
-        authorize(request, bearer_key(request), scope)
+        authorize(request, key_of(request), scope)
 
     check.required_scope = scope  # type: ignore[attr-defined]
     return Depends(check)
@@ -80,3 +91,5 @@ ReadScope = require_scope("read")
 AssignScope = require_scope("assign")
 DriftScope = require_scope("drift")
 AdminScope = require_scope("admin")
+# Charts are read by API clients (Bearer header) and by the console's <img> tags (session cookie).
+ChartReadScope = require_scope("read", bearer_or_console_key)

@@ -10,6 +10,8 @@
     │   ├── VersionNotFound
     │   ├── SegmentNotFound
     │   └── KeyNotFound          no API key of that name (keys revoke)
+    │   ├── ChartNotFound
+    │   └── DriftReportNotFound
     ├── Conflict
     │   ├── NoLiveVersion
     │   └── KeyNameTaken         an API key of that name exists
@@ -91,6 +93,18 @@ class KeyNotFound(NotFound):
 
     def __init__(self, name: str) -> None:
         super().__init__(f"there is no API key named '{name}'")
+class ChartNotFound(NotFound):
+    """No such chart."""
+
+    def __init__(self, chart: str, known: tuple[str, ...]) -> None:
+        super().__init__(f"no chart named {chart[:40]!r}; charts of a version: {', '.join(known)}")
+
+
+class DriftReportNotFound(NotFound):
+    """No such drift report."""
+
+    def __init__(self, name: str, report_id: str) -> None:
+        super().__init__(f"segmentation '{name}' has no stored drift report {report_id!r}")
 
 
 class Conflict(ServiceError):

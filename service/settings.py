@@ -54,6 +54,7 @@ class Settings(BaseSettings):
     silhouette_sample: int = Field(10_000, ge=100)
     reference_sample: int = Field(5_000, ge=100)
     bundle_cache_size: int = Field(16, ge=1)
+    chart_cache_size: int = Field(64, ge=1)     # rendered chart PNGs kept in memory (each ~50-150 KB)
     # Batches up to this size are assigned on the event loop; larger ones in a worker thread.
     inline_assign_rows: int = Field(2_000, ge=1)
     fit_concurrency: int = Field(1, ge=1)     # fits running at once, each in its own worker process

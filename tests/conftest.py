@@ -75,3 +75,25 @@ def settings(tmp_path) -> Settings:
 def client(settings):
     with TestClient(create_app(settings)) as test_client:
         yield test_client
+
+
+@pytest.fixture
+def app_with_keys(tmp_path):
+    """``make(keys)`` -> an app whose API keys are ``keys`` ({key: [scopes]}).
+
+    The one place the chart and console tests create keys; today keys are a setting. The app's store is
+    ``tmp_path / "store"``, so a test may copy a fitted store there first."""
+    def make(keys: dict[str, list[str]]):
+        return create_app(Settings(store_dir=tmp_path / "store", api_keys=keys))
+    return make
+
+
+def png_size(body: bytes) -> tuple[int, int]:
+    """(width, height) of a PNG, decoded by Pillow (which raises on anything that is not a valid image)."""
+    from PIL import Image
+    import io
+
+    with Image.open(io.BytesIO(body)) as image:
+        assert image.format == "PNG"
+        image.load()                 # decodes every pixel: a truncated or corrupt file fails here
+        return image.size

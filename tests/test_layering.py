@@ -9,17 +9,27 @@ from service.app import STATUS_BY_ERROR, status_for
 from service.errors import ServiceError
 
 
-def test_core_imports_no_web_framework():
-    code = (
-        "import sys, service.core.fit, service.core.assign, service.core.frame, service.core.bundle;"
-        "import importlib.util;"
-        "drift = importlib.util.find_spec('service.core.drift');"
-        "drift and __import__('service.core.drift');"
-        "bad = [m for m in ('fastapi', 'starlette', 'pydantic', 'schemas', 'service.store') if m in sys.modules];"
-        "print(','.join(bad))"
-    )
+WEB_AND_STORE = ("fastapi", "starlette", "pydantic", "schemas", "service.store")
+
+
+def forbidden_imports(imports: str, forbidden: tuple[str, ...]) -> list[str]:
+    """Modules of ``forbidden`` that running ``imports`` loads, in a fresh interpreter."""
+    code = f"import sys;{imports};print(','.join(m for m in {forbidden!r} if m in sys.modules))"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    assert out.stdout.strip() == ""
+    return [m for m in out.stdout.strip().split(",") if m]
+
+
+def test_core_imports_no_web_framework():
+    imports = ("import service.core.fit, service.core.assign, service.core.frame, service.core.bundle;"
+               "import importlib.util;"
+               "drift = importlib.util.find_spec('service.core.drift');"
+               "drift and __import__('service.core.drift')")
+    assert forbidden_imports(imports, WEB_AND_STORE) == []
+
+
+def test_charts_import_no_web_framework_and_no_store():
+    # service.charts draws from plain data (report dicts, numpy arrays): no web layer, no store.
+    assert forbidden_imports("import service.charts", (*WEB_AND_STORE, "service.api")) == []
 
 
 def _all_subclasses(cls):
@@ -43,3 +53,4 @@ def test_every_service_error_has_an_http_status():
     assert status_for(InvalidRecords([])) == 422
     assert status_for(BundleCorrupt("x", 1)) == 500
     assert status_for(StoreUnavailable()) == 503
+
