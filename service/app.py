@@ -13,7 +13,7 @@ from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service import __version__
-from service.api import assign, drift, health, segmentations
+from service.api import assign, compare, drift, health, segmentations
 from service.api.validation import problems_from_pydantic
 from service.errors import (
     AuthError,
@@ -110,7 +110,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.store = FilesystemStore(settings.store_dir, cache_size=settings.bundle_cache_size)
     app.state.metrics = metrics
-    for router in (segmentations.router, assign.router, drift.router):
+    for router in (segmentations.router, compare.router, assign.router, drift.router):
         app.include_router(router, prefix="/v1")
     app.include_router(health.router)
     app.add_middleware(MetricsMiddleware, metrics=metrics)
