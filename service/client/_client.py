@@ -108,6 +108,10 @@ class Client:
         return "/v1/segmentations/" + "/".join(quote(str(p), safe="") for p in (name, *parts))
 
     # ------------------------------------------------------------------ reads
+    def ready(self) -> dict[str, Any]:
+        """The server's readiness answer (``GET /readyz``); ServerError (503) when it is not ready."""
+        return self._request("GET", "/readyz")
+
     def segmentations(self) -> list[dict[str, Any]]:
         """Every segmentation: name, live_version, latest_version, created_at, updated_at."""
         return self._request("GET", "/v1/segmentations")["segmentations"]
