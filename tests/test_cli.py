@@ -3,13 +3,6 @@
 from __future__ import annotations
 
 import json
-import os
-import signal
-import socket
-import subprocess
-import sys
-import time
-import urllib.error
 import urllib.request
 from pathlib import Path
 
@@ -19,8 +12,8 @@ from click.testing import CliRunner
 
 from service.cli import main
 from service.demo import FEATURES
+from tests.server_process import serving
 
-SERVER_START_TIMEOUT = 180      # the demo fit runs first; the machine may be busy
 HTTP_TIMEOUT = 10
 
 
@@ -96,52 +89,22 @@ def test_fit_unparseable_option_is_a_usage_error(tmp_path, demo_csv, arguments):
     assert arguments[0] in result.output
 
 
-def _free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
-
-
 def _get(url: str):
     with urllib.request.urlopen(url, timeout=HTTP_TIMEOUT) as response:
         return response.status, json.loads(response.read())
 
 
 def test_serve_demo_answers_readyz_and_lists_demo(tmp_path):
-    port = _free_port()
     store = tmp_path / "store"
-    env = {k: v for k, v in os.environ.items() if not k.startswith("SEGSCORE_")}
-    segscore = Path(sys.executable).with_name("segscore")
-    log = (tmp_path / "server.log").open("w")
-    server = subprocess.Popen([str(segscore), "serve", "--demo", "--port", str(port), "--store", str(store)],
-                              stdout=log, stderr=subprocess.STDOUT, env=env, cwd=tmp_path)
-    base = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + SERVER_START_TIMEOUT
-        status = None
-        while time.monotonic() < deadline:
-            assert server.poll() is None, (tmp_path / "server.log").read_text()
-            try:
-                status, body = _get(f"{base}/readyz")
-                break
-            except (urllib.error.URLError, ConnectionError, TimeoutError):
-                time.sleep(0.25)
-        assert status == 200, (tmp_path / "server.log").read_text()
-        assert body["status"] == "ready"
+    with serving(tmp_path, "--demo", "--store", str(store)) as base:
+        status, body = _get(f"{base}/readyz")
+        assert status == 200 and body["status"] == "ready"
         status, listing = _get(f"{base}/v1/segmentations")
         assert status == 200
         assert [row["name"] for row in listing["segmentations"]] == ["demo"]
         assert listing["segmentations"][0]["live_version"] == 1
         status, report = _get(f"{base}/v1/segmentations/demo/versions/1")
         assert report["features"] == FEATURES and report["id_column"] == "customer_id"
-    finally:
-        server.send_signal(signal.SIGTERM)
-        try:
-            server.wait(30)
-        except subprocess.TimeoutExpired:
-            server.kill()
-            server.wait(30)
-        log.close()
     # The store outlives the server, and --demo does not fit again when 'demo' exists.
     from service.cli import ensure_demo
     from service.settings import Settings

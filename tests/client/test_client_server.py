@@ -3,20 +3,13 @@
 from __future__ import annotations
 
 import json
-import os
-import signal
-import subprocess
-import sys
-import time
-from pathlib import Path
 
 import pandas as pd
 import pytest
 
-from segscore.client import Client, Forbidden, NotFound, ServerUnreachable, Unauthorized
-from tests.test_cli import _free_port
+from segscore.client import Client, Forbidden, NotFound, Unauthorized
+from tests.server_process import serving
 
-SERVER_START_TIMEOUT = 120      # the machine may be busy
 FULL_KEY = "full-key-0123456789abcdef"
 READ_KEY = "read-key-0123456789abcdef"
 
@@ -24,35 +17,9 @@ READ_KEY = "read-key-0123456789abcdef"
 @pytest.fixture
 def server(tmp_path):
     """``segscore serve`` on a free loopback port with two API keys; yields its base URL."""
-    port = _free_port()
-    env = {k: v for k, v in os.environ.items() if not k.startswith("SEGSCORE_")}
-    env["SEGSCORE_API_KEYS"] = json.dumps({FULL_KEY: ["fit", "read", "assign", "drift"], READ_KEY: ["read"]})
-    segscore = Path(sys.executable).with_name("segscore")
-    log_path = tmp_path / "server.log"
-    with log_path.open("w") as log:
-        process = subprocess.Popen([str(segscore), "serve", "--port", str(port), "--store", str(tmp_path / "store")],
-                                   stdout=log, stderr=subprocess.STDOUT, env=env, cwd=tmp_path)
-        url = f"http://127.0.0.1:{port}"
-        try:
-            probe = Client(url, timeout=5)
-            deadline = time.monotonic() + SERVER_START_TIMEOUT
-            while True:
-                assert process.poll() is None, log_path.read_text()
-                try:
-                    probe.ready()
-                    break
-                except ServerUnreachable:
-                    assert time.monotonic() < deadline, log_path.read_text()
-                    time.sleep(0.25)
-            probe.close()
-            yield url
-        finally:
-            process.send_signal(signal.SIGTERM)
-            try:
-                process.wait(30)
-            except subprocess.TimeoutExpired:
-                process.kill()
-                process.wait(30)
+    keys = json.dumps({FULL_KEY: ["fit", "read", "assign", "drift"], READ_KEY: ["read"]})
+    with serving(tmp_path, "--store", str(tmp_path / "store"), env={"SEGSCORE_API_KEYS": keys}) as url:
+        yield url
 
 
 def test_client_against_a_server_process(server, wine, tmp_path):
