@@ -63,7 +63,12 @@ class Client:
             self._http, self._owns_http, self._fit_timeout = http, False, httpx2.USE_CLIENT_DEFAULT
         else:
             base = (url or os.environ.get(URL_VARIABLE) or DEFAULT_URL).rstrip("/")
-            self._http = httpx2.Client(base_url=base, timeout=timeout, transport=transport)
+            if not base.startswith(("http://", "https://")):
+                raise LocalInputError(f"the server URL must start with http:// or https://; got {base!r}")
+            try:
+                self._http = httpx2.Client(base_url=base, timeout=timeout, transport=transport)
+            except httpx2.InvalidURL as exc:
+                raise LocalInputError(f"not a usable server URL: {base!r} ({exc})") from None
             self._owns_http, self._fit_timeout = True, fit_timeout
         self.url = str(self._http.base_url).rstrip("/")
 
@@ -416,19 +421,14 @@ def _csv_content(data: Any) -> bytes | Iterator[bytes]:
         path = Path(data)
         if not path.is_file():
             raise LocalInputError(f"{path}: no such file")
-        handle = _open_binary(path)
-        return _chunks(handle)
+        if not os.access(path, os.R_OK):
+            raise LocalInputError(f"{path}: the file is not readable")
+        return _file_chunks(path)
     raise LocalInputError(f"expected a list of records, a DataFrame or a CSV file path; got {type(data).__name__}")
 
 
-def _open_binary(path: Path):
-    try:
-        return path.open("rb")
-    except OSError as exc:
-        raise LocalInputError(f"{path}: cannot read the file ({exc.strerror or exc})") from None
-
-
-def _chunks(handle) -> Iterator[bytes]:
-    with handle:
+def _file_chunks(path: Path) -> Iterator[bytes]:
+    """The file's bytes in chunks, read while the request is sent (opened only when sending starts)."""
+    with path.open("rb") as handle:
         while chunk := handle.read(UPLOAD_CHUNK_BYTES):
             yield chunk

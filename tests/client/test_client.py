@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import gc
 import json
+import socket
 import subprocess
 import sys
+import warnings
 
 import httpx2
 import numpy as np
@@ -318,8 +321,6 @@ def test_a_non_json_error_keeps_its_status():
 
 
 def test_a_closed_port_is_unreachable():
-    import socket
-
     with socket.socket() as probe:              # bind and close: nothing listens on this port afterwards
         probe.bind(("127.0.0.1", 0))
         port = probe.getsockname()[1]
@@ -348,3 +349,24 @@ def test_the_short_import_is_the_same_client():
 
     assert Client is service.client.Client
     assert np.all([hasattr(service.client, name) for name in service.client.__all__])
+
+
+@pytest.mark.parametrize("url", ["127.0.0.1:8000", "ftp://x.example", "http://[::1"], ids=["no-scheme", "ftp", "bad"])
+def test_an_unusable_url_is_a_local_error(url):
+    with pytest.raises(LocalInputError, match="URL"):
+        Client(url)
+
+
+def test_a_file_upload_to_an_unreachable_server_leaves_no_file_open(tmp_path, wine_frame):
+    path = tmp_path / "wines.csv"
+    wine_frame.to_csv(path, index=False)
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        port = probe.getsockname()[1]
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ResourceWarning)     # a file closed by the collector warns
+        with pytest.raises(ServerUnreachable):
+            Client(f"http://127.0.0.1:{port}", timeout=5).fit(NAME, path)
+        gc.collect()
+    assert [str(w.message) for w in caught if issubclass(w.category, ResourceWarning) and "wines.csv" in
+            str(w.message)] == []
