@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import csv
 import io
+import json
 import os
 import tempfile
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -86,14 +87,17 @@ class Client:
         return f"Client(url={self.url!r})"
 
     # ------------------------------------------------------------------ transport
-    def _request(self, method: str, path: str, *, params: Mapping[str, Any] | None = None, json: Any = None,
+    def _request(self, method: str, path: str, *, params: Mapping[str, Any] | None = None, document: Any = None,
                  content: bytes | Iterator[bytes] | None = None, content_type: str | None = None,
                  timeout: Any = httpx2.USE_CLIENT_DEFAULT) -> Any:
+        """Send one request; a JSON ``document`` or raw ``content``. Returns the decoded JSON answer."""
         headers = dict(self._headers)
+        if document is not None:
+            content, content_type = _json_body(document), "application/json"
         if content_type:
             headers["Content-Type"] = content_type
         try:
-            response = self._http.request(method, path, params=params, json=json, content=content, headers=headers,
+            response = self._http.request(method, path, params=params, content=content, headers=headers,
                                           timeout=timeout)
         except httpx2.TransportError as exc:
             raise ServerUnreachable(self.url, exc) from exc
@@ -162,18 +166,18 @@ class Client:
             params["components"] = components
         path = self._path(name, "fit")
         if isinstance(data, list):
-            return self._request("POST", path, json={"records": data, **params}, timeout=self._fit_timeout)
+            return self._request("POST", path, document={"records": data, **params}, timeout=self._fit_timeout)
         return self._request("POST", path, params=_query_form(params), content=_csv_content(data),
                              content_type="text/csv", timeout=self._fit_timeout)
 
     def promote(self, name: str, version: int) -> dict[str, Any]:
         """Make ``version`` live (promote or roll back); returns the segmentation."""
-        return self._request("PUT", self._path(name, "live"), json={"version": version})
+        return self._request("PUT", self._path(name, "live"), document={"version": version})
 
     def label(self, name: str, version: int, segment: int, label: str | None) -> dict[str, Any]:
         """Name a segment (None removes the label); returns the segment."""
         return self._request("PATCH", self._path(name, "versions", version, "segments", segment),
-                             json={"label": label})
+                             document={"label": label})
 
     def carry_labels(self, name: str, from_version: int, to_version: int, *, min_share: float | None = None,
                      overwrite: bool = False) -> list[dict[str, Any]]:
@@ -196,7 +200,7 @@ class Client:
                        on_error: str = "fail") -> dict[str, Any]:
         """The assign answer for a list of records, as the server sends it."""
         return self._request("POST", self._path(name, "assign"), params=_scoring_params(version, on_error),
-                             json={"records": records})
+                             document={"records": records})
 
     def assign(self, name: str, frame: pd.DataFrame, *, version: int | None = None, on_error: str = "fail",
                columns: Sequence[str] = RESULT_COLUMNS, batch_rows: int = ASSIGN_BATCH_ROWS,
@@ -272,7 +276,7 @@ class Client:
         path = self._path(name, "drift")
         params = _scoring_params(version, on_error)
         if isinstance(data, list):
-            return self._request("POST", path, params=params, json={"records": data})
+            return self._request("POST", path, params=params, document={"records": data})
         return self._request("POST", path, params=params, content=_csv_content(data), content_type="text/csv")
 
 
@@ -316,6 +320,23 @@ class _AssignRun:
             yield payload, aligned
             if self._progress is not None:
                 self._progress(self.rows, self._total)
+
+
+def _plain(value: Any) -> Any:
+    """numpy scalars (np.int64, np.bool_, ...) as the Python numbers they hold; anything else is refused."""
+    item = getattr(value, "item", None)
+    if callable(item) and getattr(value, "shape", None) == ():
+        return item()
+    raise TypeError(f"a {type(value).__name__} is not a JSON value")
+
+
+def _json_body(document: Any) -> bytes:
+    try:
+        return json.dumps(document, allow_nan=False, ensure_ascii=False, separators=(",", ":"),
+                          default=_plain).encode("utf-8")
+    except (ValueError, TypeError) as exc:
+        raise LocalInputError(f"the records cannot be sent as JSON ({exc}); use None for a missing value "
+                              "and plain numbers and strings, or pass a DataFrame") from None
 
 
 def _shift_records(items: Any, offset: int) -> None:
@@ -401,6 +422,9 @@ def _query_form(params: Mapping[str, Any]) -> dict[str, str]:
     query = {}
     for key, value in params.items():
         if key == "features":
+            if any("," in name for name in value):
+                raise LocalInputError("a feature name holds a comma, which the CSV form's features=a,b cannot "
+                                      "carry; send the data as a list of records instead")
             query[key] = ",".join(value)
         elif key == "k" and isinstance(value, Mapping):
             query[key] = f"{value['min']}-{value['max']}"

@@ -370,3 +370,23 @@ def test_a_file_upload_to_an_unreachable_server_leaves_no_file_open(tmp_path, wi
         gc.collect()
     assert [str(w.message) for w in caught if issubclass(w.category, ResourceWarning) and "wines.csv" in
             str(w.message)] == []
+
+
+@pytest.mark.parametrize("value", [float("nan"), np.float64("inf"), object()], ids=["nan", "numpy-inf", "object"])
+def test_records_that_are_not_json_are_a_local_error(api, value):
+    with pytest.raises(LocalInputError, match="None for a missing value"):
+        api.fit(NAME, [{"a": 1.0, "b": value}, {"a": 2.0, "b": 1.0}])
+    assert api.segmentations() == []
+
+
+def test_records_may_hold_numpy_scalars(api, iris):
+    records = [{"a": np.float32(x), "b": np.int64(i % 7), "c": float(y)} for i, (x, y) in enumerate(iris.data[:, :2])]
+    assert api.fit(NAME, records, k=2)["n_records"] == 150
+
+
+def test_a_feature_name_with_a_comma_cannot_go_in_the_csv_form(api, wine_frame):
+    frame = wine_frame.rename(columns={"alcohol": "alcohol, % vol"})
+    with pytest.raises(LocalInputError, match="comma"):
+        api.fit(NAME, frame, features=["alcohol, % vol", "hue"], k=2)
+    records = json.loads(frame[["alcohol, % vol", "hue"]].to_json(orient="records", double_precision=15))
+    assert api.fit(NAME, records, features=["alcohol, % vol", "hue"], k=2)["features"] == ["alcohol, % vol", "hue"]
