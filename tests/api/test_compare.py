@@ -162,3 +162,11 @@ def test_compare_needs_the_read_scope(tmp_path, iris):
         assert secured.get(path).status_code == 401
         assert secured.get(path, headers={"Authorization": f"Bearer {assign_key}"}).status_code == 403
         assert secured.get(path, headers={"Authorization": f"Bearer {read_key}"}).status_code == 200
+
+
+def test_the_route_is_in_the_openapi_description(client):
+    schema = client.get("/openapi.json").json()
+    operation = schema["paths"]["/v1/segmentations/{name}/versions/{v}/compare/{w}"]["get"]
+    assert operation["responses"]["200"]["content"]["application/json"]["schema"]["$ref"].endswith(
+        "/VersionComparison")
+    assert {p["name"] for p in operation["parameters"]} == {"name", "v", "w", "min_share"}
