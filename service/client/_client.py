@@ -152,11 +152,14 @@ class Client:
             scaling: str | None = None, components: int | float | None = _SERVER_DEFAULT, method: str | None = None,
             linkage: str | None = None, k: int | tuple[int, int] | Mapping[str, int] | None = None,
             selection: str | None = None, n_init: int | None = None, seed: int | None = None,
-            outlier_quantile: float | None = None, make_live: bool | None = None) -> dict[str, Any]:
+            outlier_quantile: float | None = None, make_live: bool | None = None,
+            upload_progress: Callable[[int, int], None] | None = None) -> dict[str, Any]:
         """Fit a new version and return its fit report (waits until the fit is done).
 
         Parameters left at None take the server's defaults; ``components=None`` means no PCA (leave it out for
         the default). ``k`` is an int, a ``(min, max)`` pair or ``{"min": .., "max": ..}``.
+        ``upload_progress(bytes handed to the connection, total bytes)`` is called per 1 MiB chunk of a CSV
+        body (a DataFrame or a file); the fit itself reports no progress until background fits exist.
         """
         given = {"features": features, "id_column": id_column, "scaling": scaling, "method": method,
                  "linkage": linkage, "k": _k_range(k), "selection": selection, "n_init": n_init, "seed": seed,
@@ -167,7 +170,7 @@ class Client:
         path = self._path(name, "fit")
         if isinstance(data, list):
             return self._request("POST", path, document={"records": data, **params}, timeout=self._fit_timeout)
-        return self._request("POST", path, params=_query_form(params), content=_csv_content(data),
+        return self._request("POST", path, params=_query_form(params), content=_csv_content(data, upload_progress),
                              content_type="text/csv", timeout=self._fit_timeout)
 
     def promote(self, name: str, version: int) -> dict[str, Any]:
@@ -437,17 +440,20 @@ def _query_form(params: Mapping[str, Any]) -> dict[str, str]:
     return query
 
 
-def _csv_content(data: Any) -> bytes | Iterator[bytes]:
-    """A DataFrame as CSV bytes, or a CSV file's bytes streamed in chunks (checked readable first)."""
+def _csv_content(data: Any, progress: Callable[[int, int], None] | None = None) -> bytes | Iterator[bytes]:
+    """A DataFrame as CSV bytes, or a CSV file's bytes streamed in chunks (checked readable first).
+    With ``progress``, the body is handed over in chunks and ``progress(bytes so far, total)`` follows each."""
     if isinstance(data, pd.DataFrame):
-        return data.to_csv(index=False).encode("utf-8")
+        body = data.to_csv(index=False).encode("utf-8")
+        return body if progress is None else _counted(iter([body]), len(body), progress)
     if isinstance(data, (str, os.PathLike)):
         path = Path(data)
         if not path.is_file():
             raise LocalInputError(f"{path}: no such file")
         if not os.access(path, os.R_OK):
             raise LocalInputError(f"{path}: the file is not readable")
-        return _file_chunks(path)
+        chunks = _file_chunks(path)
+        return chunks if progress is None else _counted(chunks, path.stat().st_size, progress)
     raise LocalInputError(f"expected a list of records, a DataFrame or a CSV file path; got {type(data).__name__}")
 
 
@@ -456,3 +462,13 @@ def _file_chunks(path: Path) -> Iterator[bytes]:
     with path.open("rb") as handle:
         while chunk := handle.read(UPLOAD_CHUNK_BYTES):
             yield chunk
+
+
+def _counted(chunks: Iterator[bytes], total: int, progress: Callable[[int, int], None]) -> Iterator[bytes]:
+    done = 0
+    for chunk in chunks:
+        for start in range(0, len(chunk), UPLOAD_CHUNK_BYTES):
+            piece = chunk[start:start + UPLOAD_CHUNK_BYTES]
+            yield piece
+            done += len(piece)
+            progress(done, total)

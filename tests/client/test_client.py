@@ -390,3 +390,19 @@ def test_a_feature_name_with_a_comma_cannot_go_in_the_csv_form(api, wine_frame):
         api.fit(NAME, frame, features=["alcohol, % vol", "hue"], k=2)
     records = json.loads(frame[["alcohol, % vol", "hue"]].to_json(orient="records", double_precision=15))
     assert api.fit(NAME, records, features=["alcohol, % vol", "hue"], k=2)["features"] == ["alcohol, % vol", "hue"]
+
+
+@pytest.mark.parametrize("form", ["file", "frame"])
+def test_fit_upload_progress_counts_every_byte(api, tmp_path, form, monkeypatch):
+    import service.client._client as client_module
+
+    monkeypatch.setattr(client_module, "UPLOAD_CHUNK_BYTES", 1000)      # several chunks from a small body
+    rng = np.random.default_rng(0)
+    frame = pd.DataFrame(rng.normal(size=(300, 3)), columns=["a", "b", "c"])
+    path = tmp_path / "rows.csv"
+    frame.to_csv(path, index=False)
+    seen = []
+    api.fit(NAME, path if form == "file" else frame, k=2, upload_progress=lambda done, total: seen.append((done, total)))
+    size = path.stat().st_size
+    assert len(seen) == -(-size // 1000) and seen[-1] == (size, size)
+    assert [done for done, _ in seen] == sorted(done for done, _ in seen)
