@@ -90,13 +90,3 @@ def test_feature_order_maps_names_and_names_the_difference():
     assert "only in the first version: ['x']" in item["message"]
     assert "only in the second version: ['y', 'z']" in item["message"]
 
-
-def test_the_module_imports_no_web_or_store_code():
-    import subprocess
-    import sys
-
-    code = ("import sys, service.core.compare;"
-            "print(','.join(m for m in ('fastapi', 'starlette', 'pydantic', 'schemas', 'service.store') "
-            "if m in sys.modules))")
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    assert out.stdout.strip() == ""
