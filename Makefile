@@ -23,7 +23,7 @@ demo: $(STAMP)  ## run the service on 127.0.0.1:8000 with the demo segmentation
 	$(BIN)/segscore serve --demo
 
 test: $(STAMP)  ## run the whole test suite (and a lint for undefined or unused names)
-	$(BIN)/ruff check --quiet --select F,E9 service schemas tests bench
+	$(BIN)/ruff check --quiet --select F,E9 service schemas segscore tests bench
 	$(BIN)/python -m pytest -n 2 -q
 
 bench: $(STAMP)  ## in-process benchmarks (figures for the README)

@@ -1,6 +1,7 @@
 """Pydantic v2 models of the HTTP contract (requests and responses). No numpy types on the wire."""
 
 from schemas.assign import AssignResponse, AssignResult
+from schemas.compare import LabelSuggestion, SegmentMatch, VersionComparison
 from schemas.common import ErrorItem, ErrorResponse
 from schemas.drift import DriftReport, DriftReportList
 from schemas.fit import FitReport, FitRequest, KRange, LabelUpdate, LiveUpdate, Segment
@@ -8,6 +9,7 @@ from schemas.segmentation import Event, SegmentationDetail, SegmentationList, Se
 
 __all__ = [
     "AssignResponse", "AssignResult", "DriftReport", "DriftReportList", "ErrorItem", "ErrorResponse", "Event",
-    "FitReport", "FitRequest", "KRange", "LabelUpdate", "LiveUpdate", "Segment", "SegmentationDetail",
-    "SegmentationList", "SegmentationSummary", "VersionSummary",
+    "FitReport", "FitRequest", "KRange", "LabelSuggestion", "LabelUpdate", "LiveUpdate", "Segment",
+    "SegmentMatch", "SegmentationDetail", "SegmentationList", "SegmentationSummary", "VersionComparison",
+    "VersionSummary",
 ]

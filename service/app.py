@@ -20,7 +20,7 @@ from fastapi.staticfiles import StaticFiles
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service import __version__, console
-from service.api import assign, charts, drift, health, segmentations
+from service.api import assign, charts, compare, drift, health, segmentations
 from service.api.validation import problems_from_pydantic
 from service.auth import KEY_POLL_SECONDS, KeyRing, is_loopback
 from service.charts import ChartCache
@@ -200,7 +200,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                     len(legacy), *legacy[0], settings.store_dir)
     app.state.metrics = metrics
     app.state.chart_cache = ChartCache(settings.chart_cache_size)
-    for router in (segmentations.router, assign.router, drift.router, charts.router):
+    for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router):
         app.include_router(router, prefix="/v1")
     app.include_router(health.router)
     console.install(app)

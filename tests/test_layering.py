@@ -5,6 +5,8 @@ from __future__ import annotations
 import subprocess
 import sys
 
+import pytest
+
 from service.app import STATUS_BY_ERROR, status_for
 from service.errors import ServiceError
 
@@ -54,3 +56,15 @@ def test_every_service_error_has_an_http_status():
     assert status_for(BundleCorrupt("x", 1)) == 500
     assert status_for(StoreUnavailable()) == 503
 
+
+@pytest.mark.parametrize(
+    "module, forbidden",
+    [("service.core.compare", ("fastapi", "starlette", "pydantic", "schemas", "service.store")),
+     # The client talks HTTP only: no server, numerical or contract code comes with it.
+     ("segscore.client", ("fastapi", "starlette", "sklearn", "service.app", "service.core", "schemas"))],
+    ids=["core-compare", "client"],
+)
+def test_module_imports_nothing_above_it(module, forbidden):
+    code = f"import sys, {module}; print(','.join(m for m in {forbidden!r} if m in sys.modules))"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == ""

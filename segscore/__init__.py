@@ -1,0 +1,1 @@
+"""Short import paths for users of segscore: ``from segscore.client import Client``."""

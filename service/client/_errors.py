@@ -1,0 +1,125 @@
+"""Errors the client raises. Catch ``SegscoreError`` for all of them.
+
+    SegscoreError
+    ├── ServerUnreachable        no answer: connection refused, DNS failure, timeout, broken connection
+    ├── UnexpectedResponse       a 2xx answer whose body is not the JSON the contract promises
+    ├── ApiError                 the server answered 4xx or 5xx; ``status`` and ``detail`` as it sent them
+    │   ├── BadRequest           400  body is not valid JSON or CSV
+    │   ├── Unauthorized         401  no or unknown API key
+    │   ├── Forbidden            403  the key lacks the endpoint's scope
+    │   ├── NotFound             404  unknown segmentation, version or segment
+    │   ├── Conflict             409  e.g. no live version
+    │   ├── PayloadTooLarge      413  body or row count over the server's limit
+    │   ├── InvalidInput         422  valid JSON/CSV whose content cannot be used (items name record and field)
+    │   └── ServerError          5xx
+    └── LocalInputError          a problem found before anything was sent (a file, a column name, an argument)
+
+A command line sitting on this client maps ``ApiError`` and ``ServerUnreachable`` to "the server refused or
+could not be reached" and ``LocalInputError`` to "a usage or local file problem".
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+
+class SegscoreError(Exception):
+    """Base of every error this client raises on purpose."""
+
+
+class ServerUnreachable(SegscoreError):
+    """The server could not be reached or the connection failed."""
+
+    def __init__(self, url: str, cause: Exception) -> None:
+        self.url = url
+        self.cause = cause
+        reason = str(cause) or type(cause).__name__
+        super().__init__(f"no answer from {url}: {reason} (is the server running, and is the URL right?)")
+
+
+class UnexpectedResponse(SegscoreError):
+    """A successful status with a body that is not the expected JSON (a proxy's page, say)."""
+
+    def __init__(self, status: int, content_type: str) -> None:
+        self.status = status
+        super().__init__(f"the server answered {status} with {content_type or 'no content type'}, not JSON; "
+                         "is the URL that of a segscore server?")
+
+
+def _describe(detail: Any) -> str:
+    """The server's ``detail`` in one line: a string as is, 422 items as 'record 3, field x: message'."""
+    if isinstance(detail, list):
+        parts = []
+        for item in detail[:5]:
+            if isinstance(item, dict):
+                where = ", ".join(f"{key} {item[key]}" for key in ("record", "field") if item.get(key) not in
+                                  (None, ""))
+                parts.append(f"{where}: {item.get('message', '')}" if where else str(item.get("message", item)))
+            else:
+                parts.append(str(item))
+        more = f" (and {len(detail) - 5} more)" if len(detail) > 5 else ""
+        return "; ".join(parts) + more
+    return str(detail)
+
+
+class ApiError(SegscoreError):
+    """The server refused the request: ``status`` is the HTTP status, ``detail`` the body's ``detail``."""
+
+    def __init__(self, status: int, detail: Any, *, method: str = "", path: str = "") -> None:
+        self.status = status
+        self.detail = detail
+        self.method = method
+        self.path = path
+        where = f" ({method} {path})" if method else ""
+        super().__init__(f"{status}{where}: {_describe(detail)}")
+
+    def __repr__(self) -> str:
+        return f"{type(self).__name__}(status={self.status}, detail={self.detail!r})"
+
+
+class BadRequest(ApiError):
+    """400: the body is not valid JSON or CSV."""
+
+
+class Unauthorized(ApiError):
+    """401: no API key, or an unknown one."""
+
+
+class Forbidden(ApiError):
+    """403: the API key lacks the scope this endpoint needs."""
+
+
+class NotFound(ApiError):
+    """404: unknown segmentation, version or segment."""
+
+
+class Conflict(ApiError):
+    """409: the request conflicts with the current state (e.g. no live version)."""
+
+
+class PayloadTooLarge(ApiError):
+    """413: the body or its row count is over the server's limit."""
+
+
+class InvalidInput(ApiError):
+    """422: valid JSON/CSV whose content cannot be used; ``detail`` items name the record and field."""
+
+
+class ServerError(ApiError):
+    """5xx: the server failed; its log says why."""
+
+
+class LocalInputError(SegscoreError):
+    """A problem found before anything was sent: an unreadable file, a column clash, a bad argument."""
+
+
+ERROR_BY_STATUS: dict[int, type[ApiError]] = {
+    400: BadRequest, 401: Unauthorized, 403: Forbidden, 404: NotFound, 409: Conflict, 413: PayloadTooLarge,
+    422: InvalidInput,
+}
+
+
+def api_error(status: int, detail: Any, *, method: str = "", path: str = "") -> ApiError:
+    """The most specific ApiError class for ``status``."""
+    cls = ERROR_BY_STATUS.get(status, ServerError if status >= 500 else ApiError)
+    return cls(status, detail, method=method, path=path)
