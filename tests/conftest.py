@@ -12,6 +12,7 @@ from sklearn.datasets import load_iris, load_wine
 
 from service.app import create_app
 from service.settings import Settings
+from service.store import FilesystemStore
 
 
 @pytest.fixture(scope="session")
@@ -77,15 +78,10 @@ def client(settings):
         yield test_client
 
 
-@pytest.fixture
-def app_with_keys(tmp_path):
-    """``make(keys)`` -> an app whose API keys are ``keys`` ({key: [scopes]}).
-
-    The one place the chart and console tests create keys; today keys are a setting. The app's store is
-    ``tmp_path / "store"``, so a test may copy a fitted store there first."""
-    def make(keys: dict[str, list[str]]):
-        return create_app(Settings(store_dir=tmp_path / "store", api_keys=keys))
-    return make
+def create_keys(store_dir, scopes_by_name: dict[str, list[str]]) -> dict[str, str]:
+    """The one way tests create API keys: in the store, as ``segscore keys create`` does. -> {name: key}."""
+    store = FilesystemStore(store_dir)
+    return {name: store.create_key(name, scopes) for name, scopes in scopes_by_name.items()}
 
 
 def png_size(body: bytes) -> tuple[int, int]:

@@ -50,8 +50,7 @@ PAGE_HEADERS = {
 
 
 def _page(request: Request, template: str, status: int = 200, **context: Any) -> Response:
-    settings = request.app.state.settings
-    context.setdefault("auth_enabled", settings.auth_enabled)
+    context.setdefault("auth_enabled", request.app.state.keyring.auth_required)
     return TEMPLATES.TemplateResponse(request, template, context, status_code=status, headers=PAGE_HEADERS)
 
 
@@ -93,7 +92,7 @@ def _not_found(request: Request, error: NotFound) -> Response:
 # --------------------------------------------------------------------------- session
 @router.get("/login")
 def login_form(request: Request, next_path: str | None = Query(None, alias="next")) -> Response:
-    if not request.app.state.settings.auth_enabled:
+    if not request.app.state.keyring.auth_required:
         return RedirectResponse(_safe_next(next_path), status_code=303)
     return _page(request, "login.html", message=None, next_path=_safe_next(next_path))
 
@@ -104,7 +103,7 @@ async def login(request: Request) -> Response:
     form = parse_qs(body[:MAX_LOGIN_BODY].decode("utf-8", errors="replace"))
     key = form.get("key", [""])[0].strip()
     next_path = _safe_next(form.get("next", [None])[0])
-    if not request.app.state.settings.auth_enabled:
+    if not request.app.state.keyring.auth_required:
         return RedirectResponse(next_path, status_code=303)
     try:
         authorize(request, key, "read")

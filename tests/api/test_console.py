@@ -17,12 +17,10 @@ from fastapi.testclient import TestClient
 from service.app import create_app
 from service.deps import CONSOLE_COOKIE
 from service.settings import Settings
-from tests.conftest import records_from
+from tests.conftest import create_keys, records_from
 from tests.html_page import Page
 
 NAME = "shop"
-FIT_KEY = "fit-key-0123456789abcdef"
-READ_KEY = "read-key-0123456789abcdef"
 CHART_PREFIX = f"/v1/segmentations/{NAME}/"
 
 
@@ -134,8 +132,25 @@ def test_segmentation_page_shows_events_when_the_segmentation_has_them(fitted_st
     assert "<b>tall</b>" not in response.text and "&lt;b&gt;tall&lt;/b&gt;" in response.text  # escaped
 
 
-def test_without_events_there_is_no_event_section(console):
-    assert "events" not in html(console.get(f"/console/segmentations/{NAME}")).rows
+def test_the_stored_events_are_shown(console):
+    # The store records an event for every write (here: two fits and two drift reports, by the local actor).
+    rows = html(console.get(f"/console/segmentations/{NAME}")).rows["events"]
+    stored = console.get(f"/v1/segmentations/{NAME}").json()["events"]
+    assert len(rows) == len(stored) > 0
+
+
+def test_without_events_there_is_no_event_section(fitted_store, tmp_path):
+    # A segmentation detail without an 'events' field (as before the store recorded events) shows no section.
+    shutil.copytree(fitted_store, tmp_path / "store")
+    app = create_app(Settings(store_dir=tmp_path / "store"))
+    plain_detail = app.state.store.get_segmentation
+
+    def without_events(name):
+        return {key: value for key, value in plain_detail(name).items() if key != "events"}
+
+    app.state.store.get_segmentation = without_events
+    with TestClient(app) as client:
+        assert "events" not in html(client.get(f"/console/segmentations/{NAME}")).rows
 
 
 def test_drift_report_page(console, iris):
@@ -174,9 +189,15 @@ def test_without_keys_the_console_is_open_and_login_goes_straight_in(console):
 
 # --------------------------------------------------------------------------- pages, auth on
 @pytest.fixture
-def secured(app_with_keys, fitted_store, tmp_path):
+def keys(fitted_store, tmp_path) -> dict[str, str]:
+    """The fitted store copied to ``tmp_path / "store"`` with a 'fit' key and a 'read' key: {name: key}."""
     shutil.copytree(fitted_store, tmp_path / "store")
-    with TestClient(app_with_keys({FIT_KEY: ["fit"], READ_KEY: ["read"]})) as client:
+    return create_keys(tmp_path / "store", {"fit": ["fit"], "read": ["read"]})
+
+
+@pytest.fixture
+def secured(keys, tmp_path):
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store"))) as client:
         yield client
 
 
@@ -209,19 +230,19 @@ def test_a_wrong_bearer_key_gets_the_login_form(secured):
         assert_login_form_without_data(response, 401)
 
 
-def test_a_key_without_read_gets_the_login_form(secured):
-    secured.cookies.set(CONSOLE_COOKIE, FIT_KEY)
+def test_a_key_without_read_gets_the_login_form(secured, keys):
+    secured.cookies.set(CONSOLE_COOKIE, keys["fit"])
     for path in secured_pages(secured):
         assert_login_form_without_data(secured.get(path), 403)
 
 
-def test_a_bearer_header_with_read_opens_the_pages(secured):
+def test_a_bearer_header_with_read_opens_the_pages(secured, keys):
     for path in secured_pages(secured):
-        assert secured.get(path, headers={"Authorization": f"Bearer {READ_KEY}"}).status_code == 200
+        assert secured.get(path, headers={"Authorization": f"Bearer {keys['read']}"}).status_code == 200
 
 
-def test_login_keeps_the_key_in_an_http_only_strict_cookie(secured):
-    response = secured.post("/console/login", data={"key": READ_KEY, "next": f"/console/segmentations/{NAME}"},
+def test_login_keeps_the_key_in_an_http_only_strict_cookie(secured, keys):
+    response = secured.post("/console/login", data={"key": keys["read"], "next": f"/console/segmentations/{NAME}"},
                             follow_redirects=False)
     assert response.status_code == 303
     assert response.headers["location"] == f"/console/segmentations/{NAME}"
@@ -237,16 +258,16 @@ def test_login_keeps_the_key_in_an_http_only_strict_cookie(secured):
         assert secured.get(src).status_code == 200
 
 
-def test_login_over_https_marks_the_cookie_secure(app_with_keys, fitted_store, tmp_path):
-    shutil.copytree(fitted_store, tmp_path / "store")
-    with TestClient(app_with_keys({READ_KEY: ["read"]}), base_url="https://testserver") as client:
-        response = client.post("/console/login", data={"key": READ_KEY}, follow_redirects=False)
+def test_login_over_https_marks_the_cookie_secure(keys, tmp_path):
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store")), base_url="https://testserver") as client:
+        response = client.post("/console/login", data={"key": keys["read"]}, follow_redirects=False)
     assert "secure" in {part.strip().lower() for part in response.headers["set-cookie"].split(";")}
 
 
-@pytest.mark.parametrize("key, status", [("not-a-key-of-this-service", 401), ("", 401), (FIT_KEY, 403)],
+@pytest.mark.parametrize("key, status", [("not-a-key-of-this-service", 401), ("", 401), ("fit", 403)],
                          ids=["unknown", "empty", "no-read-scope"])
-def test_login_with_a_bad_key_sets_no_cookie(secured, key, status):
+def test_login_with_a_bad_key_sets_no_cookie(secured, keys, key, status):
+    key = keys.get(key, key)             # "fit" names the stored key without 'read'; the others are literal
     response = secured.post("/console/login", data={"key": key}, follow_redirects=False)
     assert_login_form_without_data(response, status)
     assert CONSOLE_COOKIE not in response.headers.get("set-cookie", "")
@@ -254,13 +275,13 @@ def test_login_with_a_bad_key_sets_no_cookie(secured, key, status):
 
 
 @pytest.mark.parametrize("target", ["https://elsewhere.example/", "//elsewhere.example/console", "/v1/segmentations"])
-def test_login_only_returns_to_console_pages(secured, target):
-    response = secured.post("/console/login", data={"key": READ_KEY, "next": target}, follow_redirects=False)
+def test_login_only_returns_to_console_pages(secured, target, keys):
+    response = secured.post("/console/login", data={"key": keys["read"], "next": target}, follow_redirects=False)
     assert response.headers["location"] == "/console"
 
 
-def test_logout_forgets_the_key(secured):
-    secured.post("/console/login", data={"key": READ_KEY}, follow_redirects=False)
+def test_logout_forgets_the_key(secured, keys):
+    secured.post("/console/login", data={"key": keys["read"]}, follow_redirects=False)
     assert secured.get("/console").status_code == 200
     response = secured.post("/console/logout", follow_redirects=False)
     assert response.status_code == 303
