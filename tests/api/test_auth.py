@@ -73,6 +73,11 @@ def _examples(iris) -> dict[tuple[str, str], tuple[str, object, int]]:
         ("POST", "/v1/segmentations/{name}/assign"): (f"{base}/assign", {"records": records_from(iris)[:3]}, 200),
         ("POST", "/v1/segmentations/{name}/drift"): (f"{base}/drift", {"records": records_from(iris)}, 200),
         ("GET", "/v1/segmentations/{name}/drift"): (f"{base}/drift", None, 200),
+        ("GET", "/v1/segmentations/{name}/versions/{v}/compare/{w}"): (f"{base}/versions/1/compare/2", None, 200),
+        # The chart routes also take the console's session cookie (ChartReadScope); here the Bearer header.
+        ("GET", "/v1/segmentations/{name}/versions/{version}/charts/{chart}.png"):
+            (f"{base}/versions/1/charts/map.png", None, 200),
+        ("GET", "/v1/segmentations/{name}/drift/charts/history.png"): (f"{base}/drift/charts/history.png", None, 200),
     }
 
 

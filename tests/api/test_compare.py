@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import joblib
 import numpy as np
 import pytest
 from fastapi.testclient import TestClient
@@ -10,7 +11,7 @@ from sklearn.metrics.cluster import contingency_matrix
 
 from service.app import create_app
 from service.settings import Settings
-from tests.conftest import records_from
+from tests.conftest import create_keys, records_from
 
 NAME = "wines"
 
@@ -82,15 +83,17 @@ def test_table_and_ari_match_scikit_learn_on_the_stored_objects(client, wine):
     _fit(client, records, k=4, method="agglomerative", linkage="ward", scaling="robust", components=None)
     body = _compare(client, 1, 2).json()
 
-    store = client.app.state.store
-    newer = store.load(NAME, 2).bundle
+    # The server serves a pickle-free artifact; the fitted scikit-learn objects are the analysts' copy the
+    # store writes beside it (models_store/README.md: segmentations/<name>/v00000N.joblib).
+    folder = client.app.state.store.root / "segmentations" / NAME
+    older, newer = (joblib.load(folder / f"v{version:06d}.joblib") for version in (1, 2))
     sample = newer.reference.sample
     assert np.isnan(sample).any()
 
     def labels(bundle):
         return pairwise_distances_argmin(bundle.project(bundle.scaled(sample)), bundle.centroids)
 
-    first, second = labels(store.load(NAME, 1).bundle), labels(newer)
+    first, second = labels(older), labels(newer)
     expected = contingency_matrix(first, second)
     assert expected.shape == (3, 4)            # every segment holds sample rows, so the shapes agree
     assert body["contingency"] == expected.tolist()
@@ -153,10 +156,9 @@ def test_min_share_outside_its_range_is_422(client, wine, min_share):
 
 
 def test_compare_needs_the_read_scope(tmp_path, iris):
-    fit_key, read_key, assign_key = "fit-key-0123456789abcd", "read-key-0123456789abcd", "assign-key-0123456789ab"
-    settings = Settings(store_dir=tmp_path / "store",
-                        api_keys={fit_key: ["fit"], read_key: ["read"], assign_key: ["assign"]})
-    with TestClient(create_app(settings)) as secured:
+    keys = create_keys(tmp_path / "store", {"fit": ["fit"], "read": ["read"], "assign": ["assign"]})
+    fit_key, read_key, assign_key = keys["fit"], keys["read"], keys["assign"]
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store"))) as secured:
         secured.post(f"/v1/segmentations/{NAME}/fit", json={"records": records_from(iris), "k": 2},
                      headers={"Authorization": f"Bearer {fit_key}"})
         path = f"/v1/segmentations/{NAME}/versions/1/compare/1"

@@ -31,7 +31,7 @@ from segscore.client import (
 from service.app import STATUS_BY_ERROR, create_app
 from service.client._errors import ERROR_BY_STATUS
 from service.settings import Settings
-from tests.conftest import records_from
+from tests.conftest import create_keys, records_from
 
 NAME = "wines"
 
@@ -273,10 +273,9 @@ def test_label_promote_compare_and_carry_labels(api, wine):
 
 # ----------------------------------------------------------------------------------------------- auth, errors
 def test_keys_and_scopes(tmp_path, wine_frame):
-    read_key, all_key = "read-key-0123456789abcdef", "all-key-0123456789abcdef"
-    settings = Settings(store_dir=tmp_path / "store",
-                        api_keys={read_key: ["read"], all_key: ["fit", "read", "assign", "drift"]})
-    with TestClient(create_app(settings)) as secured:
+    keys = create_keys(tmp_path / "store", {"read": ["read"], "all": ["fit", "read", "assign", "drift"]})
+    read_key, all_key = keys["read"], keys["all"]
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store"))) as secured:
         with pytest.raises(Unauthorized) as caught:
             Client(http=secured).segmentations()
         assert caught.value.status == 401
