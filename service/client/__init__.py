@@ -19,6 +19,7 @@ from service.client._client import (
 from service.client._errors import (
     ApiError,
     BadRequest,
+    BodyTimeout,
     Conflict,
     Forbidden,
     InvalidInput,
@@ -30,10 +31,12 @@ from service.client._errors import (
     ServerUnreachable,
     Unauthorized,
     UnexpectedResponse,
+    UnsupportedMediaType,
 )
 
 __all__ = [
     "ASSIGN_BATCH_ROWS", "DEFAULT_URL", "KEY_VARIABLE", "RESULT_COLUMNS", "URL_VARIABLE", "ApiError", "BadRequest",
-    "Client", "Conflict", "Forbidden", "InvalidInput", "LocalInputError", "NotFound", "PayloadTooLarge",
+    "BodyTimeout", "Client", "Conflict", "Forbidden", "InvalidInput", "LocalInputError", "NotFound", "PayloadTooLarge",
     "SegscoreError", "ServerError", "ServerUnreachable", "Unauthorized", "UnexpectedResponse",
+    "UnsupportedMediaType",
 ]

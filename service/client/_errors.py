@@ -8,8 +8,10 @@
     │   ├── Unauthorized         401  no or unknown API key
     │   ├── Forbidden            403  the key lacks the endpoint's scope
     │   ├── NotFound             404  unknown segmentation, version or segment
+    │   ├── BodyTimeout          408  the request body stopped arriving before the server's time limit
     │   ├── Conflict             409  e.g. no live version
     │   ├── PayloadTooLarge      413  body or row count over the server's limit
+    │   ├── UnsupportedMediaType 415  the body is neither JSON nor CSV (by its Content-Type)
     │   ├── InvalidInput         422  valid JSON/CSV whose content cannot be used (items name record and field)
     │   └── ServerError          5xx
     └── LocalInputError          a problem found before anything was sent (a file, a column name, an argument)
@@ -93,12 +95,20 @@ class NotFound(ApiError):
     """404: unknown segmentation, version or segment."""
 
 
+class BodyTimeout(ApiError):
+    """408: the request body stopped arriving; the server closed the connection."""
+
+
 class Conflict(ApiError):
     """409: the request conflicts with the current state (e.g. no live version)."""
 
 
 class PayloadTooLarge(ApiError):
     """413: the body or its row count is over the server's limit."""
+
+
+class UnsupportedMediaType(ApiError):
+    """415: the body's Content-Type is neither JSON nor CSV."""
 
 
 class InvalidInput(ApiError):
@@ -114,8 +124,8 @@ class LocalInputError(SegscoreError):
 
 
 ERROR_BY_STATUS: dict[int, type[ApiError]] = {
-    400: BadRequest, 401: Unauthorized, 403: Forbidden, 404: NotFound, 409: Conflict, 413: PayloadTooLarge,
-    422: InvalidInput,
+    400: BadRequest, 401: Unauthorized, 403: Forbidden, 404: NotFound, 408: BodyTimeout, 409: Conflict,
+    413: PayloadTooLarge, 415: UnsupportedMediaType, 422: InvalidInput,
 }
 
 
