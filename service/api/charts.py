@@ -16,6 +16,7 @@ from fastapi.responses import Response
 
 from service import charts
 from service.api.payload import check_name
+from service.api.validation import StrictQuery, error_responses
 from service.core.assign import assign, impute
 from service.deps import ChartReadScope, StoreDep
 from service.errors import ChartNotFound
@@ -26,7 +27,8 @@ router = APIRouter(prefix="/segmentations", tags=["charts"])
 VERSION_CHARTS = ("selection", "map", "profiles")
 HISTORY_REPORTS = 50          # the drift history chart shows at most this many of the newest reports
 PNG_HEADERS = {"Cache-Control": "private, no-cache"}   # the server caches; browsers ask again each time
-PNG_RESPONSE = {200: {"content": {"image/png": {}}, "description": "a PNG image"}}
+PNG_RESPONSE = {200: {"content": {"image/png": {}}, "description": "a PNG image"},
+                **error_responses(401, 403, 404, 422, 503)}
 
 
 def _map_png(store: FilesystemStore, report: dict[str, Any]) -> bytes:
@@ -71,7 +73,7 @@ def history_chart_png(request: Request, store: FilesystemStore, name: str) -> by
 
 
 # Plain ``def`` routes: drawing is CPU work and store reads block, so FastAPI runs them in its thread pool.
-@router.get("/{name}/versions/{version}/charts/{chart}.png", dependencies=[ChartReadScope],
+@router.get("/{name}/versions/{version}/charts/{chart}.png", dependencies=[ChartReadScope, StrictQuery],
             response_class=Response, responses=PNG_RESPONSE,
             summary="A chart of a version as PNG: selection, map or profiles")
 def version_chart(name: str, version: int, chart: str, request: Request, store: StoreDep) -> Response:
@@ -79,7 +81,7 @@ def version_chart(name: str, version: int, chart: str, request: Request, store: 
                     headers=PNG_HEADERS)
 
 
-@router.get("/{name}/drift/charts/history.png", dependencies=[ChartReadScope], response_class=Response,
+@router.get("/{name}/drift/charts/history.png", dependencies=[ChartReadScope, StrictQuery], response_class=Response,
             responses=PNG_RESPONSE, summary="Per-feature PSI of the stored drift reports over time, as PNG")
 def drift_history_chart(name: str, request: Request, store: StoreDep) -> Response:
     return Response(history_chart_png(request, store, name), media_type="image/png", headers=PNG_HEADERS)

@@ -8,6 +8,7 @@ from fastapi import APIRouter, Query
 
 from schemas import VersionComparison
 from service.api.payload import check_name
+from service.api.validation import StrictQuery, error_responses
 from service.core.compare import SUGGESTION_MIN_SHARE, Crosswalk, Match, compare_versions
 from service.deps import ReadScope, StoreDep
 
@@ -38,8 +39,9 @@ def comparison_body(name: str, v: int, w: int, sample_version: int, features: li
     }
 
 
-@router.get("/{name}/versions/{v}/compare/{w}", response_model=VersionComparison, dependencies=[ReadScope],
-            summary="How the segments of version v map onto those of version w")
+@router.get("/{name}/versions/{v}/compare/{w}", response_model=VersionComparison, dependencies=[ReadScope, StrictQuery],
+            summary="How the segments of version v map onto those of version w",
+            responses=error_responses(401, 403, 404, 422, 500, 503))
 def compare(
     name: str,
     v: int,
