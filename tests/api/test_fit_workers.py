@@ -44,9 +44,12 @@ def pid_alive(pid: int) -> bool:
 
 
 def test_a_fit_past_its_time_limit_is_stopped_and_writes_nothing(tmp_path, iris):
-    with TestClient(create_app(Settings(store_dir=tmp_path / "store", fit_time_limit_seconds=1.0))) as client:
+    # Version 1 is fitted under the default limit: how long a small fit takes depends on the machine's load,
+    # and no test asserts a duration. The slow fit (many seconds of work) is the one past the 1 s limit.
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store"))) as client:
         assert client.post(f"/v1/segmentations/{NAME}/fit", json={"records": records_from(iris), "k": 2}
-                           ).status_code == 201          # an ordinary fit finishes within the limit
+                           ).status_code == 201
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store", fit_time_limit_seconds=1.0))) as client:
         seen: list[int] = []
         watcher = threading.Thread(target=lambda: [seen.extend(running_fit_workers()) or time.sleep(0.05)
                                                    for _ in range(200) if not seen])
