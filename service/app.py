@@ -21,7 +21,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service import __version__, console
 from service.api import assign, charts, compare, drift, health, segmentations
-from service.api.validation import problems_from_pydantic
+from service.api.validation import body_model_keys, problems_from_pydantic
 from service.auth import KEY_POLL_SECONDS, KeyRing, is_loopback
 from service.charts import ChartCache
 from service.errors import (
@@ -86,7 +86,9 @@ async def _service_error(request: Request, exc: ServiceError) -> JSONResponse:
 
 
 async def _validation_error(request: Request, exc: RequestValidationError) -> JSONResponse:
-    items = [p.as_dict() for p in problems_from_pydantic(exc.errors(), skip_prefix=("body", "query", "path"))]
+    known = body_model_keys(request.scope.get("route"))
+    items = [p.as_dict() for p in problems_from_pydantic(exc.errors(), skip_prefix=("body", "query", "path"),
+                                                         known_keys=known)]
     return JSONResponse({"detail": items}, status_code=422)
 
 

@@ -9,8 +9,8 @@ from typing import Annotated, Any, Literal
 import anyio
 import orjson
 from fastapi import APIRouter, Query, Request
-from pydantic import BeforeValidator
 from fastapi.responses import Response
+from pydantic import BeforeValidator
 
 from schemas import DriftReport, DriftReportList
 from schemas.assign import AssignRequest
@@ -49,9 +49,9 @@ def _now() -> str:
 
 
 def build_and_store(store: FilesystemStore, loaded: LoadedVersion, values, rules: DriftRules,
-                    errors: list[dict[str, Any]]) -> dict[str, Any]:
+                    errors: list[dict[str, Any]], rows=None) -> dict[str, Any]:
     """Assign (fast path), compute the report, check it against the schema, store it. CPU-bound: run in a thread."""
-    assignment, _ = run_assignment(loaded, values)
+    assignment, _ = run_assignment(loaded, values, rows)     # rows: input indices, for error items
     body = compute_drift(loaded.bundle.reference, loaded.bundle.features, values, assignment, rules=rules,
                          residual_available=loaded.compiled.has_residual,
                          labels=store.labels(loaded.name, loaded.version))
@@ -86,7 +86,8 @@ async def create_drift_report(
             None, "records", f"the batch has {rows.size} {usable}; a drift report needs at least "
             f"{settings.drift_min_rows} (setting SEGSCORE_DRIFT_MIN_ROWS)")])
     values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]
-    report = await anyio.to_thread.run_sync(build_and_store, store, loaded, values, drift_rules(settings), errors)
+    report = await anyio.to_thread.run_sync(build_and_store, store, loaded, values, drift_rules(settings), errors,
+                                            rows)
     request.app.state.metrics.drift_reports.labels(report["status"]).inc()
     return Response(orjson.dumps(report), media_type="application/json")
 

@@ -24,8 +24,8 @@ from service.api.payload import (
 from service.api.validation import (
     SegmentNumber,
     StrictQuery,
-    error_responses,
     VersionNumber,
+    error_responses,
     printable,
     unknown_query_problem,
     validate_model,

@@ -345,3 +345,16 @@ def test_assign_never_answers_a_null_distance(client):
     assert [item["record"] for item in response.json()["detail"]] == [0]
     ok = client.post(f"{BASE}/assign", json={"records": [{"x": 2e-100, "y": 3e-100}]})
     assert ok.status_code == 200 and ok.json()["results"][0]["distance"] is not None
+
+
+@pytest.mark.parametrize("path, method, body, hint", [
+    (f"{BASE}/live", "put", {"verison": 1}, "did you mean 'version'"),
+    (f"{BASE}/versions/1/segments/0", "patch", {"lable": "x"}, "did you mean 'label'"),
+])
+def test_unknown_keys_of_small_bodies_get_a_hint(shop, path, method, body, hint):
+    client, settings = shop
+    before = _state(client, settings)
+    response = getattr(client, method)(path, json=body)
+    assert response.status_code == 422
+    assert any(hint in item["message"] for item in response.json()["detail"])
+    assert _state(client, settings) == before
