@@ -206,7 +206,8 @@ def _assign_direct(compiled: CompiledBundle, values: np.ndarray):
 
 def _project_chunk(compiled: CompiledBundle, chunk: np.ndarray, tail_sq: np.ndarray) -> np.ndarray:
     """(d, rows) clustering coordinates of a chunk, one row per dimension; writes squared residuals to tail_sq."""
-    u_t = (chunk - compiled.centre).T                     # (p, rows): the centre first (no cancellation)
+    # (p, rows), contiguous so that every step below runs along whole rows: the centre first (no cancellation).
+    u_t = np.subtract(chunk.T, compiled.centre[:, None])
     u_t *= compiled.scale[:, None]
     u_t -= compiled.space_centre[:, None]
     if compiled.axes is None:

@@ -15,9 +15,6 @@ import tracemalloc
 
 import numpy as np
 import pytest
-from sklearn.cluster import KMeans
-from sklearn.decomposition import PCA
-from sklearn.preprocessing import StandardScaler
 from threadpoolctl import threadpool_limits
 
 from service.core.assign import assign, compile_bundle
@@ -122,7 +119,7 @@ def test_small_segment_borrows_the_pooled_threshold_and_is_not_flagged_wholesale
 def test_every_p_value_is_calibrated_under_the_null(n_train):
     # Reference: the definition of a p-value. 200 independent (training, batch) pairs from the drift model per
     # batch size; every p-value (and q-value) the report shows is below 0.01 in about 1 % of them. Binomial
-    # noise per slot: P(Binomial(200, 0.01) >= 8) = 0.0015, so over ~20 distinct tests a slot may show up to 7
+    # noise per slot: P(Binomial(200, 0.01) >= 8) = 0.001 (scipy.stats.binom.sf), so over ~20 distinct tests a slot may show up to 7
     # of 200 (3.5 %) by chance; the p-values of all real tests pooled (~4,000) must stay at or under 2 %
     # (the bound; SD of the pooled share ~0.16 % at a true 1 %). No batch may be reported "alert".
     found = null_reports(n_train=n_train, batch_sizes=(500, 2_000, 20_000), pairs=200, seed=21)

@@ -103,6 +103,12 @@ def test_psi_smooths_shares_with_jeffreys():
     assert psi(np.array([3, 5, 2]), np.array([3, 5, 2])) == 0.0
 
 
+def test_category_counts_by_value_plus_other():
+    # Hand count: categories 0, 1, 5; values 0 0 1 3 5 5 7 -> 0: 2, 1: 1, 5: 2, other (3 and 7): 2.
+    values = np.sort(np.array([5.0, 0.0, 7.0, 1.0, 0.0, 3.0, 5.0]))
+    assert category_counts(np.array([0.0, 1.0, 5.0]), values).tolist() == [2, 1, 2, 2]
+
+
 def test_bin_counts_use_the_fit_bins():
     # Hand count, bins (-inf, 1], (1, 2], (2, inf) with edges [1, 2]:
     #   0 and 1 -> first; 1.5 and 2 -> second; 3 -> third.
