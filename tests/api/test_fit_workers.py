@@ -101,3 +101,29 @@ def test_a_refusal_inside_the_worker_keeps_its_4xx_and_detail(client, iris, body
     assert response.status_code == 422, response.text
     assert any(p["field"] == field for p in response.json()["detail"]), response.text
     assert client.get("/v1/segmentations").json()["segmentations"] == []
+
+
+def test_fit_concurrency_bounds_the_number_of_worker_processes(tmp_path):
+    # Two slow fits at once with SEGSCORE_FIT_CONCURRENCY=1: never more than one worker; each is then killed
+    # (503) so that the test stays short.
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store", fit_concurrency=1))) as client:
+        results: list = []
+        fitters = [threading.Thread(target=lambda: results.append(post_slow_fit(client))) for _ in range(2)]
+        for fitter in fitters:
+            fitter.start()
+        most, killed = 0, set()
+        deadline = time.monotonic() + 120
+        while len(killed) < 2 and time.monotonic() < deadline:
+            workers = running_fit_workers()
+            most = max(most, len(workers))
+            for pid in workers:
+                if pid not in killed:
+                    time.sleep(0.3)                      # let the other fit try to start a worker meanwhile
+                    most = max(most, len(running_fit_workers()))
+                    os.kill(pid, signal.SIGKILL)
+                    killed.add(pid)
+            time.sleep(0.02)
+        for fitter in fitters:
+            fitter.join(60)
+        assert len(killed) == 2 and most == 1
+        assert sorted(r.status_code for r in results) == [503, 503]

@@ -85,19 +85,6 @@ def crash(store_dir: str, bundle_path: str, point: str, signal_file: str) -> Non
     sys.exit(4)              # not reached: the hold point is always hit
 
 
-def save(store_dir: str, bundle_path: str, name: str, ready_file: str, go_file: str) -> None:
-    bundle = joblib.load(bundle_path)
-    Path(ready_file).write_text("ready")
-    deadline = time.monotonic() + 120
-    while not Path(go_file).exists():
-        if time.monotonic() > deadline:
-            raise SystemExit("no go signal")
-        time.sleep(0.005)
-    store = filesystem.FilesystemStore(store_dir)
-    report = store.save_version(name, bundle, make_live=None)
-    print(report["version"])
-
-
 def _wait_for_go(ready_file: str, go_file: str) -> None:
     Path(ready_file).write_text("ready")
     deadline = time.monotonic() + 120
@@ -105,6 +92,14 @@ def _wait_for_go(ready_file: str, go_file: str) -> None:
         if time.monotonic() > deadline:
             raise SystemExit("no go signal")
         time.sleep(0.001)
+
+
+def save(store_dir: str, bundle_path: str, name: str, ready_file: str, go_file: str) -> None:
+    bundle = joblib.load(bundle_path)
+    _wait_for_go(ready_file, go_file)
+    store = filesystem.FilesystemStore(store_dir)
+    report = store.save_version(name, bundle, make_live=None)
+    print(report["version"])
 
 
 def promote(store_dir: str, name: str, version: str, ready_file: str, go_file: str) -> None:

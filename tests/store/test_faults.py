@@ -20,7 +20,7 @@ import uuid
 from pathlib import Path
 
 from service.store import FilesystemStore
-from tests.store.test_filesystem import CHILD_TIMEOUT, _run_child, _wait_for, artifact_path, sha256_of
+from tests.store.test_filesystem import CHILD_TIMEOUT, artifact_path, run_at_once, sha256_of
 from tests.store.test_filesystem import bundles  # noqa: F401  (fixture)
 
 KILLS = 20
@@ -120,25 +120,7 @@ def test_two_processes_promoting_at_once_leave_one_valid_pointer(tmp_path, bundl
     store = FilesystemStore(root)
     for bundle in (bundles[0], bundles[1], bundles[0]):
         store.save_version("shop", bundle, make_live=None)
-    go = tmp_path / "go"
-    children = []
-    try:
-        for version in (2, 3):
-            ready = tmp_path / f"ready-{version}"
-            children.append((ready, _run_child("promote", str(root), "shop", str(version), str(ready), str(go))))
-        for ready, child in children:
-            _wait_for(ready, child)
-        go.write_text("go")
-        answers = []
-        for _, child in children:
-            out, err = child.communicate(timeout=CHILD_TIMEOUT)
-            assert child.returncode == 0, err
-            answers.append(int(out.strip()))
-    finally:
-        for _, child in children:
-            if child.poll() is None:
-                child.kill()
-                child.wait(30)
+    answers = run_at_once(tmp_path, [["promote", str(root), "shop", "2"], ["promote", str(root), "shop", "3"]])
     assert set(answers) <= {2, 3}
     after = FilesystemStore(root).get_segmentation("shop")
     assert after["live_version"] in (2, 3)                       # one wins

@@ -279,14 +279,15 @@ def test_a_save_killed_mid_write_leaves_the_store_readable(tmp_path, bundles, bu
 
 
 # --------------------------------------------------------------------------- concurrency
-def test_ten_processes_saving_to_one_name_get_versions_1_to_10(tmp_path, bundle_file):
-    root = tmp_path / "store"                   # not created yet: the ten processes race to create it too
+def run_at_once(tmp_path: Path, commands: list[list[str]]) -> list[int]:
+    """Start one child per command (each gets READY_FILE GO_FILE appended), release them together once all are
+    ready, and return the number each printed."""
     go = tmp_path / "go"
     children = []
     try:
-        for i in range(10):
+        for i, command in enumerate(commands):
             ready = tmp_path / f"ready-{i}"
-            children.append((ready, _run_child("save", str(root), str(bundle_file), "shop", str(ready), str(go))))
+            children.append((ready, _run_child(*command, str(ready), str(go))))
         for ready, child in children:
             _wait_for(ready, child)
         go.write_text("go")
@@ -300,6 +301,12 @@ def test_ten_processes_saving_to_one_name_get_versions_1_to_10(tmp_path, bundle_
             if child.poll() is None:
                 child.kill()
                 child.wait(30)
+    return outputs
+
+
+def test_ten_processes_saving_to_one_name_get_versions_1_to_10(tmp_path, bundle_file):
+    root = tmp_path / "store"                   # not created yet: the ten processes race to create it too
+    outputs = run_at_once(tmp_path, [["save", str(root), str(bundle_file), "shop"]] * 10)
     assert sorted(outputs) == list(range(1, 11))
     store = FilesystemStore(root)
     detail = store.get_segmentation("shop")
