@@ -26,6 +26,7 @@ from sklearn.preprocessing import MinMaxScaler, RobustScaler, StandardScaler
 
 from service.core.bundle import Bundle, FitConfig, ReferenceProfile
 from service.core.calibration import Calibration, calibrate
+from service.core.frame import MAX_ABS_VALUE
 from service.errors import InvalidInput, RecordProblem
 
 SCALERS = {"standard": StandardScaler, "robust": RobustScaler, "minmax": MinMaxScaler, "none": None}
@@ -43,6 +44,9 @@ MAX_CATEGORIES = 20
 # cannot be told from rounding, and scaling by it would turn rounding noise into whole standard deviations
 # (every new record an outlier). No customer measurement varies in its tenth significant digit only.
 NEAR_CONSTANT_RTOL = 1e-9
+# A feature whose spread is below this cannot be computed with: its variance (spread squared) leaves float64's
+# normal range (~2.2e-308) and scaling turns it into zeros or NaN. Such a column must be rescaled (other units).
+MIN_SPREAD = 1e-100
 # Segments smaller than this share of the training records (or than TINY_SEGMENT_SIZE records) get a warning.
 TINY_SEGMENT_SHARE = 0.01
 TINY_SEGMENT_SIZE = 5
@@ -51,9 +55,12 @@ _DISTINCT_PROBE_ROWS = 4096
 
 
 def unusable_features(values: np.ndarray, features: list[str]) -> dict[str, str]:
-    """{feature: why} for columns that carry no information: every value missing, or (near-)constant.
+    """{feature: why} for columns the fit cannot use: every value missing, (near-)constant, or of a magnitude
+    whose arithmetic leaves float64's range.
 
-    Near-constant: population std <= NEAR_CONSTANT_RTOL * max |x| over the observed values.
+    Near-constant: population std <= NEAR_CONSTANT_RTOL * max |x| over the observed values. Magnitude: a value
+    beyond MAX_ABS_VALUE (the input limit, checked here again because the core trusts no caller), or a spread
+    below MIN_SPREAD.
     """
     reasons: dict[str, str] = {}
     observed = ~np.isnan(values)
@@ -63,7 +70,14 @@ def unusable_features(values: np.ndarray, features: list[str]) -> dict[str, str]
             reasons[name] = "every value is missing"
             continue
         scale = float(np.max(np.abs(column)))
+        if scale > MAX_ABS_VALUE:
+            reasons[name] = f"a value exceeds the limit |x| <= {MAX_ABS_VALUE:g}; its squares would overflow float64"
+            continue
         spread = float(np.std(column))
+        if 0 < spread < MIN_SPREAD and spread > NEAR_CONSTANT_RTOL * scale:
+            reasons[name] = (f"its spread (std) is below {MIN_SPREAD:g}, too small to compute with in float64; "
+                             "express it in other units")
+            continue
         if spread <= NEAR_CONSTANT_RTOL * scale:
             # No value is quoted: error bodies and reports carry no record values.
             shown = ("constant" if np.ptp(column) == 0

@@ -30,7 +30,7 @@ EXAMPLES = int(os.environ.get("SEGSCORE_CORE_FUZZ_EXAMPLES", "150"))
 GENERATED = {"cases": 0, "refused": 0, "fitted": 0}
 
 
-# Magnitudes that the fit handles today, and the extreme ones it does not yet (see the xfail tests below).
+# Magnitudes the fit computes with, and extreme ones that check_fit_inputs must refuse by name (tests below).
 SCALES = [1.0, 1e100, 1e-100, 1e6, 1e-6]
 EXTREME_SCALES = [1e300, 1e-300, 1e200, 1e-200]
 
@@ -119,12 +119,8 @@ def test_fit_assign_and_drift_refuse_cleanly_or_answer_finite_results(data):
     check_fit_assign_drift(values, data.draw(fit_configs(values.shape[1], values.shape[0])))
 
 
-EXTREME_REASON = ("check_fit_inputs (service/core/fit.py, being rewritten in another branch) accepts features whose "
-                  "spread overflows or underflows float64 (|x| ~ 1e300 or 1e-300): the fit then fails inside "
-                  "scikit-learn (NaN after scaling) or writes NaN into the report, which the store refuses: a 500")
-
-
-@pytest.mark.xfail(reason=EXTREME_REASON, strict=False)
+# Extreme magnitudes (|x| ~ 1e300 or a spread ~ 1e-300) once made the fit fail inside scikit-learn (NaN after
+# scaling) or write NaN into the report (a 500); check_fit_inputs now refuses such features by name.
 @settings(max_examples=20, deadline=None, derandomize=True, database=None, phases=[Phase.generate],
           suppress_health_check=list(HealthCheck))
 @given(data=st.data())
@@ -133,14 +129,12 @@ def test_extreme_magnitudes_refuse_cleanly_or_answer_finite_results(data):
     check_fit_assign_drift(values, data.draw(fit_configs(values.shape[1], values.shape[0])))
 
 
-@pytest.mark.xfail(reason=EXTREME_REASON, strict=False)
 def test_reproducer_huge_values_break_the_scaler():
     # Found by the fuzz above: KMeans raises "Input X contains NaN" (StandardScaler's variance overflows).
     check_fit_assign_drift(np.array([[0.0], [1e300]]), FitConfig(features=["f0"], components=None,
                                                                   k_min=1, k_max=1))
 
 
-@pytest.mark.xfail(reason=EXTREME_REASON, strict=False)
 def test_reproducer_tiny_values_put_nan_in_the_report():
     # Found by the fuzz above: explained_variance_ratio is NaN (total variance underflows to 0).
     values = np.zeros((17, 4))
