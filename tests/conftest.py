@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import socket
-import subprocess
 
 import numpy as np
 import pytest
@@ -48,23 +46,6 @@ def walk_numbers(value):
             yield from walk_numbers(v)
     elif isinstance(value, float):
         yield value
-
-
-def free_port() -> int:
-    """A TCP port free on the loopback address right now."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
-
-
-def stop_process(process: subprocess.Popen, timeout: float = 30) -> None:
-    """SIGTERM, then SIGKILL if the process has not ended within ``timeout`` seconds."""
-    process.terminate()
-    try:
-        process.wait(timeout)
-    except subprocess.TimeoutExpired:
-        process.kill()
-        process.wait(timeout)
 
 
 @pytest.fixture

@@ -1,4 +1,4 @@
-"""A real ``segscore serve`` process on a free loopback port, for tests that need one."""
+"""A real server process on a free loopback port, for the tests that need one (the one helper for it)."""
 
 from __future__ import annotations
 
@@ -20,9 +20,20 @@ HTTP_TIMEOUT = 10
 
 
 def free_port() -> int:
+    """A TCP port free on the loopback address right now."""
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
         probe.bind(("127.0.0.1", 0))
         return probe.getsockname()[1]
+
+
+def stop_process(process: subprocess.Popen, timeout: float = 30) -> None:
+    """SIGTERM, then SIGKILL if the process has not ended within ``timeout`` seconds."""
+    process.send_signal(signal.SIGTERM)
+    try:
+        process.wait(timeout)
+    except subprocess.TimeoutExpired:
+        process.kill()
+        process.wait(timeout)
 
 
 def get_json(url: str) -> tuple[int, Any]:
@@ -58,9 +69,4 @@ def segscore_server(workdir: Path, *arguments: str, settings_env: dict[str, str]
             assert status == 200 and body["status"] == "ready", log_path.read_text()
             yield base
         finally:
-            server.send_signal(signal.SIGTERM)
-            try:
-                server.wait(30)
-            except subprocess.TimeoutExpired:
-                server.kill()
-                server.wait(30)
+            stop_process(server)

@@ -13,7 +13,7 @@ from pathlib import Path
 import httpx2
 import pytest
 
-from tests.conftest import free_port, stop_process
+from tests.serving import free_port, stop_process
 
 START_TIMEOUT = 60
 SOCKET_TIMEOUT = 15          # an upper bound for each wait below, never the expected time
