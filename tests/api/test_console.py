@@ -133,7 +133,7 @@ def test_segmentation_page_shows_events_when_the_segmentation_has_them(fitted_st
 
 
 def test_the_stored_events_are_shown(console):
-    # The store records an event for every write (here: two fits and two drift reports, by the local actor).
+    # The store records an event for every write (here the fits of the fixture, by the local actor).
     rows = html(console.get(f"/console/segmentations/{NAME}")).rows["events"]
     stored = console.get(f"/v1/segmentations/{NAME}").json()["events"]
     assert len(rows) == len(stored) > 0
