@@ -2,8 +2,7 @@
 
 from __future__ import annotations
 
-import socket
-import subprocess
+import shutil
 
 import numpy as np
 import pytest
@@ -50,23 +49,6 @@ def walk_numbers(value):
         yield value
 
 
-def free_port() -> int:
-    """A TCP port free on the loopback address right now."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
-
-
-def stop_process(process: subprocess.Popen, timeout: float = 30) -> None:
-    """SIGTERM, then SIGKILL if the process has not ended within ``timeout`` seconds."""
-    process.terminate()
-    try:
-        process.wait(timeout)
-    except subprocess.TimeoutExpired:
-        process.kill()
-        process.wait(timeout)
-
-
 @pytest.fixture
 def settings(tmp_path) -> Settings:
     return Settings(store_dir=tmp_path / "store")
@@ -82,6 +64,20 @@ def create_keys(store_dir, scopes_by_name: dict[str, list[str]]) -> dict[str, st
     """The one way tests create API keys: in the store, as ``segscore keys create`` does. -> {name: key}."""
     store = FilesystemStore(store_dir)
     return {name: store.create_key(name, scopes) for name, scopes in scopes_by_name.items()}
+
+
+@pytest.fixture
+def keys(fitted_store, tmp_path) -> dict[str, str]:
+    """The module's ``fitted_store`` copied to ``tmp_path / "store"`` with a 'fit' key and a 'read' key."""
+    shutil.copytree(fitted_store, tmp_path / "store")
+    return create_keys(tmp_path / "store", {"fit": ["fit"], "read": ["read"]})
+
+
+@pytest.fixture
+def secured(keys, tmp_path):
+    """An app on that store (so with keys: authentication on)."""
+    with TestClient(create_app(Settings(store_dir=tmp_path / "store"))) as client:
+        yield client
 
 
 def png_size(body: bytes) -> tuple[int, int]:

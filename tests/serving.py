@@ -1,4 +1,4 @@
-"""A real ``segscore serve`` process on a free loopback port, for tests that need one."""
+"""A real server process on a free loopback port, for the tests that need one (the one helper for it)."""
 
 from __future__ import annotations
 
@@ -20,9 +20,20 @@ HTTP_TIMEOUT = 10
 
 
 def free_port() -> int:
+    """A TCP port free on the loopback address right now."""
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
         probe.bind(("127.0.0.1", 0))
         return probe.getsockname()[1]
+
+
+def stop_process(process: subprocess.Popen, timeout: float = 30) -> None:
+    """SIGTERM, then SIGKILL if the process has not ended within ``timeout`` seconds."""
+    process.send_signal(signal.SIGTERM)
+    try:
+        process.wait(timeout)
+    except subprocess.TimeoutExpired:
+        process.kill()
+        process.wait(timeout)
 
 
 def get_json(url: str) -> tuple[int, Any]:
@@ -31,19 +42,18 @@ def get_json(url: str) -> tuple[int, Any]:
 
 
 @contextmanager
-def segscore_server(workdir: Path, *arguments: str, settings_env: dict[str, str] | None = None) -> Iterator[str]:
-    """Run ``segscore serve --port P *arguments`` in ``workdir`` until /readyz answers; yield its base URL.
+def server_process(command: list[str], workdir: Path, *, settings_env: dict[str, str] | None = None,
+                   cwd: Path | None = None) -> Iterator[str]:
+    """Run ``command`` (a server on 127.0.0.1 whose port is the last argument) until /readyz answers 200 with
+    status "ready"; yield its base URL; stop it with SIGTERM (SIGKILL after 30 s).
 
     The server's output goes to ``workdir/server.log`` (shown when it fails to start); SEGSCORE_* variables
-    of the calling environment are not passed on, those of ``settings_env`` are. The process gets SIGTERM
-    on exit."""
-    port = free_port()
+    of the calling environment are not passed on, those of ``settings_env`` are."""
+    port = int(command[-1])
     env = {k: v for k, v in os.environ.items() if not k.startswith("SEGSCORE_")} | (settings_env or {})
-    segscore = Path(sys.executable).with_name("segscore")
     log_path = workdir / "server.log"
     with log_path.open("w") as log:
-        server = subprocess.Popen([str(segscore), "serve", "--port", str(port), *arguments],
-                                  stdout=log, stderr=subprocess.STDOUT, env=env, cwd=workdir)
+        server = subprocess.Popen(command, stdout=log, stderr=subprocess.STDOUT, env=env, cwd=cwd or workdir)
         base = f"http://127.0.0.1:{port}"
         try:
             deadline = time.monotonic() + SERVER_START_TIMEOUT
@@ -58,9 +68,13 @@ def segscore_server(workdir: Path, *arguments: str, settings_env: dict[str, str]
             assert status == 200 and body["status"] == "ready", log_path.read_text()
             yield base
         finally:
-            server.send_signal(signal.SIGTERM)
-            try:
-                server.wait(30)
-            except subprocess.TimeoutExpired:
-                server.kill()
-                server.wait(30)
+            stop_process(server)
+
+
+@contextmanager
+def segscore_server(workdir: Path, *arguments: str, settings_env: dict[str, str] | None = None) -> Iterator[str]:
+    """``segscore serve *arguments --port P`` in ``workdir``, as ``server_process`` runs it."""
+    segscore = Path(sys.executable).with_name("segscore")
+    with server_process([str(segscore), "serve", *arguments, "--port", str(free_port())], workdir,
+                        settings_env=settings_env) as base:
+        yield base

@@ -3,9 +3,7 @@ connections (issue: resource limits against a hostile client). Every wait is bou
 
 from __future__ import annotations
 
-import os
 import socket
-import subprocess
 import sys
 import time
 from pathlib import Path
@@ -13,9 +11,8 @@ from pathlib import Path
 import httpx2
 import pytest
 
-from tests.conftest import free_port, stop_process
+from tests.serving import free_port, server_process
 
-START_TIMEOUT = 60
 SOCKET_TIMEOUT = 15          # an upper bound for each wait below, never the expected time
 REPO = Path(__file__).resolve().parents[1]
 
@@ -26,29 +23,12 @@ def server(tmp_path_factory):
     header-read time-out 2 s, request heads up to 8 KB."""
     tmp_path = tmp_path_factory.mktemp("server")
     port = free_port()
-    env = {k: v for k, v in os.environ.items() if not k.startswith("SEGSCORE_")}
-    env.update(SEGSCORE_STORE_DIR=str(tmp_path / "store"), SEGSCORE_BODY_READ_TIMEOUT_SECONDS="1",
-               SEGSCORE_KEEP_ALIVE_SECONDS="1", SEGSCORE_HEADER_READ_TIMEOUT_SECONDS="2",
-               SEGSCORE_MAX_HEADER_BYTES="8192", PYTHONPATH=str(REPO))
-    log = (tmp_path / "server.log").open("w")
-    process = subprocess.Popen([sys.executable, "-m", "tests.server_child", str(port)], cwd=REPO, env=env,
-                               stdout=log, stderr=subprocess.STDOUT)
-    base = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + START_TIMEOUT
-        while True:
-            assert process.poll() is None, (tmp_path / "server.log").read_text()
-            try:
-                if httpx2.get(f"{base}/healthz", timeout=2).status_code == 200:
-                    break
-            except httpx2.TransportError:
-                pass
-            assert time.monotonic() < deadline, "server did not start"
-            time.sleep(0.2)
+    settings_env = dict(SEGSCORE_STORE_DIR=str(tmp_path / "store"), SEGSCORE_BODY_READ_TIMEOUT_SECONDS="1",
+                        SEGSCORE_KEEP_ALIVE_SECONDS="1", SEGSCORE_HEADER_READ_TIMEOUT_SECONDS="2",
+                        SEGSCORE_MAX_HEADER_BYTES="8192", PYTHONPATH=str(REPO))
+    with server_process([sys.executable, "-m", "tests.server_child", str(port)], tmp_path,
+                        settings_env=settings_env, cwd=REPO) as base:
         yield base, port, tmp_path / "server.log"
-    finally:
-        stop_process(process)
-        log.close()
 
 
 def _read_response(sock: socket.socket) -> tuple[int, dict[str, str], bytes]:

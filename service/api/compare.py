@@ -39,7 +39,8 @@ def comparison_body(name: str, v: int, w: int, sample_version: int, features: li
     }
 
 
-@router.get("/{name}/versions/{v}/compare/{w}", response_model=VersionComparison, dependencies=[ReadScope, StrictQuery],
+@router.get("/{name}/versions/{v}/compare/{w}", response_model=VersionComparison,
+            dependencies=[ReadScope, StrictQuery],
             summary="How the segments of version v map onto those of version w",
             responses=error_responses(401, 403, 404, 422, 500, 503))
 def compare(

@@ -36,7 +36,7 @@ from service.client._errors import (
 
 __all__ = [
     "ASSIGN_BATCH_ROWS", "DEFAULT_URL", "KEY_VARIABLE", "RESULT_COLUMNS", "URL_VARIABLE", "ApiError", "BadRequest",
-    "BodyTimeout", "Client", "Conflict", "Forbidden", "InvalidInput", "LocalInputError", "NotFound", "PayloadTooLarge",
-    "SegscoreError", "ServerError", "ServerUnreachable", "Unauthorized", "UnexpectedResponse",
+    "BodyTimeout", "Client", "Conflict", "Forbidden", "InvalidInput", "LocalInputError", "NotFound",
+    "PayloadTooLarge", "SegscoreError", "ServerError", "ServerUnreachable", "Unauthorized", "UnexpectedResponse",
     "UnsupportedMediaType",
 ]

@@ -19,7 +19,7 @@ from PIL import Image
 from service.app import create_app
 from service.deps import CONSOLE_COOKIE
 from service.settings import Settings
-from tests.conftest import create_keys, png_size, records_from
+from tests.conftest import png_size, records_from
 
 NAME = "shop"
 VERSION_CHARTS = ("selection", "map", "profiles")
@@ -144,19 +144,6 @@ def test_history_is_redrawn_when_a_report_is_stored(writable, iris):
 
 
 # --------------------------------------------------------------------------- scope
-@pytest.fixture
-def keys(fitted_store, tmp_path) -> dict[str, str]:
-    """The fitted store copied to ``tmp_path / "store"`` with a 'fit' key and a 'read' key: {name: key}."""
-    shutil.copytree(fitted_store, tmp_path / "store")
-    return create_keys(tmp_path / "store", {"fit": ["fit"], "read": ["read"]})
-
-
-@pytest.fixture
-def secured(keys, tmp_path):
-    with TestClient(create_app(Settings(store_dir=tmp_path / "store"))) as client:
-        yield client
-
-
 @pytest.mark.parametrize("url", [chart_url("selection"), chart_url("map"), chart_url("profiles"), HISTORY])
 def test_charts_need_the_read_scope(secured, url, keys):
     assert secured.get(url).status_code == 401

@@ -17,7 +17,7 @@ from fastapi.testclient import TestClient
 from service.app import create_app
 from service.deps import CONSOLE_COOKIE
 from service.settings import Settings
-from tests.conftest import create_keys, records_from
+from tests.conftest import records_from
 from tests.html_page import Page
 
 NAME = "shop"
@@ -133,7 +133,7 @@ def test_segmentation_page_shows_events_when_the_segmentation_has_them(fitted_st
 
 
 def test_the_stored_events_are_shown(console):
-    # The store records an event for every write (here: two fits and two drift reports, by the local actor).
+    # The store records an event for every write (here the fits of the fixture, by the local actor).
     rows = html(console.get(f"/console/segmentations/{NAME}")).rows["events"]
     stored = console.get(f"/v1/segmentations/{NAME}").json()["events"]
     assert len(rows) == len(stored) > 0
@@ -188,19 +188,6 @@ def test_without_keys_the_console_is_open_and_login_goes_straight_in(console):
 
 
 # --------------------------------------------------------------------------- pages, auth on
-@pytest.fixture
-def keys(fitted_store, tmp_path) -> dict[str, str]:
-    """The fitted store copied to ``tmp_path / "store"`` with a 'fit' key and a 'read' key: {name: key}."""
-    shutil.copytree(fitted_store, tmp_path / "store")
-    return create_keys(tmp_path / "store", {"fit": ["fit"], "read": ["read"]})
-
-
-@pytest.fixture
-def secured(keys, tmp_path):
-    with TestClient(create_app(Settings(store_dir=tmp_path / "store"))) as client:
-        yield client
-
-
 def secured_pages(client) -> list[str]:
     # Listing drift reports over HTTP needs the 'drift' scope, which neither key has: ask the store.
     newest = client.app.state.store.list_drift_reports(NAME, version=None, limit=1)[0]["id"]

@@ -12,18 +12,16 @@ Without Chromium this test skips, naming what is missing, except in CI (``CI=tru
 
 from __future__ import annotations
 
-import json
 import os
 import shutil
 from pathlib import Path
 
 import pytest
 
-from tests.conftest import png_size
+from tests.conftest import create_keys, png_size
 from tests.serving import get_json, segscore_server
 
 ARTIFACTS = Path(__file__).resolve().parents[2] / "test-artifacts"
-READ_KEY = "browser-read-key-0123456789"
 PAGE_LOAD_SECONDS = 120          # the first view draws four charts; the machine may be busy
 CHROMIUM_FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
                   "--disable-background-networking", "--disable-component-update", "--disable-sync",
@@ -101,12 +99,12 @@ def test_console_in_chromium_open_then_behind_a_key(browser, tmp_path):
     assert width >= 1000 and height > 2000          # the whole page, charts included
 
     browser.set_window_size(1280, 1000)
-    keys = json.dumps({READ_KEY: ["read"]})
-    with segscore_server(tmp_path, "--demo", "--store", str(store), settings_env={"SEGSCORE_API_KEYS": keys}) as base:
+    read_key = create_keys(store, {"reader": ["read"]})["reader"]
+    with segscore_server(tmp_path, "--demo", "--store", str(store)) as base:
         browser.get(f"{base}/console/segmentations/demo")
         assert browser.find_elements(By.ID, "login") and not browser.find_elements(By.ID, "segments")
         assert browser.execute_script("return document.images.length;") == 0
-        browser.find_element(By.ID, "key").send_keys(READ_KEY)
+        browser.find_element(By.ID, "key").send_keys(read_key)
         browser.find_element(By.CSS_SELECTOR, "#login button[type=submit]").click()
         images = wait_for_images(browser)
         assert browser.current_url == f"{base}/console/segmentations/demo"

@@ -2,33 +2,34 @@
 
 from __future__ import annotations
 
-import json
-
 import pandas as pd
 import pytest
 
 from segscore.client import Client, Forbidden, NotFound, Unauthorized
-from tests.server_process import serving
-
-FULL_KEY = "full-key-0123456789abcdef"
-READ_KEY = "read-key-0123456789abcdef"
+from tests.conftest import create_keys
+from tests.serving import segscore_server
 
 
 @pytest.fixture
-def server(tmp_path):
-    """``segscore serve`` on a free loopback port with two API keys; yields its base URL."""
-    keys = json.dumps({FULL_KEY: ["fit", "read", "assign", "drift"], READ_KEY: ["read"]})
-    with serving(tmp_path, "--store", str(tmp_path / "store"), env={"SEGSCORE_API_KEYS": keys}) as url:
+def keys(tmp_path) -> dict[str, str]:
+    """Two API keys in the server's store: {"full": ..., "read": ...}."""
+    return create_keys(tmp_path / "store", {"full": ["fit", "read", "assign", "drift"], "read": ["read"]})
+
+
+@pytest.fixture
+def server(tmp_path, keys):
+    """``segscore serve`` on a free loopback port over a store holding two API keys; yields its base URL."""
+    with segscore_server(tmp_path, "--store", str(tmp_path / "store")) as url:
         yield url
 
 
-def test_client_against_a_server_process(server, wine, tmp_path):
+def test_client_against_a_server_process(server, keys, wine, tmp_path):
     frame = pd.DataFrame(wine.data, columns=wine.feature_names)
     frame.insert(0, "wine_id", range(1000, 1000 + len(frame)))
     source = tmp_path / "wines.csv"
     frame.to_csv(source, index=False)
 
-    with Client(server, key=FULL_KEY) as api:
+    with Client(server, key=keys["full"]) as api:
         first = api.fit("wines", source, id_column="wine_id", k=3, n_init=1, seed=0)     # the file is streamed
         second = api.fit("wines", frame, id_column="wine_id", k=3, n_init=1, seed=2)
         assert (first["version"], second["version"]) == (1, 2)
@@ -53,7 +54,7 @@ def test_client_against_a_server_process(server, wine, tmp_path):
 
     with pytest.raises(Unauthorized):
         Client(server).versions("wines")
-    with Client(server, key=READ_KEY) as reader:
+    with Client(server, key=keys["read"]) as reader:
         assert [v["live"] for v in reader.versions("wines")] == [False, True]
         with pytest.raises(Forbidden) as caught:
             reader.promote("wines", 1)
