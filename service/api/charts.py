@@ -8,15 +8,15 @@ picture); the history chart's key holds the newest report's id, so a new report 
 
 from __future__ import annotations
 
-from typing import Any, Callable
+from typing import Annotated, Any, Callable
 
 import numpy as np
-from fastapi import APIRouter, Request
+from fastapi import APIRouter, Path, Request
 from fastapi.responses import Response
 
 from service import charts
 from service.api.payload import check_name
-from service.api.validation import StrictQuery, error_responses
+from service.api.validation import StrictQuery, VersionNumber, error_responses
 from service.core.assign import assign, impute
 from service.deps import ChartReadScope, StoreDep
 from service.errors import ChartNotFound
@@ -76,7 +76,7 @@ def history_chart_png(request: Request, store: FilesystemStore, name: str) -> by
 @router.get("/{name}/versions/{version}/charts/{chart}.png", dependencies=[ChartReadScope, StrictQuery],
             response_class=Response, responses=PNG_RESPONSE,
             summary="A chart of a version as PNG: selection, map or profiles")
-def version_chart(name: str, version: int, chart: str, request: Request, store: StoreDep) -> Response:
+def version_chart(name: str, version: Annotated[VersionNumber, Path()], chart: str, request: Request, store: StoreDep) -> Response:
     return Response(version_chart_png(request, store, name, version, chart), media_type="image/png",
                     headers=PNG_HEADERS)
 

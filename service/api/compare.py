@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Annotated, Any
 
-from fastapi import APIRouter, Query
+from fastapi import APIRouter, Path, Query
 
 from schemas import VersionComparison
 from service.api.payload import check_name
-from service.api.validation import StrictQuery, error_responses
+from service.api.validation import StrictQuery, VersionNumber, error_responses
 from service.core.compare import SUGGESTION_MIN_SHARE, Crosswalk, Match, compare_versions
 from service.deps import ReadScope, StoreDep
 
@@ -45,8 +45,8 @@ def comparison_body(name: str, v: int, w: int, sample_version: int, features: li
             responses=error_responses(401, 403, 404, 422, 500, 503))
 def compare(
     name: str,
-    v: int,
-    w: int,
+    v: Annotated[VersionNumber, Path()],
+    w: Annotated[VersionNumber, Path()],
     store: StoreDep,
     min_share: float = Query(SUGGESTION_MIN_SHARE, gt=0.5, le=1.0,
                              description="suggest v's label for a w segment when at least this share of the v "

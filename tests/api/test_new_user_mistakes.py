@@ -358,3 +358,33 @@ def test_unknown_keys_of_small_bodies_get_a_hint(shop, path, method, body, hint)
     assert response.status_code == 422
     assert any(hint in item["message"] for item in response.json()["detail"])
     assert _state(client, settings) == before
+
+
+def _version_path_parameters(app):
+    """Every (route template, methods, path parameter) of the app whose parameter is a version number."""
+    from fastapi.routing import iter_route_contexts
+
+    # iter_route_contexts flattens included routers (with their prefixes), as FastAPI's OpenAPI builder does.
+    return [(context.path, set(context.methods), param) for context in iter_route_contexts(app.routes)
+            for param in ("version", "v", "w") if "{" + param + "}" in context.path]
+
+
+@pytest.mark.parametrize("raw", ["1.0", "+1", " 1", str(2**31), str(2**63), "0", "-1"])
+def test_every_version_path_parameter_takes_plain_decimals_in_range(shop, raw):
+    # Issue 7, item 14, on every route that has a version in its path, found from the app's own route table so
+    # that a new route is covered without a new case here. Version 1 exists; "1.0", "+1" and " 1" must not be
+    # read as it, and numbers beyond 2**31 - 1 must be a 4xx, never a 500 (SQLite holds 64-bit integers).
+    client, settings = shop
+    pairs = _version_path_parameters(client.app)
+    assert {"version", "v", "w"} <= {param for _, _, param in pairs}
+    before = _state(client, settings)
+    for template, methods, param in pairs:
+        path = template.replace("{name}", NAME).replace("{chart}", "map").replace("{segment}", "0")
+        path = path.replace("{" + param + "}", raw)
+        for other in ("version", "v", "w"):
+            path = path.replace("{" + other + "}", "1")
+        for method in methods:
+            response = client.request(method, path, json={"label": "x"} if method == "PATCH" else None)
+            assert response.status_code in (404, 422), (method, path, response.status_code, response.text)
+            assert _mentions(response.json()["detail"], param) or response.status_code == 404, response.text
+    assert _state(client, settings) == before
