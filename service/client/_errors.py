@@ -13,6 +13,8 @@
     │   ├── InvalidInput         422  valid JSON/CSV whose content cannot be used (items name record and field)
     │   └── ServerError          5xx
     └── LocalInputError          a problem found before anything was sent (a file, a column name, an argument)
+        └── BadFile              a CSV file that cannot be used: ``problem`` is file, gzip, encoding, empty,
+                                 header, delimiter or column; ``line`` and ``column`` say where
 
 A command line sitting on this client maps ``ApiError`` and ``ServerUnreachable`` to "the server refused or
 could not be reached" and ``LocalInputError`` to "a usage or local file problem".
@@ -111,6 +113,17 @@ class ServerError(ApiError):
 
 class LocalInputError(SegscoreError):
     """A problem found before anything was sent: an unreadable file, a column clash, a bad argument."""
+
+
+class BadFile(LocalInputError):
+    """A local CSV file that cannot be used; the message names the file, the line or column, and the problem."""
+
+    def __init__(self, path: Any, problem: str, message: str, *, line: int | None = None,
+                 column: str | None = None) -> None:
+        self.path, self.problem, self.line, self.column = path, problem, line, column
+        where = "".join(f", {part}" for part in (f"line {line}" if line is not None else "",
+                                                  f"column {column!r}" if column is not None else "") if part)
+        super().__init__(f"{path}{where}: {problem}: {message}")
 
 
 ERROR_BY_STATUS: dict[int, type[ApiError]] = {
