@@ -451,7 +451,7 @@ def _csv_content(data: Any, progress: Callable[[int, int], None] | None = None) 
             raise LocalInputError(f"{path}: no such file")
         if not os.access(path, os.R_OK):
             raise LocalInputError(f"{path}: the file is not readable")
-        return csv_chunks(path, progress)
+        return csv_chunks(path, progress, chunk_bytes=UPLOAD_CHUNK_BYTES)
     raise LocalInputError(f"expected a list of records, a DataFrame or a CSV file path; got {type(data).__name__}")
 
 

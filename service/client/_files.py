@@ -52,7 +52,8 @@ def open_text(path: Path) -> IO[str]:
     return io.TextIOWrapper(open_binary(path), encoding="utf-8-sig", newline="")
 
 
-def csv_chunks(path: Path, progress: Callable[[int, int], None] | None = None) -> Iterator[bytes]:
+def csv_chunks(path: Path, progress: Callable[[int, int], None] | None = None, *,
+               chunk_bytes: int = CHUNK_BYTES) -> Iterator[bytes]:
     """The CSV's bytes in chunks (decompressed from gzip), read while they are sent.
 
     ``progress(bytes of the file read, file size)`` follows each chunk; for a gzip file these are compressed
@@ -61,7 +62,7 @@ def csv_chunks(path: Path, progress: Callable[[int, int], None] | None = None) -
     with path.open("rb") as raw:
         source: IO[bytes] = gzip.GzipFile(fileobj=raw, mode="rb") if is_gzip(path) else raw
         try:
-            while chunk := _read(source, path):
+            while chunk := _read(source, path, chunk_bytes):
                 yield chunk
                 if progress is not None:
                     progress(raw.tell(), total)
@@ -69,9 +70,9 @@ def csv_chunks(path: Path, progress: Callable[[int, int], None] | None = None) -
             source.close()
 
 
-def _read(source: IO[bytes], path: Path) -> bytes:
+def _read(source: IO[bytes], path: Path, size: int) -> bytes:
     try:
-        return source.read(CHUNK_BYTES)
+        return source.read(size)
     except EOFError:
         raise BadFile(path, "gzip", "the gzip stream is truncated (the file ends before the compressed data "
                       "does); copy or download it again") from None
