@@ -147,9 +147,9 @@ def _check_header(path: Path, names: list[str], line: int) -> list[str]:
             if delimiter in names[0]:
                 raise BadFile(path, "delimiter", f"one column whose name contains {shown}; the file must be "
                               "comma-separated (export with ',' as the delimiter)", line=line)
-    if names and all(_is_number(name) for name in names if name):
-        raise BadFile(path, "header", "the first row holds numbers, not column names; the file must start "
-                      "with a header row naming the columns", line=line)
+    if any(_is_number(name) for name in names if name):
+        raise BadFile(path, "header", "the first row holds numbers, not column names: the file must start with "
+                      "a header row naming the columns", line=line)
     for position, name in enumerate(names, start=1):
         if not name:
             raise BadFile(path, "header", f"column {position} has no name (a trailing comma, or a row index "
