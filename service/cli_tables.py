@@ -119,8 +119,8 @@ def comparison(answer: dict[str, Any]) -> Group:
             suggestions.add_row(str(suggestion["segment"]), suggestion["label"], suggestion["current_label"] or "")
         parts.append(suggestions)
     else:
-        parts.append(Text(f"no label suggestions (no labelled segment of v{v} overlaps one of v{w} by "
-                          f"{share(answer['min_share'])} or more)"))
+        parts.append(Text(f"no label suggestions (a labelled segment of v{v} and a segment of v{w} must share at "
+                          f"least {share(answer['min_share'])} of each one's rows)"))
     return Group(*parts)
 
 

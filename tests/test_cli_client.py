@@ -265,3 +265,58 @@ def test_a_mixed_column_past_the_local_sample_is_the_servers_refusal(fitted, win
     assert result.exit_code == 1, result.output
     assert "422" in result.output and "record 99, field alcohol" in result.output
     assert fitted.api.drift_reports(NAME) == []
+
+
+# ------------------------------------------------------------------------------------------------ a real server
+def test_the_commands_end_to_end_against_a_server_process(wine_csv, tmp_path):
+    import subprocess
+    import sys
+
+    from tests.serving import segscore_server
+
+    segscore = str(Path(sys.executable).with_name("segscore"))
+    store = str(tmp_path / "store")
+
+    def shell(*arguments, env: dict[str, str]):
+        """``segscore ARGS`` as a user runs it; (exit status, standard output, standard error)."""
+        done = subprocess.run([segscore, *map(str, arguments)], capture_output=True, text=True, timeout=300,
+                              env={**base_env, **WIDE, **env})
+        return done.returncode, done.stdout, done.stderr
+
+    base_env = {k: v for k, v in __import__("os").environ.items() if not k.startswith("SEGSCORE_")}
+    keys = {}
+    for name, scope in (("analyst", "admin"), ("viewer", "read")):
+        code, out, _ = shell("keys", "create", "--store", store, "--name", name, "--scope", scope, env={})
+        assert code == 0
+        keys[name] = out.splitlines()[-1]
+
+    with segscore_server(tmp_path, "--store", store) as url:
+        analyst = {"SEGSCORE_URL": url, "SEGSCORE_API_KEY": keys["analyst"]}
+        code, out, err = shell("fit", wine_csv, "--name", NAME, "--id-column", "wine_id", "--k", "2-5", env=analyst)
+        assert code == 0, err
+        with Client(url, key=keys["analyst"]) as api:
+            report = api.version(NAME, 1)
+        chosen = [row for row in table_rows(out) if len(row) == 4 and row[3] == "*"]
+        assert [int(row[0]) for row in chosen] == [report["k"]]
+        code, out, _ = shell("show", NAME, 1, "--json", env=analyst)
+        assert code == 0 and json.loads(out) == report
+
+        code, out, err = shell("assign", NAME, wine_csv, "-o", tmp_path / "tagged.csv", env=analyst)
+        assert code == 0, err
+        assert len(pd.read_csv(tmp_path / "tagged.csv")) == 178
+        code, out, err = shell("drift", NAME, wine_csv, env=analyst)
+        assert code == 0 and "drift items, worst first" in out, err
+
+        viewer = {"SEGSCORE_URL": url, "SEGSCORE_API_KEY": keys["viewer"]}
+        code, out, _ = shell("versions", NAME, env=viewer)
+        assert code == 0 and [int(r[0]) for r in table_rows(out)] == [1]
+        code, _, err = shell("promote", NAME, 1, env=viewer)             # the read scope cannot promote
+        assert code == 1 and "403" in err and "fit" in err
+        code, _, err = shell("versions", NAME, env={"SEGSCORE_URL": url})  # no key
+        assert code == 1 and "401" in err
+        code, _, err = shell("versions", NAME, "--url", url, "--key", keys["analyst"], env={})   # the options
+        assert code == 0, err
+        code, _, err = shell("fit", tmp_path / "missing.csv", "--name", NAME, env=analyst)
+        assert code == 2 and "missing.csv" in err
+    code, _, err = shell("versions", NAME, env=analyst)                   # the server has stopped
+    assert code == 1 and "no answer from" in err
