@@ -25,6 +25,7 @@ from service.client import (
     LocalInputError,
     SegscoreError,
 )
+from service.client._errors import detail_lines
 from service.client._files import check_csv_file
 
 # Columns ``segscore assign`` adds to the input rows.
@@ -119,20 +120,6 @@ def _console(stderr: bool = False):
     return Console(file=sys.stderr if stderr else sys.stdout, soft_wrap=False)
 
 
-def _detail_lines(detail: Any) -> list[str]:
-    """The server's ``detail``, one problem per line (422 items as 'record 3, field x: message')."""
-    if not isinstance(detail, list):
-        return [str(detail)]
-    lines = []
-    for item in detail:
-        if isinstance(item, dict):
-            where = ", ".join(f"{key} {item[key]}" for key in ("record", "field") if item.get(key) not in (None, ""))
-            lines.append(f"{where}: {item.get('message', '')}" if where else str(item.get("message", item)))
-        else:
-            lines.append(str(item))
-    return lines
-
-
 def _talks_to_server(command: Callable) -> Callable:
     """Maps the client's errors to the exit status and a readable message on standard error."""
 
@@ -147,7 +134,7 @@ def _talks_to_server(command: Callable) -> Callable:
                 reason = HTTPStatus(error.status).phrase
             except ValueError:
                 reason = ""
-            lines = _detail_lines(error.detail)
+            lines = detail_lines(error.detail)
             click.echo(f"error: the server refused ({error.status} {reason}; {error.method} {error.path}):", err=True)
             for line in lines[:20]:
                 click.echo(f"  {line}", err=True)
@@ -184,8 +171,16 @@ def _live_features(api: Client, name: str, version: int | None) -> list[str]:
     return api.version(name, version)["features"]
 
 
+def _moved_to_store_fit(context: click.Context, parameter: click.Parameter, value: Any) -> None:
+    """``segscore fit NAME FILE --store DIR`` was the local fit before ``fit`` talked to a server."""
+    if value is not None:
+        raise click.UsageError("'segscore fit' sends the file to a server; to fit into a local store without "
+                               "one, run 'segscore store-fit NAME FILE --store DIR'")
+
+
 # ---------------------------------------------------------------------------------------------------- commands
 @click.command("fit")
+@click.option("--store", hidden=True, is_eager=True, expose_value=False, callback=_moved_to_store_fit)
 @_input_file
 @click.option("--name", required=True, help="the segmentation to fit a new version of")
 @fit_options

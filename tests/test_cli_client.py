@@ -212,6 +212,17 @@ def test_an_unparseable_option_exits_2(cli, wine_csv, arguments):
     assert result.exit_code == 2 and arguments[0] in result.output
 
 
+def test_the_old_local_fit_invocation_points_to_store_fit(cli, tmp_path, wine_csv):
+    result = cli("fit", "tea", wine_csv, "--store", tmp_path / "local")
+    assert result.exit_code == 2 and "segscore store-fit NAME FILE --store DIR" in result.output
+    assert not (tmp_path / "local").exists()
+
+
+def test_fit_without_name_is_a_usage_error(cli, wine_csv):
+    result = cli("fit", wine_csv)
+    assert result.exit_code == 2 and "--name" in result.output
+
+
 # ------------------------------------------------------------------------------------------------ bad files
 def _lines(wine_csv: Path) -> list[str]:
     return wine_csv.read_text().splitlines(keepends=True)

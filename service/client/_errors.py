@@ -48,20 +48,25 @@ class UnexpectedResponse(SegscoreError):
                          "is the URL that of a segscore server?")
 
 
+def detail_lines(detail: Any) -> list[str]:
+    """The server's ``detail``, one problem a line: a string as is, 422 items as 'record 3, field x: message'."""
+    if not isinstance(detail, list):
+        return [str(detail)]
+    lines = []
+    for item in detail:
+        if isinstance(item, dict):
+            where = ", ".join(f"{key} {item[key]}" for key in ("record", "field") if item.get(key) not in (None, ""))
+            lines.append(f"{where}: {item.get('message', '')}" if where else str(item.get("message", item)))
+        else:
+            lines.append(str(item))
+    return lines
+
+
 def _describe(detail: Any) -> str:
-    """The server's ``detail`` in one line: a string as is, 422 items as 'record 3, field x: message'."""
-    if isinstance(detail, list):
-        parts = []
-        for item in detail[:5]:
-            if isinstance(item, dict):
-                where = ", ".join(f"{key} {item[key]}" for key in ("record", "field") if item.get(key) not in
-                                  (None, ""))
-                parts.append(f"{where}: {item.get('message', '')}" if where else str(item.get("message", item)))
-            else:
-                parts.append(str(item))
-        more = f" (and {len(detail) - 5} more)" if len(detail) > 5 else ""
-        return "; ".join(parts) + more
-    return str(detail)
+    """The server's ``detail`` in one line (the first five problems)."""
+    lines = detail_lines(detail)
+    more = f" (and {len(lines) - 5} more)" if len(lines) > 5 else ""
+    return "; ".join(lines[:5]) + more
 
 
 class ApiError(SegscoreError):
