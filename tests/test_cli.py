@@ -64,6 +64,18 @@ def test_fit_into_a_temp_store_and_list(tmp_path, demo_csv):
     assert listing.output.split("\t")[:3] == ["tea", "live=1", "latest=2"]
 
 
+def test_store_fit_reads_a_gzip_file_as_the_plain_one(tmp_path, demo_csv):
+    import gzip
+
+    packed = tmp_path / "customers.csv.gz"
+    packed.write_bytes(gzip.compress(demo_csv.read_bytes()))
+    store = str(tmp_path / "store")
+    plain = json.loads(run("store-fit", "tea", str(demo_csv), "--store", store, "--k", "3").output)
+    from_gzip = json.loads(run("store-fit", "tea", str(packed), "--store", store, "--k", "3").output)
+    assert (plain["version"], from_gzip["version"]) == (1, 2)
+    assert from_gzip["data_sha256"] == plain["data_sha256"]
+
+
 @pytest.mark.parametrize(
     "arguments, field",
     [(["--features", "tenure_months,colour"], "features"), (["--k", "0"], "k"), (["--components", "9"], "components")],

@@ -249,7 +249,7 @@ class Client:
         """
         source, target = Path(path), Path(out_path)
         _positive(batch_rows, "batch_rows")
-        with _open_text(source) as handle:
+        with open_text(source) as handle:      # a gzip file is decompressed
             reader = csv.reader(handle)
             header = next(reader, None)
             if not header:
@@ -383,11 +383,6 @@ def _csv_cell(value: Any) -> Any:
     if isinstance(value, list):
         return ";".join(map(str, value))
     return value
-
-
-def _open_text(path: Path):
-    """The CSV file as text; a ``.gz`` file (or one starting with gzip's magic bytes) is decompressed."""
-    return open_text(path)
 
 
 def _result_columns(columns: Sequence[str], existing: list[str]) -> list[str]:
