@@ -186,6 +186,8 @@ def test_drift_table_lists_items_worst_first(fitted, wine_csv, tmp_path):
     ranks = [("alert", "watch", "stable").index(r[1]) for r in rows]
     assert ranks == sorted(ranks)
     assert len(rows) == 13 + 3          # every feature, the segment mix, the outlier rate, the residual
+    as_json = fitted("drift", NAME, shifted, "--json")
+    assert as_json.exit_code == 0 and json.loads(as_json.stdout)["features"] == report["features"]
 
 
 # ------------------------------------------------------------------------------------------------ exit codes
@@ -267,8 +269,6 @@ def test_a_mixed_column_past_the_local_sample_is_the_servers_refusal(fitted, win
     import service.client._files as files
 
     monkeypatch.setattr(files, "SAMPLE_ROWS", 10)
-    monkeypatch.setattr(files.check_csv_file, "__kwdefaults__", {**files.check_csv_file.__kwdefaults__,
-                                                                  "sample_rows": 10})
     lines = _lines(wine_csv)
     bad = tmp_path / "late.csv"
     bad.write_text("".join(lines[:100] + [re.sub(r",[^,]*,", ",n/a,", lines[100], count=1)] + lines[101:]))

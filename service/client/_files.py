@@ -89,10 +89,12 @@ def check_gzip(path: Path) -> None:
 
 
 def check_csv_file(path: Path, *, columns: Iterable[str] | None = None, skip: Iterable[str] = (),
-                   sample_rows: int = SAMPLE_ROWS) -> list[str]:
+                   sample_rows: int | None = None) -> list[str]:
     """Check a CSV file before it is sent; return its header names. Raises BadFile naming line and problem.
 
-    Types are checked in ``columns`` (default: every column but those in ``skip``, say the id column)."""
+    Types are checked in ``columns`` (default: every column but those in ``skip``, say the id column), on the
+    first ``sample_rows`` data rows (default SAMPLE_ROWS)."""
+    sample_rows = SAMPLE_ROWS if sample_rows is None else sample_rows
     check_gzip(path)
     with open_text(path) as handle:
         lines = _numbered_lines(handle, path)
