@@ -1,4 +1,5 @@
-"""The ``segscore`` command: serve the API, write demo data, fit and list from the shell, manage API keys."""
+"""The ``segscore`` command: serve the API, write demo data, fit into a local store, list, manage API keys;
+and the client commands that talk to a running server (``service.cli_client``: fit, show, assign, ...)."""
 
 from __future__ import annotations
 
@@ -8,6 +9,8 @@ from pathlib import Path
 
 import click
 
+from service.cli_client import COMMANDS as CLIENT_COMMANDS
+from service.cli_client import fit_options, fit_params
 from service.settings import SCOPES, Settings
 
 DEMO_NAME = "demo"
@@ -136,56 +139,29 @@ def demo_data(rows: int, seed: int, out: Path) -> None:
         click.echo(f"wrote {rows} customers to {out}", err=True)
 
 
-def _parse_components(text: str) -> int | float | None:
-    if text.strip().lower() == "none":
-        return None
-    for kind in (int, float):
-        try:
-            return kind(text)
-        except ValueError:
-            pass
-    raise click.BadParameter(f"expected a count, a variance share in (0, 1) or 'none'; got {text!r}",
-                             param_hint="--components")
-
-
-def _parse_k(text: str) -> int | dict[str, int]:
-    low, sep, high = text.strip().partition("-")
-    try:
-        return {"min": int(low), "max": int(high)} if sep else int(low)
-    except ValueError:
-        raise click.BadParameter(f"expected an int or a range like 2-10; got {text!r}", param_hint="--k") from None
-
-
-@main.command()
+@main.command("store-fit")
 @click.argument("name")
 @click.argument("csv_file", type=click.Path(exists=True, dir_okay=False, path_type=Path))
-@click.option("--store", "store_dir", type=click.Path(path_type=Path), default=None)
-@click.option("--features", default=None, help="comma-separated columns (default: every numeric column)")
-@click.option("--id-column", default=None)
-@click.option("--scaling", type=click.Choice(["standard", "robust", "minmax", "none"]), default="standard")
-@click.option("--components", default="0.9", help="count, variance share in (0,1), or 'none'")
-@click.option("--method", type=click.Choice(["kmeans", "agglomerative"]), default="kmeans")
-@click.option("--linkage", type=click.Choice(["complete", "average", "single", "ward"]), default="complete")
-@click.option("--k", "k_text", default="2-10", help="an int, or a range like 2-10")
-@click.option("--selection", type=click.Choice(["elbow", "silhouette"]), default="elbow")
-@click.option("--seed", type=int, default=0)
-@click.option("--live/--not-live", "make_live", default=None, help="make the new version live")
-def fit(name, csv_file, store_dir, features, id_column, scaling, components, method, linkage, k_text,
-        selection, seed, make_live) -> None:
-    """Fit a new version of NAME from CSV_FILE into the local store; print the fit report."""
+@click.option("--store", "store_dir", type=click.Path(path_type=Path), default=None,
+              help="store directory (default models_store; env SEGSCORE_STORE_DIR)")
+@fit_options
+def store_fit(name: str, csv_file: Path, store_dir: Path | None, **options) -> None:
+    """Fit a new version of NAME from CSV_FILE (optionally .gz) straight into a local store, without a server;
+    print the fit report as JSON. (``segscore fit FILE --name N`` fits through a running server.)"""
+    from service.client._files import open_binary
     from service.errors import ServiceError
 
-    params = {
-        "features": features.split(",") if features else None, "id_column": id_column, "scaling": scaling,
-        "components": _parse_components(components), "method": method, "linkage": linkage,
-        "k": _parse_k(k_text), "selection": selection, "seed": seed, "make_live": make_live,
-    }
+    params = fit_params(**options)
     settings = _settings(store_dir=store_dir)
     pin_blas_threads()
     try:
-        report = fit_csv_into_store(settings, name, csv_file.read_bytes(), params)
+        with open_binary(csv_file) as handle:
+            body = handle.read()
+        report = fit_csv_into_store(settings, name, body, params)
     except ServiceError as exc:
         raise click.ClickException(json.dumps(exc.detail)) from None
+    except (EOFError, OSError) as exc:
+        raise click.FileError(str(csv_file), f"cannot be read ({exc})") from None
     click.echo(json.dumps(report, indent=2))
 
 
@@ -289,6 +265,10 @@ def upgrade_store(store_dir: Path | None) -> None:
     for name, version in converted:
         click.echo(f"converted '{name}' version {version}")
     click.echo(f"{len(converted)} version(s) converted")
+
+
+for _command in CLIENT_COMMANDS:
+    main.add_command(_command)
 
 
 if __name__ == "__main__":

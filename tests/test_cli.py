@@ -44,7 +44,7 @@ def test_demo_data_is_seeded(tmp_path, demo_csv):
 
 def test_fit_into_a_temp_store_and_list(tmp_path, demo_csv):
     store = tmp_path / "store"
-    result = run("fit", "tea", str(demo_csv), "--store", str(store), "--id-column", "customer_id", "--k", "2-5")
+    result = run("store-fit", "tea", str(demo_csv), "--store", str(store), "--id-column", "customer_id", "--k", "2-5")
     assert result.exit_code == 0, result.output
     report = json.loads(result.output)
     assert (report["name"], report["version"], report["live"]) == ("tea", 1, True)
@@ -52,7 +52,7 @@ def test_fit_into_a_temp_store_and_list(tmp_path, demo_csv):
     assert [row["k"] for row in report["selection"]["curve"]] == [2, 3, 4, 5]
     assert (store / "index.sqlite3").exists()
 
-    second = run("fit", "tea", str(demo_csv), "--store", str(store), "--id-column", "customer_id", "--k", "3",
+    second = run("store-fit", "tea", str(demo_csv), "--store", str(store), "--id-column", "customer_id", "--k", "3",
                  "--components", "none", "--features", "tenure_months,orders_per_year", "--not-live")
     assert second.exit_code == 0, second.output
     report = json.loads(second.output)
@@ -64,6 +64,18 @@ def test_fit_into_a_temp_store_and_list(tmp_path, demo_csv):
     assert listing.output.split("\t")[:3] == ["tea", "live=1", "latest=2"]
 
 
+def test_store_fit_reads_a_gzip_file_as_the_plain_one(tmp_path, demo_csv):
+    import gzip
+
+    packed = tmp_path / "customers.csv.gz"
+    packed.write_bytes(gzip.compress(demo_csv.read_bytes()))
+    store = str(tmp_path / "store")
+    plain = json.loads(run("store-fit", "tea", str(demo_csv), "--store", store, "--k", "3").output)
+    from_gzip = json.loads(run("store-fit", "tea", str(packed), "--store", store, "--k", "3").output)
+    assert (plain["version"], from_gzip["version"]) == (1, 2)
+    assert from_gzip["data_sha256"] == plain["data_sha256"]
+
+
 @pytest.mark.parametrize(
     "arguments, field",
     [(["--features", "tenure_months,colour"], "features"), (["--k", "0"], "k"), (["--components", "9"], "components")],
@@ -71,7 +83,7 @@ def test_fit_into_a_temp_store_and_list(tmp_path, demo_csv):
 )
 def test_fit_bad_input_fails_naming_the_field_and_writes_nothing(tmp_path, demo_csv, arguments, field):
     store = tmp_path / "store"
-    result = CliRunner().invoke(main, ["fit", "tea", str(demo_csv), "--store", str(store),
+    result = CliRunner().invoke(main, ["store-fit", "tea", str(demo_csv), "--store", str(store),
                                        "--id-column", "customer_id", *arguments])
     assert result.exit_code != 0
     assert f'"field": "{field}' in result.output
@@ -81,7 +93,7 @@ def test_fit_bad_input_fails_naming_the_field_and_writes_nothing(tmp_path, demo_
 
 @pytest.mark.parametrize("arguments", [["--k", "two"], ["--components", "most"]], ids=["k", "components"])
 def test_fit_unparseable_option_is_a_usage_error(tmp_path, demo_csv, arguments):
-    result = CliRunner().invoke(main, ["fit", "tea", str(demo_csv), "--store", str(tmp_path / "s"), *arguments])
+    result = CliRunner().invoke(main, ["store-fit", "tea", str(demo_csv), "--store", str(tmp_path / "s"), *arguments])
     assert result.exit_code == 2            # click's usage-error exit status, not a traceback
     assert arguments[0] in result.output
 
@@ -106,7 +118,7 @@ def test_serve_demo_answers_readyz_and_lists_demo(tmp_path):
 def test_a_bad_setting_is_a_clean_message_naming_the_variable(tmp_path, demo_csv, monkeypatch):
     # Issue 7 item 11: a bad SEGSCORE_ value printed a raw pydantic traceback at start-up.
     monkeypatch.setenv("SEGSCORE_MAX_FIT_ROWS", "lots")
-    result = CliRunner().invoke(main, ["fit", "shop", str(demo_csv), "--store", str(tmp_path / "s")])
+    result = CliRunner().invoke(main, ["store-fit", "shop", str(demo_csv), "--store", str(tmp_path / "s")])
     assert result.exit_code == 2
     assert "SEGSCORE_MAX_FIT_ROWS" in result.output and "Traceback" not in result.output
     assert not (tmp_path / "s").exists()
@@ -118,6 +130,6 @@ def test_fit_pins_blas_threads_like_serve(tmp_path, demo_csv, monkeypatch):
 
     calls = []
     monkeypatch.setattr(cli, "pin_blas_threads", lambda: calls.append("pinned"))
-    result = run("fit", "shop", str(demo_csv), "--store", str(tmp_path / "s"), "--k", "3")
+    result = run("store-fit", "shop", str(demo_csv), "--store", str(tmp_path / "s"), "--k", "3")
     assert result.exit_code == 0, result.output
     assert calls == ["pinned"]

@@ -254,7 +254,7 @@ def training_inputs(params: FitRequest, settings, *, frame: pd.DataFrame | None 
                     records: list[Any] | None = None) -> tuple[np.ndarray, FitConfig]:
     """The checked training matrix and the fit config, from a CSV frame or from JSON records (give one).
 
-    Shared by the HTTP endpoint and ``segscore fit``, so both apply the same limits and checks."""
+    Shared by the HTTP endpoint and ``segscore store-fit``, so both apply the same limits and checks."""
     if frame is not None:
         n_rows, available = len(frame), list(frame.columns)
         candidates = csv_feature_candidates(frame, params.id_column)

@@ -18,6 +18,7 @@ from service.client._client import (
 )
 from service.client._errors import (
     ApiError,
+    BadFile,
     BadRequest,
     BodyTimeout,
     Conflict,
@@ -35,8 +36,8 @@ from service.client._errors import (
 )
 
 __all__ = [
-    "ASSIGN_BATCH_ROWS", "DEFAULT_URL", "KEY_VARIABLE", "RESULT_COLUMNS", "URL_VARIABLE", "ApiError", "BadRequest",
-    "BodyTimeout", "Client", "Conflict", "Forbidden", "InvalidInput", "LocalInputError", "NotFound",
+    "ASSIGN_BATCH_ROWS", "DEFAULT_URL", "KEY_VARIABLE", "RESULT_COLUMNS", "URL_VARIABLE", "ApiError", "BadFile",
+    "BadRequest", "BodyTimeout", "Client", "Conflict", "Forbidden", "InvalidInput", "LocalInputError", "NotFound",
     "PayloadTooLarge", "SegscoreError", "ServerError", "ServerUnreachable", "Unauthorized", "UnexpectedResponse",
     "UnsupportedMediaType",
 ]

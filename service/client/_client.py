@@ -22,6 +22,7 @@ import httpx2
 import pandas as pd
 
 from service.client._errors import ApiError, LocalInputError, ServerUnreachable, UnexpectedResponse, api_error
+from service.client._files import CHUNK_BYTES, csv_chunks, open_text
 
 DEFAULT_URL = "http://127.0.0.1:8000"
 URL_VARIABLE = "SEGSCORE_URL"
@@ -31,7 +32,7 @@ DEFAULT_TIMEOUT = httpx2.Timeout(60.0, connect=10.0)
 FIT_TIMEOUT = httpx2.Timeout(3600.0, connect=10.0)
 # Rows per assign request: well under the server's default limit (100,000) and a few MB of CSV each.
 ASSIGN_BATCH_ROWS = 10_000
-UPLOAD_CHUNK_BYTES = 1 << 20
+UPLOAD_CHUNK_BYTES = CHUNK_BYTES
 # Columns that assign adds to a table, in this order (the fields of one assign result, id left out).
 RESULT_COLUMNS = ("segment", "label", "distance", "outlier", "outlier_reasons", "runner_up", "margin", "residual",
                   "imputed")
@@ -248,7 +249,7 @@ class Client:
         """
         source, target = Path(path), Path(out_path)
         _positive(batch_rows, "batch_rows")
-        with _open_text(source) as handle:
+        with open_text(source) as handle:      # a gzip file is decompressed
             reader = csv.reader(handle)
             header = next(reader, None)
             if not header:
@@ -384,13 +385,6 @@ def _csv_cell(value: Any) -> Any:
     return value
 
 
-def _open_text(path: Path):
-    try:
-        return path.open(newline="", encoding="utf-8-sig")
-    except OSError as exc:
-        raise LocalInputError(f"{path}: cannot read the file ({exc.strerror or exc})") from None
-
-
 def _result_columns(columns: Sequence[str], existing: list[str]) -> list[str]:
     columns = list(columns)
     unknown = [c for c in columns if c not in RESULT_COLUMNS]
@@ -441,8 +435,8 @@ def _query_form(params: Mapping[str, Any]) -> dict[str, str]:
 
 
 def _csv_content(data: Any, progress: Callable[[int, int], None] | None = None) -> bytes | Iterator[bytes]:
-    """A DataFrame as CSV bytes, or a CSV file's bytes streamed in chunks (checked readable first).
-    With ``progress``, the body is handed over in chunks and ``progress(bytes so far, total)`` follows each."""
+    """A DataFrame as CSV bytes, or a CSV file's bytes streamed in chunks (checked readable first; a gzip
+    file is decompressed on the way). With ``progress``, ``progress(bytes so far, total)`` follows each chunk."""
     if isinstance(data, pd.DataFrame):
         body = data.to_csv(index=False).encode("utf-8")
         return body if progress is None else _counted(iter([body]), len(body), progress)
@@ -452,16 +446,8 @@ def _csv_content(data: Any, progress: Callable[[int, int], None] | None = None) 
             raise LocalInputError(f"{path}: no such file")
         if not os.access(path, os.R_OK):
             raise LocalInputError(f"{path}: the file is not readable")
-        chunks = _file_chunks(path)
-        return chunks if progress is None else _counted(chunks, path.stat().st_size, progress)
+        return csv_chunks(path, progress, chunk_bytes=UPLOAD_CHUNK_BYTES)
     raise LocalInputError(f"expected a list of records, a DataFrame or a CSV file path; got {type(data).__name__}")
-
-
-def _file_chunks(path: Path) -> Iterator[bytes]:
-    """The file's bytes in chunks, read while the request is sent (opened only when sending starts)."""
-    with path.open("rb") as handle:
-        while chunk := handle.read(UPLOAD_CHUNK_BYTES):
-            yield chunk
 
 
 def _counted(chunks: Iterator[bytes], total: int, progress: Callable[[int, int], None]) -> Iterator[bytes]:

@@ -15,6 +15,8 @@
     │   ├── InvalidInput         422  valid JSON/CSV whose content cannot be used (items name record and field)
     │   └── ServerError          5xx
     └── LocalInputError          a problem found before anything was sent (a file, a column name, an argument)
+        └── BadFile              a CSV file that cannot be used: ``problem`` is file, gzip, encoding, empty,
+                                 header, delimiter or column; ``line`` and ``column`` say where
 
 A command line sitting on this client maps ``ApiError`` and ``ServerUnreachable`` to "the server refused or
 could not be reached" and ``LocalInputError`` to "a usage or local file problem".
@@ -48,20 +50,25 @@ class UnexpectedResponse(SegscoreError):
                          "is the URL that of a segscore server?")
 
 
+def detail_lines(detail: Any) -> list[str]:
+    """The server's ``detail``, one problem a line: a string as is, 422 items as 'record 3, field x: message'."""
+    if not isinstance(detail, list):
+        return [str(detail)]
+    lines = []
+    for item in detail:
+        if isinstance(item, dict):
+            where = ", ".join(f"{key} {item[key]}" for key in ("record", "field") if item.get(key) not in (None, ""))
+            lines.append(f"{where}: {item.get('message', '')}" if where else str(item.get("message", item)))
+        else:
+            lines.append(str(item))
+    return lines
+
+
 def _describe(detail: Any) -> str:
-    """The server's ``detail`` in one line: a string as is, 422 items as 'record 3, field x: message'."""
-    if isinstance(detail, list):
-        parts = []
-        for item in detail[:5]:
-            if isinstance(item, dict):
-                where = ", ".join(f"{key} {item[key]}" for key in ("record", "field") if item.get(key) not in
-                                  (None, ""))
-                parts.append(f"{where}: {item.get('message', '')}" if where else str(item.get("message", item)))
-            else:
-                parts.append(str(item))
-        more = f" (and {len(detail) - 5} more)" if len(detail) > 5 else ""
-        return "; ".join(parts) + more
-    return str(detail)
+    """The server's ``detail`` in one line (the first five problems)."""
+    lines = detail_lines(detail)
+    more = f" (and {len(lines) - 5} more)" if len(lines) > 5 else ""
+    return "; ".join(lines[:5]) + more
 
 
 class ApiError(SegscoreError):
@@ -121,6 +128,17 @@ class ServerError(ApiError):
 
 class LocalInputError(SegscoreError):
     """A problem found before anything was sent: an unreadable file, a column clash, a bad argument."""
+
+
+class BadFile(LocalInputError):
+    """A local CSV file that cannot be used; the message names the file, the line or column, and the problem."""
+
+    def __init__(self, path: Any, problem: str, message: str, *, line: int | None = None,
+                 column: str | None = None) -> None:
+        self.path, self.problem, self.line, self.column = path, problem, line, column
+        where = "".join(f", {part}" for part in (f"line {line}" if line is not None else "",
+                                                  f"column {column!r}" if column is not None else "") if part)
+        super().__init__(f"{path}{where}: {problem}: {message}")
 
 
 ERROR_BY_STATUS: dict[int, type[ApiError]] = {

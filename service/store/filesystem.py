@@ -125,7 +125,7 @@ CREATE INDEX IF NOT EXISTS events_by_name ON events (name, seq);
 CREATE INDEX IF NOT EXISTS drift_by_time ON drift_reports (created_at);
 """
 
-# The actor of writes made from the shell (``segscore fit``, ``segscore keys ...``).
+# The actor of writes made from the shell (``segscore store-fit``, ``segscore keys ...``).
 CLI_ACTOR = "cli"
 # How many events ``get_segmentation`` returns (newest first).
 MAX_LISTED_EVENTS = 200
