@@ -20,7 +20,7 @@ from click.testing import CliRunner
 from segscore.client import Client
 from service.cli import main
 from service.cli_tables import distinctive, drift_items, number
-from tests.conftest import free_port
+from tests.serving import free_port
 
 NAME = "wines"
 WIDE = {"COLUMNS": "240", "NO_COLOR": "1"}      # rich tables on one line per row, no colour codes
