@@ -99,13 +99,12 @@ async def assign_records(
     version: Annotated[VersionNumber | None, Query(description="default: the live version")] = None,
     on_error: Annotated[Literal["fail", "skip"], Query(description="skip: answer for the good records")] = "fail",
 ) -> Response:
-    loaded, batch = await read_version_batch(request, store, name, version, settings=settings,
+    loaded, labels, batch = await read_version_batch(request, store, name, version, settings=settings,
                                              max_rows=settings.max_assign_rows, echo_ids=True)
     number, features = loaded.version, list(loaded.compiled.features)
     too_many_missing(batch, features)
     rows, errors = split_good_rows(batch, on_error == "skip")
     values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]
-    labels = store.labels(name, number)
 
     def compute() -> list[dict[str, Any]]:
         result, missing = run_assignment(loaded, values, rows)

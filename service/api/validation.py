@@ -4,43 +4,22 @@ parameters refused."""
 from __future__ import annotations
 
 import re
-from typing import Annotated, Any, Iterable
+from typing import Annotated, Any
 
 from fastapi import Depends, Request
-from pydantic import BaseModel, BeforeValidator, Field, ValidationError
+from pydantic import BeforeValidator, Field
 
 from schemas.common import ErrorResponse
-from service.core.frame import did_you_mean
-from service.errors import InvalidInput, RecordProblem
+from service.errors import InvalidInput
+# Shared with the CLI (service.inputs has no web imports); re-exported for the routes.
+from service.inputs.checks import (  # noqa: F401
+    printable,
+    problems_from_pydantic,
+    unknown_query_problem,
+    validate_model,
+)
 
 
-def printable(text: str) -> str:
-    """``text`` safe to put in a JSON answer: a lone surrogate shown as its escape."""
-    return text.encode("utf-8", "backslashreplace").decode("utf-8")
-
-
-_UNION_TAGS = frozenset({"int", "float", "bool", "str", "none", "KRange", "list[str]"})
-
-
-def problems_from_pydantic(errors: Iterable[dict[str, Any]], skip_prefix: tuple[str, ...] = ()) -> list[RecordProblem]:
-    problems = []
-    for error in errors:
-        # Drop pydantic's internal location parts (union member tags such as "int" or
-        # "function-after[...]") so that the field reads as the client wrote it: "k", "k.min".
-        loc = [printable(str(part)) for part in error.get("loc", ())
-               if str(part) not in skip_prefix and "[" not in str(part) and str(part) not in _UNION_TAGS]
-        problems.append(RecordProblem(None, ".".join(loc) or "body", error.get("msg", "invalid value")))
-    return problems
-
-
-def validate_model(model: type[BaseModel], data: Any) -> Any:
-    try:
-        return model.model_validate(data)
-    except ValidationError as exc:
-        raise InvalidInput(problems_from_pydantic(exc.errors())) from None
-
-
-# --------------------------------------------------------------------------- numbers in paths and queries
 MAX_VERSION = 2 ** 31 - 1
 _PLAIN_DECIMAL = re.compile(r"[1-9][0-9]{0,9}|0")
 
@@ -88,13 +67,6 @@ async def reject_unknown_query(request: Request) -> None:
     unknown = [key for key in dict.fromkeys(request.query_params.keys()) if key not in known]
     if unknown:
         raise InvalidInput([unknown_query_problem(key, known) for key in unknown])
-
-
-def unknown_query_problem(key: str, known: Iterable[str]) -> RecordProblem:
-    known = sorted(known)
-    hint = did_you_mean(key, known)
-    listed = f"known: {known}" if known else "this route takes no query parameters"
-    return RecordProblem(None, printable(key), f"unknown query parameter; {listed}{hint}")
 
 
 StrictQuery = Depends(reject_unknown_query)
