@@ -163,6 +163,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
         loop, wake = asyncio.get_running_loop(), asyncio.Event()
         app.state.store.watch(lambda: loop.call_soon_threadsafe(wake.set))
         maintenance = loop.create_task(_maintenance(app, wake))
+        keyring.refreshed_in_background = True
         app.state.fit_limiter = anyio.CapacityLimiter(settings.fit_concurrency)
         # Bodies over large_body_bytes are read and parsed by at most this many requests at once; the others
         # wait their turn before their body is read, so memory stays bounded (see README, "Limits").
@@ -177,6 +178,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
         try:
             yield
         finally:
+            keyring.refreshed_in_background = False
             maintenance.cancel()
             with suppress(asyncio.CancelledError):
                 await maintenance

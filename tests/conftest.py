@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import socket
 import subprocess
+from contextlib import contextmanager
 
 import numpy as np
 import pytest
@@ -136,9 +137,9 @@ def with_search_path(url: str, schema: str) -> str:
     return urlunsplit(parts._replace(query=urlencode(query)))
 
 
-@pytest.fixture
-def postgres_url():
-    """A postgresql:// URL whose connections live in a fresh schema, dropped after the test."""
+@contextmanager
+def fresh_schema_url():
+    """A postgresql:// URL whose connections live in a fresh schema, dropped on exit."""
     import uuid
 
     import psycopg
@@ -152,6 +153,12 @@ def postgres_url():
     finally:
         with psycopg.connect(url, autocommit=True) as connection:
             connection.execute(f'DROP SCHEMA "{schema}" CASCADE')
+
+
+@pytest.fixture
+def postgres_url():
+    with fresh_schema_url() as url:
+        yield url
 
 
 @pytest.fixture(params=["local", "postgres"])
