@@ -12,8 +12,6 @@ import threading
 import numpy as np
 import pytest
 
-from service.core.bundle import FitConfig
-from service.core.fit import fit_bundle
 from service.errors import (
     BundleCorrupt,
     Conflict,
@@ -25,13 +23,6 @@ from service.errors import (
     VersionNotFound,
 )
 from service.store import open_store
-
-
-@pytest.fixture(scope="module")
-def bundles(iris):
-    def one(k):
-        return fit_bundle(iris.data, FitConfig(features=list(iris.feature_names), k_min=k, k_max=k, k_fixed=True))
-    return one(2), one(3)
 
 
 @pytest.fixture

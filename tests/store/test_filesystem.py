@@ -19,21 +19,11 @@ import joblib
 import numpy as np
 import pytest
 
-from service.core.bundle import FitConfig
-from service.core.fit import fit_bundle
 from service.errors import BundleCorrupt, SegmentationNotFound, SegmentNotFound, StoreUnavailable, VersionNotFound
 from service.store import FilesystemStore
 
 REPO = Path(__file__).resolve().parents[2]
 CHILD_TIMEOUT = 120
-
-
-@pytest.fixture(scope="module")
-def bundles(iris):
-    """Two small iris bundles (k = 2 and k = 3)."""
-    def one(k):
-        return fit_bundle(iris.data, FitConfig(features=list(iris.feature_names), k_min=k, k_max=k, k_fixed=True))
-    return one(2), one(3)
 
 
 @pytest.fixture
