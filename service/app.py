@@ -223,7 +223,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
     # of the request carries it), metrics count the boundary's 500s, and the body timer is innermost.
     app.add_middleware(BodyReadTimeout, seconds=settings.body_read_timeout_seconds)
     app.add_middleware(ErrorBoundary)
-    app.add_middleware(MetricsMiddleware, metrics=metrics)
+    app.add_middleware(MetricsMiddleware, metrics=metrics, log_requests=settings.access_log)
     app.add_middleware(RequestIdMiddleware)
     return app
 

@@ -113,7 +113,7 @@ def serve(host: str | None, port: int | None, demo: bool, **store_options) -> No
     from service.logs import configure_logging
 
     settings = _settings(host=host, port=port, **store_options)
-    configure_logging(settings.log_level)
+    configure_logging(settings.log_level, settings.log_format)
     store = _open_store(**store_options)
     app = create_app(settings, store)
     refusal = start_up_refusal(settings, app.state.keyring)
@@ -137,7 +137,7 @@ def run_server(app, settings: Settings) -> None:
 
     # log_config=None: uvicorn keeps our logging set-up (request ids in every line) instead of its own.
     uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
-                access_log=settings.access_log, log_level=settings.log_level,
+                access_log=False, log_level=settings.log_level,   # the app logs requests itself
                 timeout_keep_alive=settings.keep_alive_seconds,
                 http=head_limited_protocol(settings.header_read_timeout_seconds, settings.max_header_bytes))
 

@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import logging
 import time
 
 from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
 __all__ = ["CONTENT_TYPE_LATEST", "Metrics", "MetricsMiddleware"]
+
+request_log = logging.getLogger("segscore.requests")
 
 
 class Metrics:
@@ -31,9 +34,10 @@ class Metrics:
 class MetricsMiddleware:
     """Pure ASGI middleware: counts and times every HTTP request by its route template."""
 
-    def __init__(self, app, metrics: Metrics) -> None:
+    def __init__(self, app, metrics: Metrics, log_requests: bool = False) -> None:
         self.app = app
         self.metrics = metrics
+        self.log_requests = log_requests
 
     async def __call__(self, scope, receive, send) -> None:
         if scope["type"] != "http":
@@ -56,4 +60,11 @@ class MetricsMiddleware:
             if scope["path"].startswith("/v1/") and template.startswith("/segmentations"):
                 template = "/v1" + template
             self.metrics.requests.labels(scope["method"], template, str(status[0])).inc()
-            self.metrics.latency.labels(template).observe(time.perf_counter() - started)
+            elapsed = time.perf_counter() - started
+            self.metrics.latency.labels(template).observe(elapsed)
+            if self.log_requests:
+                params = scope.get("path_params") or {}
+                request_log.info("%s %s %s", scope["method"], template, status[0], extra={
+                    "method": scope["method"], "route": template, "status": status[0],
+                    "duration_ms": round(elapsed * 1000, 3), "segmentation": params.get("name"),
+                    "version": params.get("version")})

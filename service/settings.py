@@ -85,8 +85,10 @@ class Settings(BaseSettings):
     # Cyclic-GC generation-0 threshold set at start-up (Python's default is 700); 0 leaves the GC alone.
     gc_gen0_threshold: int = Field(50_000, ge=0)
 
+    # access_log: one line per request (method, route, status, duration_ms, segmentation), never record values.
     access_log: bool = False
     log_level: str = "info"
+    log_format: Literal["text", "json"] = "text"    # json: one JSON object a line
 
     @model_validator(mode="after")
     def _database_url_for_postgres(self) -> "Settings":
