@@ -77,6 +77,8 @@ def status_for(error: ServiceError) -> int:
 
 async def _service_error(request: Request, exc: ServiceError) -> JSONResponse:
     status = status_for(exc)
+    if isinstance(exc, StoreUnavailable):
+        request.app.state.metrics.store_errors.inc()
     if status >= 500:
         log.error("request failed: %s %s -> %s: %s", request.method, request.url.path, status, exc.detail)
     headers = {"WWW-Authenticate": "Bearer"} if status == 401 else None
@@ -212,6 +214,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
                     "(first: '%s' version %d); convert them once with 'segscore upgrade-store --store %s'",
                     len(legacy), *legacy[0], settings.store_dir)
     app.state.metrics = metrics
+    metrics.bundles_loaded.set_function(lambda: app.state.store.loaded_count())
     app.state.chart_cache = ChartCache(settings.chart_cache_size)
     for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router):
         app.include_router(router, prefix="/v1")

@@ -5,7 +5,7 @@ from __future__ import annotations
 import logging
 import time
 
-from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
 __all__ = ["CONTENT_TYPE_LATEST", "Metrics", "MetricsMiddleware"]
@@ -22,10 +22,31 @@ class Metrics:
                                  ["route"], registry=self.registry,
                                  buckets=(0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5,
                                           5, 10, 30, 60))
-        self.assigned = Counter("segscore_records_assigned", "Records assigned to a segment", registry=self.registry)
+        self.assigned = Counter("segscore_records_assigned", "Records assigned, by segmentation, version and segment",
+                                ["segmentation", "version", "segment"], registry=self.registry)
+        self.outliers = Counter("segscore_outliers_flagged", "Assigned records flagged as outliers",
+                                ["segmentation"], registry=self.registry)
         self.fits = Counter("segscore_fits", "Versions fitted", registry=self.registry)
+        self.fit_seconds = Histogram("segscore_fit_duration_seconds", "Wall time of a fit (worker process included)",
+                                     registry=self.registry, buckets=(0.5, 1, 2.5, 5, 10, 30, 60, 120, 300, 900, 1800))
         self.drift_reports = Counter("segscore_drift_reports", "Drift reports computed", ["status"],
                                      registry=self.registry)
+        self.drift_status = Gauge("segscore_drift_status", "Status of the last drift report (0 stable, 1 watch, 2 alert)",
+                                  ["segmentation"], registry=self.registry)
+        self.drift_psi = Gauge("segscore_drift_feature_psi", "Per-feature PSI of the last drift report",
+                               ["segmentation", "feature"], registry=self.registry)
+        self.store_errors = Counter("segscore_store_errors", "Calls answered 503 because the store was unavailable",
+                                    registry=self.registry)
+        self.bundles_loaded = Gauge("segscore_bundles_loaded", "Compiled versions held in memory",
+                                    registry=self.registry)
+
+    DRIFT_STATUS_NUMBER = {"stable": 0, "watch": 1, "alert": 2}
+
+    def drift_report(self, report: dict) -> None:
+        self.drift_reports.labels(report["status"]).inc()
+        self.drift_status.labels(report["name"]).set(self.DRIFT_STATUS_NUMBER.get(report["status"], -1))
+        for feature in report["features"]:
+            self.drift_psi.labels(report["name"], feature["name"]).set(feature["psi"])
 
     def exposition(self) -> bytes:
         return generate_latest(self.registry)

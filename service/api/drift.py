@@ -87,7 +87,7 @@ async def create_drift_report(
             f"{settings.drift_min_rows} (setting SEGSCORE_DRIFT_MIN_ROWS)")])
     values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]
     report = await anyio.to_thread.run_sync(build_and_store, store, loaded, values, drift_rules(settings), errors)
-    request.app.state.metrics.drift_reports.labels(report["status"]).inc()
+    request.app.state.metrics.drift_report(report)
     return Response(orjson.dumps(report), media_type="application/json")
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import time
 from typing import Annotated, Any
 
 import anyio
@@ -75,7 +76,9 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
                                time_limit=settings.fit_time_limit_seconds)
         return store.save_version(name, bundle, make_live=make_live, actor=actor)
 
+    started = time.perf_counter()
     report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
+    request.app.state.metrics.fit_seconds.observe(time.perf_counter() - started)
     request.app.state.metrics.fits.inc()
     return JSONResponse(report, status_code=201)
 

@@ -139,6 +139,9 @@ class ServingCache:
             return found
         return await anyio.to_thread.run_sync(self._serving_slow, name, version)
 
+    def loaded_count(self) -> int:
+        return len(self._cache)
+
     def readiness(self) -> list[dict[str, Any]]:
         """Problems of the live versions (empty: all good). Versions in memory, or loaded and verified once,
         are not loaded again, so a probe never evicts the versions being served. Raises StoreUnavailable."""
