@@ -21,7 +21,6 @@ from pathlib import Path
 
 from service.store import FilesystemStore
 from tests.store.test_filesystem import CHILD_TIMEOUT, _run_child, _wait_for, artifact_path, sha256_of
-from tests.store.test_filesystem import bundles  # noqa: F401  (fixture)
 
 KILLS = 20
 

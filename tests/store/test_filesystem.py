@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 
 from service.errors import BundleCorrupt, SegmentationNotFound, SegmentNotFound, StoreUnavailable, VersionNotFound
-from service.store import FilesystemStore
+from service.store import FilesystemStore, ServingCache
 
 REPO = Path(__file__).resolve().parents[2]
 CHILD_TIMEOUT = 120
@@ -115,7 +115,8 @@ def test_missing_artifact_is_a_clear_error(store, bundles):
 
 
 def test_loaded_bundles_are_cached_lru(tmp_path, bundles):
-    store = FilesystemStore(tmp_path / "store", cache_size=2)
+    # The cache sits above the backends (service/store/cache.py).
+    store = ServingCache(FilesystemStore(tmp_path / "store"), cache_size=2)
     for _ in range(3):
         store.save_version("shop", bundles[0], make_live=None)
     first = store.load("shop", 1)
