@@ -15,9 +15,6 @@ import tracemalloc
 
 import numpy as np
 import pytest
-from sklearn.cluster import KMeans
-from sklearn.decomposition import PCA
-from sklearn.preprocessing import StandardScaler
 from threadpoolctl import threadpool_limits
 
 from service.core.assign import assign, compile_bundle

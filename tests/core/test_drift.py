@@ -22,7 +22,6 @@ from service.core.bundle import FitConfig
 from service.core.drift import (
     DriftRules,
     bin_counts,
-    category_counts,
     drift_of_batch,
     grade,
     outlier_drift,
