@@ -42,6 +42,7 @@ class ServingCache:
         self._live: dict[str, int] = {}
         self._changes: int | None = None
         self._lock = threading.Lock()
+        self._refresh_lock = threading.Lock()
         self.refresh()
 
     def __getattr__(self, attribute: str) -> Any:
@@ -52,21 +53,28 @@ class ServingCache:
 
     # ----------------------------------------------------------------- staying in step
     def refresh(self, *, force: bool = False) -> bool:
-        """Re-read the live pointers if the index's ``changes`` counter moved (or ``force``); return whether
-        it did. Raises StoreUnavailable when the index cannot be read (the state in memory stays as it was)."""
-        changes = self.backend.counters().get("changes", 0)
-        if changes == self._changes and not force:
-            return False
-        live = self.backend.live_versions()
-        existing = self.backend.version_keys()
-        with self._lock:
-            self._live = live
-            self._labels.clear()
-            for key in [k for k in self._cache if k not in existing]:
-                del self._cache[key]          # deleted elsewhere
-            self._verified_evicted &= existing
-            self._changes = changes
-        return True
+        """Re-read the live pointers, and the labels of the versions held, if the index's ``changes`` counter
+        moved (or ``force``); return whether it did. Raises StoreUnavailable when the index cannot be read: the
+        state in memory then stays as it was, whole (nothing is dropped before its replacement is read).
+
+        One refresh at a time: a background refresh that read the counter before a write cannot overwrite the
+        state that the writer's own refresh read after it."""
+        with self._refresh_lock:
+            changes = self.backend.counters().get("changes", 0)
+            if changes == self._changes and not force:
+                return False
+            live = self.backend.live_versions()
+            existing = self.backend.version_keys()
+            held = (set(self._cache) | set(live.items())) & set(self._labels) & existing
+            labels = {key: self.backend.labels(*key) for key in held}
+            with self._lock:
+                self._live = live
+                self._labels = labels
+                for key in [k for k in self._cache if k not in existing]:
+                    del self._cache[key]          # deleted elsewhere
+                self._verified_evicted &= existing
+                self._changes = changes
+            return True
 
     def watch(self, wake: Callable[[], None]) -> None:
         """Call ``wake`` (from any thread) when another process changed the index, if the backend can tell."""
