@@ -44,7 +44,7 @@ from service.errors import (
 from service.metrics import Metrics, MetricsMiddleware
 from service.middleware import BodyReadTimeout, ErrorBoundary, RequestIdMiddleware
 from service.settings import Settings, get_settings
-from service.store import FilesystemStore
+from service.store import BundleStore, open_store
 
 log = logging.getLogger("segscore")
 
@@ -77,6 +77,8 @@ def status_for(error: ServiceError) -> int:
 
 async def _service_error(request: Request, exc: ServiceError) -> JSONResponse:
     status = status_for(exc)
+    if isinstance(exc, StoreUnavailable):
+        request.app.state.metrics.store_errors.inc()
     if status >= 500:
         log.error("request failed: %s %s -> %s: %s", request.method, request.url.path, status, exc.detail)
     headers = {"WWW-Authenticate": "Bearer"} if status == 401 else None
@@ -125,24 +127,31 @@ def _prune_drift_reports(app: FastAPI) -> None:
             log.info("drift-report retention (%d days): deleted %d report(s)", days, gone)
 
 
-async def _maintenance(app: FastAPI) -> None:
-    """Background loop, off the request path: re-read changed API keys about every second, and apply the
-    drift-report retention every hour (it also runs once at start-up, before the first request)."""
+async def _maintenance(app: FastAPI, wake: asyncio.Event) -> None:
+    """Background loop, off the request path: about every second (at once when the store hears of a change
+    made elsewhere) bring the serving state and the API keys in step with the store; every hour apply the
+    drift-report retention (it also runs once at start-up, before the first request)."""
     next_retention = anyio.current_time() + RETENTION_EVERY_SECONDS
     while True:
         try:
+            await anyio.to_thread.run_sync(app.state.store.refresh)
             await anyio.to_thread.run_sync(app.state.keyring.refresh)
             if anyio.current_time() >= next_retention:
                 next_retention = anyio.current_time() + RETENTION_EVERY_SECONDS
                 await anyio.to_thread.run_sync(_prune_drift_reports, app)
         except Exception as exc:  # a store that is briefly unreadable must not end the loop
             log.warning("background store check failed: %s", type(exc).__name__)
-        await anyio.sleep(KEY_POLL_SECONDS)
+        with suppress(asyncio.TimeoutError):
+            await asyncio.wait_for(wake.wait(), KEY_POLL_SECONDS)
+        wake.clear()
 
 
-def create_app(settings: Settings | None = None) -> FastAPI:
+def create_app(settings: Settings | None = None, store: BundleStore | None = None) -> FastAPI:
+    """The application. ``store``: an open store (its caller closes it); default ``open_store(settings)``,
+    which the app closes when it shuts down."""
     settings = settings or get_settings()
     metrics = Metrics()
+    owns_store = store is None
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
@@ -155,7 +164,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                         "address %s only. Create a key with 'segscore keys create --store %s --scope admin "
                         "--name NAME' to turn it on.", settings.store_dir, settings.host, settings.store_dir)
         await anyio.to_thread.run_sync(_prune_drift_reports, app)
-        maintenance = asyncio.get_running_loop().create_task(_maintenance(app))
+        loop, wake = asyncio.get_running_loop(), asyncio.Event()
+        app.state.store.watch(lambda: loop.call_soon_threadsafe(wake.set))
+        maintenance = loop.create_task(_maintenance(app, wake))
+        keyring.refreshed_in_background = True
         app.state.fit_limiter = anyio.CapacityLimiter(settings.fit_concurrency)
         # Bodies over large_body_bytes are read and parsed by at most this many requests at once; the others
         # wait their turn before their body is read, so memory stays bounded (see README, "Limits").
@@ -170,9 +182,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         try:
             yield
         finally:
+            keyring.refreshed_in_background = False
             maintenance.cancel()
             with suppress(asyncio.CancelledError):
                 await maintenance
+            if owns_store:
+                await anyio.to_thread.run_sync(app.state.store.close)
 
     app = FastAPI(
         title="segscore",
@@ -193,14 +208,15 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         openapi_url="/openapi.json" if settings.docs_enabled else None,
     )
     app.state.settings = settings
-    app.state.store = FilesystemStore(settings.store_dir, cache_size=settings.bundle_cache_size)
+    app.state.store = store if store is not None else open_store(settings)
     app.state.keyring = KeyRing(app.state.store, open_without_keys=is_loopback(settings.host))
-    legacy = app.state.store.legacy_versions()
+    legacy = getattr(app.state.store, "legacy_versions", lambda: [])()    # the local backend's only
     if legacy:
         log.warning("%d version(s) are stored in the legacy pickle format, which the server does not load "
                     "(first: '%s' version %d); convert them once with 'segscore upgrade-store --store %s'",
                     len(legacy), *legacy[0], settings.store_dir)
     app.state.metrics = metrics
+    metrics.bundles_loaded.set_function(lambda: app.state.store.loaded_count())
     app.state.chart_cache = ChartCache(settings.chart_cache_size)
     for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router):
         app.include_router(router, prefix="/v1")
@@ -212,7 +228,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     # of the request carries it), metrics count the boundary's 500s, and the body timer is innermost.
     app.add_middleware(BodyReadTimeout, seconds=settings.body_read_timeout_seconds)
     app.add_middleware(ErrorBoundary)
-    app.add_middleware(MetricsMiddleware, metrics=metrics)
+    app.add_middleware(MetricsMiddleware, metrics=metrics, log_requests=settings.access_log)
     app.add_middleware(RequestIdMiddleware)
     return app
 

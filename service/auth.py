@@ -17,6 +17,7 @@ import threading
 import time
 from dataclasses import dataclass
 
+from service.errors import ServiceError
 from service.settings import SCOPES
 from service.store import BundleStore
 from service.store.keys import SHOWN_PREFIX, digest_matches
@@ -67,6 +68,8 @@ class KeyRing:
         self._keys = ()
         self._verified: dict[bytes, Caller] = {}
         self._checked_at = 0.0
+        # Set by the server's lifespan, whose background loop re-reads the keys every second.
+        self.refreshed_in_background = False
         self.refresh()
 
     def refresh(self) -> bool:
@@ -90,8 +93,13 @@ class KeyRing:
 
     def caller(self, key: str) -> Caller | None:
         """The verified caller for ``key``, or None for an unknown key."""
-        if time.monotonic() - self._checked_at > KEYS_VISIBLE_WITHIN:
-            self.refresh()
+        if not self.refreshed_in_background and time.monotonic() - self._checked_at > KEYS_VISIBLE_WITHIN:
+            # Only where no background loop re-reads the keys (an app used without its lifespan): the query
+            # would otherwise sit on the request path. A store that cannot be read keeps the keys as they were.
+            try:
+                self.refresh()
+            except ServiceError:
+                self._checked_at = time.monotonic()
         fingerprint = _fingerprint(key)
         known = self._verified.get(fingerprint)
         if known is not None:

@@ -44,37 +44,57 @@ def pin_blas_threads() -> None:
     threadpool_limits(limits=1)
 
 
-def fit_csv_into_store(settings: Settings, name: str, csv_bytes: bytes, params: dict) -> dict:
+def fit_csv_into_store(settings: Settings, name: str, csv_bytes: bytes, params: dict, store=None) -> dict:
     """Fit a CSV file into the store with the same checks as the HTTP fit endpoint."""
     from schemas import FitRequest
-    from service.api.payload import check_name
-    from service.api.segmentations import training_inputs
-    from service.api.validation import validate_model
     from service.core.fit import fit_bundle
     from service.core.frame import read_csv
-    from service.store import FilesystemStore
+    from service.inputs.checks import check_name, validate_model
+    from service.inputs.fit_input import training_inputs
+    from service.store import open_store
 
     check_name(name)
     request = validate_model(FitRequest, params)
     frame = read_csv(csv_bytes, request.id_column, max_rows=settings.max_fit_rows)
     values, config = training_inputs(request, settings, frame=frame)
     bundle = fit_bundle(values, config, max_agglomerative_rows=settings.max_agglomerative_rows)
-    store = FilesystemStore(settings.store_dir, cache_size=settings.bundle_cache_size)
+    store = store or open_store(settings)
     return store.save_version(name, bundle, make_live=request.make_live)
 
 
-def ensure_demo(settings: Settings) -> None:
+def ensure_demo(settings: Settings, store=None) -> None:
     """Fit the ``demo`` segmentation from synthetic data unless the store already has it."""
     from service.demo import demo_customers
-    from service.store import FilesystemStore
+    from service.store import open_store
 
-    store = FilesystemStore(settings.store_dir)
+    store = store or open_store(settings)
     if any(row["name"] == DEMO_NAME for row in store.list_segmentations()):
         return
     csv_bytes = demo_customers().to_csv(index=False).encode()
-    report = fit_csv_into_store(settings, DEMO_NAME, csv_bytes, {"id_column": "customer_id"})
+    report = fit_csv_into_store(settings, DEMO_NAME, csv_bytes, {"id_column": "customer_id"}, store)
     click.echo(f"fitted '{DEMO_NAME}' version {report['version']}: k={report['k']}, "
                f"{report['components']} components, {report['n_records']} records", err=True)
+
+
+def _store_options(function):
+    """``--backend``, ``--database-url`` and ``--store``: on every command that opens a store."""
+    function = click.option("--store", "store_dir", type=click.Path(path_type=Path), default=None,
+                            help="artifact directory (default models_store; env SEGSCORE_STORE_DIR)")(function)
+    function = click.option("--database-url", default=None,
+                            help="postgresql:// URL of the index (postgres backend; env SEGSCORE_DATABASE_URL)")(function)
+    return click.option("--backend", "store_backend", type=click.Choice(["local", "postgres"]), default=None,
+                        help="store backend (default local; env SEGSCORE_STORE_BACKEND)")(function)
+
+
+def _open_store(**options):
+    """The store of the command's options (a clean message, not a traceback, when it cannot be opened)."""
+    from service.errors import ServiceError
+    from service.store import open_store
+
+    try:
+        return open_store(_settings(**options))
+    except ServiceError as exc:
+        raise click.ClickException(str(exc.detail)) from None
 
 
 @click.group()
@@ -88,25 +108,28 @@ def main() -> None:
 @main.command()
 @click.option("--host", default=None, help="bind address (default 127.0.0.1; env SEGSCORE_HOST)")
 @click.option("--port", type=int, default=None, help="port (default 8000; env SEGSCORE_PORT)")
-@click.option("--store", "store_dir", type=click.Path(path_type=Path), default=None,
-              help="store directory (default models_store; env SEGSCORE_STORE_DIR)")
+@_store_options
 @click.option("--demo", is_flag=True, help="fit the 'demo' segmentation from synthetic data if absent")
-def serve(host: str | None, port: int | None, store_dir: Path | None, demo: bool) -> None:
+def serve(host: str | None, port: int | None, demo: bool, **store_options) -> None:
     """Run the HTTP API with uvicorn (one process)."""
     from service.app import create_app, start_up_refusal
     from service.logs import configure_logging
 
-    settings = _settings(host=host, port=port, store_dir=store_dir)
-    configure_logging(settings.log_level)
-    app = create_app(settings)
+    settings = _settings(host=host, port=port, **store_options)
+    configure_logging(settings.log_level, settings.log_format)
+    store = _open_store(**store_options)
+    app = create_app(settings, store)
     refusal = start_up_refusal(settings, app.state.keyring)
     if refusal:
         click.echo(refusal, err=True)
         sys.exit(1)
     pin_blas_threads()
     if demo:
-        ensure_demo(settings)
-    run_server(app, settings)
+        ensure_demo(settings, store)
+    try:
+        run_server(app, settings)
+    finally:
+        store.close()
 
 
 def run_server(app, settings: Settings) -> None:
@@ -117,7 +140,7 @@ def run_server(app, settings: Settings) -> None:
 
     # log_config=None: uvicorn keeps our logging set-up (request ids in every line) instead of its own.
     uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
-                access_log=settings.access_log, log_level=settings.log_level,
+                access_log=False, log_level=settings.log_level,   # the app logs requests itself
                 timeout_keep_alive=settings.keep_alive_seconds,
                 http=head_limited_protocol(settings.header_read_timeout_seconds, settings.max_header_bytes))
 
@@ -142,22 +165,23 @@ def demo_data(rows: int, seed: int, out: Path) -> None:
 @main.command("store-fit")
 @click.argument("name")
 @click.argument("csv_file", type=click.Path(exists=True, dir_okay=False, path_type=Path))
-@click.option("--store", "store_dir", type=click.Path(path_type=Path), default=None,
-              help="store directory (default models_store; env SEGSCORE_STORE_DIR)")
+@_store_options
 @fit_options
-def store_fit(name: str, csv_file: Path, store_dir: Path | None, **options) -> None:
-    """Fit a new version of NAME from CSV_FILE (optionally .gz) straight into a local store, without a server;
+def store_fit(name: str, csv_file: Path, store_dir: Path | None, database_url: str | None,
+              store_backend: str | None, **options) -> None:
+    """Fit a new version of NAME from CSV_FILE (optionally .gz) straight into a store, without a server;
     print the fit report as JSON. (``segscore fit FILE --name N`` fits through a running server.)"""
     from service.client._files import open_binary
     from service.errors import ServiceError
 
+    store_options = {"store_dir": store_dir, "database_url": database_url, "store_backend": store_backend}
     params = fit_params(**options)
-    settings = _settings(store_dir=store_dir)
+    settings = _settings(**store_options)
     pin_blas_threads()
     try:
         with open_binary(csv_file) as handle:
             body = handle.read()
-        report = fit_csv_into_store(settings, name, body, params)
+        report = fit_csv_into_store(settings, name, body, params, _open_store(**store_options))
     except ServiceError as exc:
         raise click.ClickException(json.dumps(exc.detail)) from None
     except (EOFError, OSError) as exc:
@@ -166,13 +190,10 @@ def store_fit(name: str, csv_file: Path, store_dir: Path | None, **options) -> N
 
 
 @main.command("list")
-@click.option("--store", "store_dir", type=click.Path(path_type=Path), default=None)
-def list_segmentations(store_dir: Path | None) -> None:
-    """List the segmentations in the local store."""
-    from service.store import FilesystemStore
-
-    settings = _settings(store_dir=store_dir)
-    for row in FilesystemStore(settings.store_dir).list_segmentations():
+@_store_options
+def list_segmentations(**store_options) -> None:
+    """List the segmentations in the store."""
+    for row in _open_store(**store_options).list_segmentations():
         click.echo(f"{row['name']}\tlive={row['live_version']}\tlatest={row['latest_version']}\t"
                    f"updated={row['updated_at']}")
 
@@ -182,32 +203,21 @@ def keys() -> None:
     """Create, list and revoke the API keys of a store (a running server sees changes within 2 s)."""
 
 
-def _store_option(function):
-    return click.option("--store", "store_dir", type=click.Path(path_type=Path), default=None,
-                        help="store directory (default models_store; env SEGSCORE_STORE_DIR)")(function)
-
-
-def _open_store(store_dir: Path | None):
-    from service.store import FilesystemStore
-
-    return FilesystemStore(_settings(store_dir=store_dir).store_dir)
-
-
 @keys.command("create")
-@_store_option
+@_store_options
 @click.option("--name", required=True, help="unique name; recorded as the actor of this key's writes")
 @click.option("--scope", "scopes", multiple=True, required=True, type=click.Choice(SCOPES),
               help="repeat for several; admin implies every scope")
-def keys_create(store_dir: Path | None, name: str, scopes: tuple[str, ...]) -> None:
+def keys_create(name: str, scopes: tuple[str, ...], **store_options) -> None:
     """Create a key and print it once, alone on the last line (the store keeps only a salted digest)."""
-    from service.api.payload import NAME_PATTERN
     from service.errors import ServiceError
+    from service.inputs.checks import NAME_PATTERN
 
     if not NAME_PATTERN.fullmatch(name):
         raise click.BadParameter(f"must match {NAME_PATTERN.pattern}", param_hint="--name")
     scopes = sorted(set(scopes))
     try:
-        key = _open_store(store_dir).create_key(name, scopes)
+        key = _open_store(**store_options).create_key(name, scopes)
     except ServiceError as exc:
         raise click.ClickException(str(exc.detail)) from None
     click.echo(f"created API key '{name}' with scope(s) {', '.join(scopes)}. "
@@ -216,35 +226,35 @@ def keys_create(store_dir: Path | None, name: str, scopes: tuple[str, ...]) -> N
 
 
 @keys.command("list")
-@_store_option
-def keys_list(store_dir: Path | None) -> None:
+@_store_options
+def keys_list(**store_options) -> None:
     """Name, scopes, creation time and the first characters of every key (never a whole key)."""
-    for stored in _open_store(store_dir).stored_keys():
+    for stored in _open_store(**store_options).stored_keys():
         click.echo(f"{stored.name}\tscopes={','.join(stored.scopes)}\tcreated={stored.created_at}\t"
                    f"starts={stored.prefix}...")
 
 
 @keys.command("revoke")
-@_store_option
+@_store_options
 @click.option("--name", required=True)
-def keys_revoke(store_dir: Path | None, name: str) -> None:
+def keys_revoke(name: str, **store_options) -> None:
     """Delete a key; a running server refuses it within 2 s."""
     from service.errors import ServiceError
 
     try:
-        _open_store(store_dir).revoke_key(name)
+        _open_store(**store_options).revoke_key(name)
     except ServiceError as exc:
         raise click.ClickException(str(exc.detail)) from None
     click.echo(f"revoked API key '{name}'")
 
 
 @main.command()
-@_store_option
+@_store_options
 @click.option("--name", default=None, help="a segmentation; default: key and retention events")
 @click.option("--limit", type=click.IntRange(1, 100_000), default=50, show_default=True)
-def events(store_dir: Path | None, name: str | None, limit: int) -> None:
+def events(name: str | None, limit: int, **store_options) -> None:
     """Who did what, newest first: one JSON object per line (at, actor, action, version, details)."""
-    for event in _open_store(store_dir).events(name, limit=limit):
+    for event in _open_store(**store_options).events(name, limit=limit):
         click.echo(json.dumps(event))
 
 
@@ -255,11 +265,10 @@ def upgrade_store(store_dir: Path | None) -> None:
 
     This reads the old pickled files, so run it only on a store whose files you trust."""
     from service.errors import ServiceError
-    from service.store import FilesystemStore
 
-    settings = _settings(store_dir=store_dir)
     try:
-        converted = FilesystemStore(settings.store_dir).upgrade_legacy_versions()
+        # The legacy pickle format exists only in local stores.
+        converted = _open_store(store_dir=store_dir, store_backend="local").upgrade_legacy_versions()
     except ServiceError as exc:
         raise click.ClickException(str(exc.detail)) from None
     for name, version in converted:

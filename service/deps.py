@@ -9,7 +9,7 @@ from fastapi import Depends, Request
 from service.auth import LOCAL_ACTOR, SCOPES, KeyRing
 from service.errors import MissingKey, ScopeDenied
 from service.settings import Settings
-from service.store import FilesystemStore
+from service.store import BundleStore
 
 
 # Every dependency here is ``async def`` although none awaits: FastAPI runs a plain ``def`` dependency in
@@ -20,12 +20,12 @@ async def get_app_settings(request: Request) -> Settings:
     return request.app.state.settings
 
 
-async def get_store(request: Request) -> FilesystemStore:
+async def get_store(request: Request) -> BundleStore:
     return request.app.state.store
 
 
 SettingsDep = Annotated[Settings, Depends(get_app_settings)]
-StoreDep = Annotated[FilesystemStore, Depends(get_store)]
+StoreDep = Annotated[BundleStore, Depends(get_store)]
 
 
 def authorize(request: Request, key: str | None, scope: str) -> None:

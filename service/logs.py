@@ -7,10 +7,12 @@ the service logs routes, statuses, counts and its own messages only.
 
 from __future__ import annotations
 
+import json
 import logging
 import re
 import uuid
 from contextvars import ContextVar
+from datetime import datetime, timezone
 
 REQUEST_ID_HEADER = "x-request-id"
 REQUEST_ID_PATTERN = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
@@ -35,16 +37,44 @@ class RequestIdFilter(logging.Filter):
         return True
 
 
-def configure_logging(level: str = "info") -> None:
+class JsonFormatter(logging.Formatter):
+    """One JSON object a line: timestamp (UTC), level, logger, request id, message, and the request fields
+    of a request line (method, route, status, duration_ms, segmentation, version) where the record has them."""
+
+    REQUEST_FIELDS = ("method", "route", "status", "duration_ms", "segmentation", "version")
+
+    def format(self, record: logging.LogRecord) -> str:
+        entry = {
+            "timestamp": datetime.fromtimestamp(record.created, timezone.utc).isoformat(timespec="milliseconds")
+            .replace("+00:00", "Z"),
+            "level": record.levelname.lower(),
+            "logger": record.name,
+            "request_id": getattr(record, "request_id", NO_REQUEST),
+            "message": record.getMessage(),
+        }
+        for field in self.REQUEST_FIELDS:
+            value = getattr(record, field, None)
+            if value is not None:
+                entry[field] = value
+        if record.exc_info and record.exc_info[0] is not None:
+            entry["error"] = record.exc_info[0].__name__     # the class only: a traceback may hold values
+        return json.dumps(entry, default=str)
+
+
+def formatter(log_format: str) -> logging.Formatter:
+    return JsonFormatter() if log_format == "json" else logging.Formatter(LOG_FORMAT)
+
+
+def configure_logging(level: str = "info", log_format: str = "text") -> None:
     """One stderr handler on the root logger, with the request id in every line (uvicorn's loggers
-    propagate to it when uvicorn is started with ``log_config=None``)."""
+    propagate to it when uvicorn is started with ``log_config=None``); ``log_format`` "json" or "text"."""
     root = logging.getLogger()
+    root.setLevel(level.upper())
     for handler in root.handlers:
         if any(isinstance(f, RequestIdFilter) for f in handler.filters):
+            handler.setFormatter(formatter(log_format))
             return
     handler = logging.StreamHandler()
     handler.addFilter(RequestIdFilter())
-    handler.setFormatter(logging.Formatter(LOG_FORMAT))
+    handler.setFormatter(formatter(log_format))
     root.addHandler(handler)
-    root.setLevel(level.upper())
-

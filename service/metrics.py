@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import logging
 import time
 
-from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
 __all__ = ["CONTENT_TYPE_LATEST", "Metrics", "MetricsMiddleware"]
+
+request_log = logging.getLogger("segscore.requests")
 
 
 class Metrics:
@@ -19,10 +22,31 @@ class Metrics:
                                  ["route"], registry=self.registry,
                                  buckets=(0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5,
                                           5, 10, 30, 60))
-        self.assigned = Counter("segscore_records_assigned", "Records assigned to a segment", registry=self.registry)
+        self.assigned = Counter("segscore_records_assigned", "Records assigned, by segmentation, version and segment",
+                                ["segmentation", "version", "segment"], registry=self.registry)
+        self.outliers = Counter("segscore_outliers_flagged", "Assigned records flagged as outliers",
+                                ["segmentation"], registry=self.registry)
         self.fits = Counter("segscore_fits", "Versions fitted", registry=self.registry)
+        self.fit_seconds = Histogram("segscore_fit_duration_seconds", "Wall time of a fit (worker process included)",
+                                     registry=self.registry, buckets=(0.5, 1, 2.5, 5, 10, 30, 60, 120, 300, 900, 1800))
         self.drift_reports = Counter("segscore_drift_reports", "Drift reports computed", ["status"],
                                      registry=self.registry)
+        self.drift_status = Gauge("segscore_drift_status", "Status of the last drift report (0 stable, 1 watch, 2 alert)",
+                                  ["segmentation"], registry=self.registry)
+        self.drift_psi = Gauge("segscore_drift_feature_psi", "Per-feature PSI of the last drift report",
+                               ["segmentation", "feature"], registry=self.registry)
+        self.store_errors = Counter("segscore_store_errors", "Calls answered 503 because the store was unavailable",
+                                    registry=self.registry)
+        self.bundles_loaded = Gauge("segscore_bundles_loaded", "Compiled versions held in memory",
+                                    registry=self.registry)
+
+    DRIFT_STATUS_NUMBER = {"stable": 0, "watch": 1, "alert": 2}
+
+    def drift_report(self, report: dict) -> None:
+        self.drift_reports.labels(report["status"]).inc()
+        self.drift_status.labels(report["name"]).set(self.DRIFT_STATUS_NUMBER.get(report["status"], -1))
+        for feature in report["features"]:
+            self.drift_psi.labels(report["name"], feature["name"]).set(feature["psi"])
 
     def exposition(self) -> bytes:
         return generate_latest(self.registry)
@@ -31,9 +55,10 @@ class Metrics:
 class MetricsMiddleware:
     """Pure ASGI middleware: counts and times every HTTP request by its route template."""
 
-    def __init__(self, app, metrics: Metrics) -> None:
+    def __init__(self, app, metrics: Metrics, log_requests: bool = False) -> None:
         self.app = app
         self.metrics = metrics
+        self.log_requests = log_requests
 
     async def __call__(self, scope, receive, send) -> None:
         if scope["type"] != "http":
@@ -56,4 +81,11 @@ class MetricsMiddleware:
             if scope["path"].startswith("/v1/") and template.startswith("/segmentations"):
                 template = "/v1" + template
             self.metrics.requests.labels(scope["method"], template, str(status[0])).inc()
-            self.metrics.latency.labels(template).observe(time.perf_counter() - started)
+            elapsed = time.perf_counter() - started
+            self.metrics.latency.labels(template).observe(elapsed)
+            if self.log_requests:
+                params = scope.get("path_params") or {}
+                request_log.info("%s %s %s", scope["method"], template, status[0], extra={
+                    "method": scope["method"], "route": template, "status": status[0],
+                    "duration_ms": round(elapsed * 1000, 3), "segmentation": params.get("name"),
+                    "version": params.get("version")})

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from functools import lru_cache
 from pathlib import Path
+from typing import Literal
 
 from pydantic import Field, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
@@ -15,7 +16,16 @@ SCOPES = ("read", "fit", "assign", "drift", "admin")
 class Settings(BaseSettings):
     model_config = SettingsConfigDict(env_prefix="SEGSCORE_", frozen=True)
 
+    # Where versions are kept. "local": a SQLite index and the artifacts under store_dir (one machine).
+    # "postgres": the index in PostgreSQL at database_url, the artifacts under store_dir, a directory (or volume)
+    # shared by every replica. See README, "Deployment".
+    store_backend: Literal["local", "postgres"] = "local"
     store_dir: Path = Path("models_store")
+    database_url: str | None = None
+    # Connections the postgres backend keeps open per process, and how long a request waits for the database
+    # (a connection, or an answer) before it is refused with 503.
+    database_pool_size: int = Field(4, ge=1, le=100)
+    database_timeout_seconds: float = Field(5.0, gt=0)
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=1, le=65535)
 
@@ -75,8 +85,20 @@ class Settings(BaseSettings):
     # Cyclic-GC generation-0 threshold set at start-up (Python's default is 700); 0 leaves the GC alone.
     gc_gen0_threshold: int = Field(50_000, ge=0)
 
+    # access_log: one line per request (method, route, status, duration_ms, segmentation), never record values.
     access_log: bool = False
     log_level: str = "info"
+    log_format: Literal["text", "json"] = "text"    # json: one JSON object a line
+
+    @model_validator(mode="after")
+    def _database_url_for_postgres(self) -> "Settings":
+        if self.store_backend == "postgres":
+            if not self.database_url:
+                raise ValueError("store_backend 'postgres' needs database_url (SEGSCORE_DATABASE_URL or "
+                                 "--database-url), a postgresql:// URL")
+            if not self.database_url.startswith(("postgresql://", "postgres://")):
+                raise ValueError("database_url must be a postgresql:// URL")
+        return self
 
     @model_validator(mode="after")
     def _drift_bands_ordered(self) -> "Settings":

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import shutil
+from contextlib import contextmanager
 
 import numpy as np
 import pytest
@@ -89,3 +90,73 @@ def png_size(body: bytes) -> tuple[int, int]:
         assert image.format == "PNG"
         image.load()                 # decodes every pixel: a truncated or corrupt file fails here
         return image.size
+
+
+# ------------------------------------------------------------------ store backends (local and postgres)
+# The postgres tests use the server named by SEGSCORE_TEST_DATABASE_URL (`.ci/run` and `make test` set it to
+# postgresql://postgres@127.0.0.1:5432/test). Each test gets a schema of its own, dropped afterwards. Without
+# the variable they skip, except under CI=true, where a missing or unreachable server fails them.
+TEST_DATABASE_VARIABLE = "SEGSCORE_TEST_DATABASE_URL"
+
+
+def reachable_test_database_url() -> str:
+    import os
+
+    import psycopg
+
+    url = os.environ.get(TEST_DATABASE_VARIABLE)
+    in_ci = os.environ.get("CI") == "true"
+    if not url:
+        if in_ci:
+            pytest.fail(f"CI=true: {TEST_DATABASE_VARIABLE} must name the PostgreSQL server of the store tests")
+        pytest.skip(f"set {TEST_DATABASE_VARIABLE} to run the postgres store tests")
+    try:
+        psycopg.connect(url, connect_timeout=5).close()
+    except psycopg.Error as exc:
+        if in_ci:
+            pytest.fail(f"CI=true: PostgreSQL at {TEST_DATABASE_VARIABLE} is unreachable: {type(exc).__name__}")
+        pytest.skip(f"PostgreSQL at {TEST_DATABASE_VARIABLE} is unreachable")
+    return url
+
+
+def with_search_path(url: str, schema: str) -> str:
+    """``url`` whose connections use ``schema`` (libpq's ``options`` parameter)."""
+    from urllib.parse import parse_qsl, urlencode, urlsplit, urlunsplit
+
+    parts = urlsplit(url)
+    query = dict(parse_qsl(parts.query))
+    query["options"] = f"-csearch_path={schema}"
+    return urlunsplit(parts._replace(query=urlencode(query)))
+
+
+@contextmanager
+def fresh_schema_url():
+    """A postgresql:// URL whose connections live in a fresh schema, dropped on exit."""
+    import uuid
+
+    import psycopg
+
+    url = reachable_test_database_url()
+    schema = f"segscore_test_{uuid.uuid4().hex[:12]}"
+    with psycopg.connect(url, autocommit=True) as connection:
+        connection.execute(f'CREATE SCHEMA "{schema}"')
+    try:
+        yield with_search_path(url, schema)
+    finally:
+        with psycopg.connect(url, autocommit=True) as connection:
+            connection.execute(f'DROP SCHEMA "{schema}" CASCADE')
+
+
+@pytest.fixture
+def postgres_url():
+    with fresh_schema_url() as url:
+        yield url
+
+
+@pytest.fixture(params=["local", "postgres"])
+def store_settings(request, tmp_path):
+    """Settings of a fresh store on each backend (the same store tests run on both)."""
+    if request.param == "postgres":
+        url = request.getfixturevalue("postgres_url")
+        return Settings(store_backend="postgres", database_url=url, store_dir=tmp_path / "artifacts")
+    return Settings(store_dir=tmp_path / "store")

@@ -88,6 +88,15 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
     ]
 
 
+def count_assigned(metrics, name: str, version: int, result: Assignment) -> None:
+    for segment, count in enumerate(np.bincount(result.segment).tolist()):
+        if count:
+            metrics.assigned.labels(name, str(version), str(segment)).inc(count)
+    flagged = int(np.count_nonzero(result.far | result.off_plane))
+    if flagged:
+        metrics.outliers.labels(name).inc(flagged)
+
+
 @router.post("/{name}/assign", response_model=AssignResponse, openapi_extra=RECORDS_BODY,
              dependencies=[AssignScope, StrictQuery], summary="Assign records to segments",
              responses=error_responses(400, 401, 403, 404, 409, 413, 415, 422, 500, 503))
@@ -99,22 +108,21 @@ async def assign_records(
     version: Annotated[VersionNumber | None, Query(description="default: the live version")] = None,
     on_error: Annotated[Literal["fail", "skip"], Query(description="skip: answer for the good records")] = "fail",
 ) -> Response:
-    loaded, batch = await read_version_batch(request, store, name, version, settings=settings,
+    loaded, labels, batch = await read_version_batch(request, store, name, version, settings=settings,
                                              max_rows=settings.max_assign_rows, echo_ids=True)
     number, features = loaded.version, list(loaded.compiled.features)
     too_many_missing(batch, features)
     rows, errors = split_good_rows(batch, on_error == "skip")
     values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]
-    labels = store.labels(name, number)
 
-    def compute() -> list[dict[str, Any]]:
+    def compute() -> tuple[list[dict[str, Any]], Assignment]:
         result, missing = run_assignment(loaded, values, rows)
-        return build_results(loaded, labels, batch.ids, rows, result, missing)
+        return build_results(loaded, labels, batch.ids, rows, result, missing), result
 
     if rows.size <= settings.inline_assign_rows:
-        results = compute()
+        results, assignment = compute()
     else:
-        results = await anyio.to_thread.run_sync(compute)
-    request.app.state.metrics.assigned.inc(rows.size)
+        results, assignment = await anyio.to_thread.run_sync(compute)
+    count_assigned(request.app.state.metrics, name, number, assignment)
     body = {"name": name, "version": number, "results": results, "errors": errors}
     return Response(orjson.dumps(body), media_type="application/json")

@@ -20,7 +20,7 @@ from service.api.validation import StrictQuery, VersionNumber, error_responses
 from service.core.assign import assign, impute
 from service.deps import ChartReadScope, StoreDep
 from service.errors import ChartNotFound
-from service.store import FilesystemStore
+from service.store import BundleStore
 
 router = APIRouter(prefix="/segmentations", tags=["charts"])
 
@@ -31,7 +31,7 @@ PNG_RESPONSE = {200: {"content": {"image/png": {}}, "description": "a PNG image"
                 **error_responses(401, 403, 404, 422, 503)}
 
 
-def _map_png(store: FilesystemStore, report: dict[str, Any]) -> bytes:
+def _map_png(store: BundleStore, report: dict[str, Any]) -> bytes:
     """The map of a version: its stored training sample, imputed, projected and assigned as assign does."""
     loaded = store.load(report["name"], report["version"])
     compiled = loaded.compiled
@@ -44,14 +44,14 @@ def _map_png(store: FilesystemStore, report: dict[str, Any]) -> bytes:
     return charts.map_png(report, layout, assignment.segment, assignment.outlier)
 
 
-DRAW_VERSION_CHART: dict[str, Callable[[FilesystemStore, dict[str, Any]], bytes]] = {
+DRAW_VERSION_CHART: dict[str, Callable[[BundleStore, dict[str, Any]], bytes]] = {
     "selection": lambda store, report: charts.selection_png(report),
     "map": _map_png,
     "profiles": lambda store, report: charts.profiles_png(report),
 }
 
 
-def version_chart_png(request: Request, store: FilesystemStore, name: str, version: int, chart: str) -> bytes:
+def version_chart_png(request: Request, store: BundleStore, name: str, version: int, chart: str) -> bytes:
     """PNG bytes of one chart of a version (from the cache when drawn before). Raises NotFound."""
     if chart not in DRAW_VERSION_CHART:
         raise ChartNotFound(chart, VERSION_CHARTS)
@@ -62,7 +62,7 @@ def version_chart_png(request: Request, store: FilesystemStore, name: str, versi
     return cache.get_or_make(key, lambda: DRAW_VERSION_CHART[chart](store, report))
 
 
-def history_chart_png(request: Request, store: FilesystemStore, name: str) -> bytes:
+def history_chart_png(request: Request, store: BundleStore, name: str) -> bytes:
     settings = request.app.state.settings
     reports = store.list_drift_reports(check_name(name), version=None, limit=HISTORY_REPORTS)
     newest = reports[0]["id"] if reports else None

@@ -22,7 +22,7 @@ from service.core.frame import MAX_LISTED_PROBLEMS
 from service.deps import DriftScope, SettingsDep, StoreDep
 from service.errors import InvalidInput, RecordProblem
 from service.settings import Settings
-from service.store import FilesystemStore, LoadedVersion
+from service.store import BundleStore, LoadedVersion
 
 router = APIRouter(prefix="/segmentations", tags=["drift"])
 
@@ -48,7 +48,7 @@ def _now() -> str:
     return datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
-def build_and_store(store: FilesystemStore, loaded: LoadedVersion, values, rules: DriftRules,
+def build_and_store(store: BundleStore, loaded: LoadedVersion, values, rules: DriftRules,
                     errors: list[dict[str, Any]], rows=None) -> dict[str, Any]:
     """Assign (fast path), compute the report, check it against the schema, store it. CPU-bound: run in a thread."""
     assignment, _ = run_assignment(loaded, values, rows)     # rows: input indices, for error items
@@ -77,7 +77,7 @@ async def create_drift_report(
 ) -> Response:
     # Ids are not echoed in a drift report, so an id_column need not be present. Missing values are kept
     # (no "too many missing" rule as in assign): a feed sending nulls is what the missing-share test is for.
-    loaded, batch = await read_version_batch(request, store, name, version, settings=settings,
+    loaded, _, batch = await read_version_batch(request, store, name, version, settings=settings,
                                              max_rows=settings.max_drift_rows, echo_ids=False)
     rows, errors = split_good_rows(batch, on_error == "skip")
     if rows.size < settings.drift_min_rows:
@@ -88,7 +88,7 @@ async def create_drift_report(
     values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]
     report = await anyio.to_thread.run_sync(build_and_store, store, loaded, values, drift_rules(settings), errors,
                                             rows)
-    request.app.state.metrics.drift_reports.labels(report["status"]).inc()
+    request.app.state.metrics.drift_report(report)
     return Response(orjson.dumps(report), media_type="application/json")
 
 

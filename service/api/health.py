@@ -20,16 +20,10 @@ def healthz() -> dict[str, str]:
 @router.get("/readyz", summary="Store reachable and live bundles loadable",
             responses={503: {"description": "store unavailable, or a live version cannot be loaded (named)"}})
 def readyz(store: StoreDep) -> JSONResponse:
-    problems = []
+    # A plain ``def`` (FastAPI's thread pool): the store check is a query. Versions already loaded, or loaded
+    # and verified once, are not read again (see ServingCache.readiness).
     try:
-        store.check()
-        for row in store.list_segmentations():
-            if row["live_version"] is None:
-                continue
-            try:
-                store.load(row["name"], row["live_version"])
-            except ServiceError as exc:
-                problems.append({"segmentation": row["name"], "version": row["live_version"], "message": str(exc.detail)})
+        problems = store.readiness()
     except ServiceError as exc:
         return JSONResponse({"status": "unavailable", "detail": str(exc.detail)}, status_code=503)
     if problems:

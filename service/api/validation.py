@@ -4,56 +4,22 @@ parameters refused."""
 from __future__ import annotations
 
 import re
-from typing import Annotated, Any, Iterable
+from typing import Annotated, Any
 
 from fastapi import Depends, Request
-from pydantic import BaseModel, BeforeValidator, Field, ValidationError
+from pydantic import BeforeValidator, Field
 
 from schemas.common import ErrorResponse
-from service.core.frame import did_you_mean
-from service.errors import InvalidInput, RecordProblem
+from service.errors import InvalidInput
+# Shared with the CLI (service.inputs has no web imports); re-exported for the routes.
+from service.inputs.checks import (  # noqa: F401
+    printable,
+    problems_from_pydantic,
+    unknown_query_problem,
+    validate_model,
+)
 
 
-def printable(text: str) -> str:
-    """``text`` safe to put in a JSON answer: a lone surrogate shown as its escape."""
-    return text.encode("utf-8", "backslashreplace").decode("utf-8")
-
-
-_UNION_TAGS = frozenset({"int", "float", "bool", "str", "none", "KRange", "list[str]"})
-
-
-def problems_from_pydantic(errors: Iterable[dict[str, Any]], skip_prefix: tuple[str, ...] = (),
-                           known_keys: Iterable[str] = ()) -> list[RecordProblem]:
-    """``known_keys``: the body model's fields, for a "did you mean" hint on an unknown key."""
-    known = sorted(known_keys)
-    problems = []
-    for error in errors:
-        # Drop pydantic's internal location parts (union member tags such as "int" or
-        # "function-after[...]") so that the field reads as the client wrote it: "k", "k.min".
-        loc = [printable(str(part)) for part in error.get("loc", ())
-               if str(part) not in skip_prefix and "[" not in str(part) and str(part) not in _UNION_TAGS]
-        message = error.get("msg", "invalid value")
-        if error.get("type") == "extra_forbidden" and loc and known:
-            message = f"unknown key; known: {known}{did_you_mean(loc[-1], known)}"
-        problems.append(RecordProblem(None, ".".join(loc) or "body", message))
-    return problems
-
-
-def body_model_keys(route: Any) -> list[str]:
-    """The fields of a route's JSON body model (for hints on unknown keys), or []."""
-    body = getattr(route, "body_field", None)
-    model = getattr(getattr(body, "field_info", None), "annotation", None)
-    return list(getattr(model, "model_fields", {}))
-
-
-def validate_model(model: type[BaseModel], data: Any) -> Any:
-    try:
-        return model.model_validate(data)
-    except ValidationError as exc:
-        raise InvalidInput(problems_from_pydantic(exc.errors(), known_keys=model.model_fields)) from None
-
-
-# --------------------------------------------------------------------------- numbers in paths and queries
 MAX_VERSION = 2 ** 31 - 1
 _PLAIN_DECIMAL = re.compile(r"[1-9][0-9]{0,9}|0")
 
@@ -101,13 +67,6 @@ async def reject_unknown_query(request: Request) -> None:
     unknown = [key for key in dict.fromkeys(request.query_params.keys()) if key not in known]
     if unknown:
         raise InvalidInput([unknown_query_problem(key, known) for key in unknown])
-
-
-def unknown_query_problem(key: str, known: Iterable[str]) -> RecordProblem:
-    known = sorted(known)
-    hint = did_you_mean(key, known)
-    listed = f"known: {known}" if known else "this route takes no query parameters"
-    return RecordProblem(None, printable(key), f"unknown query parameter; {listed}{hint}")
 
 
 StrictQuery = Depends(reject_unknown_query)

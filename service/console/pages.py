@@ -27,7 +27,7 @@ from service.api.payload import check_name
 from service.console.views import drift_rows, event_rows, segment_rows
 from service.deps import CONSOLE_COOKIE, StoreDep, authorize, bearer_or_console_key
 from service.errors import AuthError, DriftReportNotFound, NotFound, ScopeDenied
-from service.store import FilesystemStore
+from service.store import BundleStore
 
 HERE = Path(__file__).parent
 STATIC_DIR = HERE / "static"
@@ -138,7 +138,7 @@ def segmentations_page(request: Request, store: StoreDep) -> Response:
     return _page(request, "segmentations.html", segmentations=rows)
 
 
-def _shown_version(store: FilesystemStore, detail: dict[str, Any], version: int | None) -> int:
+def _shown_version(store: BundleStore, detail: dict[str, Any], version: int | None) -> int:
     """The version a segmentation page shows: the one asked for, else the live one, else the newest."""
     if version is not None:
         return store.resolve_version(detail["name"], version)

@@ -34,7 +34,6 @@ import tempfile
 import threading
 import time
 import uuid
-from collections import OrderedDict
 from contextlib import contextmanager
 from datetime import datetime, timezone
 from pathlib import Path
@@ -190,12 +189,9 @@ def _repair_text(value: Any) -> Any:
 class FilesystemStore:
     """The default store. Safe for threads of one process and for several processes on one disk."""
 
-    def __init__(self, root: Path | str, *, cache_size: int = 16) -> None:
+    def __init__(self, root: Path | str) -> None:
         self.root = Path(root)
         self._local = threading.local()
-        self._cache: OrderedDict[tuple[str, int], LoadedVersion] = OrderedDict()
-        self._cache_lock = threading.Lock()
-        self._cache_size = cache_size
         try:
             (self.root / "segmentations").mkdir(parents=True, exist_ok=True)
             # Switching to WAL needs an exclusive lock that SQLite's busy timeout does not wait for, so
@@ -420,13 +416,8 @@ class FilesystemStore:
         return int(rows[0]["live_version"])
 
     def load(self, name: str, version: int) -> LoadedVersion:
-        """The verified serving artifact of a version (cached in memory, LRU). Never unpickles anything."""
-        key = (name, version)
-        with self._cache_lock:
-            hit = self._cache.get(key)
-            if hit is not None:
-                self._cache.move_to_end(key)
-                return hit
+        """The verified serving artifact of a version, read now (``ServingCache`` keeps what is served). Never
+        unpickles anything."""
         row = self._require_version(self._db(), name, version)
         if not row["artifact"].endswith(SERVING_SUFFIX):
             raise BundleCorrupt(name, version, "is in the legacy pickle format, which the server does not load; "
@@ -443,12 +434,7 @@ class FilesystemStore:
             serving = artifacts.loads(data)
         except artifacts.ArtifactError:
             raise BundleCorrupt(name, version, "cannot be read as a serving artifact") from None
-        loaded = LoadedVersion(name, version, serving.bundle, serving.compiled)
-        with self._cache_lock:
-            self._cache[key] = loaded
-            while len(self._cache) > self._cache_size:
-                self._cache.popitem(last=False)
-        return loaded
+        return LoadedVersion(name, version, serving.bundle, serving.compiled)
 
     def legacy_versions(self) -> list[tuple[str, int]]:
         """Versions whose artifact is still a legacy pickle (written before serving artifacts existed)."""
@@ -503,7 +489,13 @@ class FilesystemStore:
     @staticmethod
     def _record_event(db: sqlite3.Connection, actor: str, action: str, name: str | None, version: int | None,
                       details: dict[str, Any], *, at: str | None = None) -> None:
-        """Append an event inside the caller's write transaction, so the write and its record commit together."""
+        """Append an event inside the caller's write transaction, so the write and its record commit together.
+
+        A segmentation's event also bumps the ``changes`` counter (what is served may have changed), which
+        running servers poll to stay in step (service/store/cache.py)."""
+        if name is not None:
+            db.execute("INSERT INTO counters (name, value) VALUES ('changes', 1)"
+                       " ON CONFLICT (name) DO UPDATE SET value = counters.value + 1")
         db.execute("INSERT INTO events (at, actor, action, name, version, details) VALUES (?, ?, ?, ?, ?, ?)",
                    (at or utc_now(), actor, action, name, version, json.dumps(details, allow_nan=False)))
 
@@ -535,11 +527,6 @@ class FilesystemStore:
         """Every file of one version, whatever the artifact layout (all are named v<number>.*)."""
         return sorted((self.root / "segmentations" / name).glob(f"v{version:06d}.*"))
 
-    def _forget_cached(self, name: str, version: int | None = None) -> None:
-        with self._cache_lock:
-            for key in [k for k in self._cache if k[0] == name and (version is None or k[1] == version)]:
-                del self._cache[key]
-
     def delete_version(self, name: str, version: int, *, actor: str = CLI_ACTOR) -> None:
         """Erase one version: its index row, labels, drift reports and files. The live version is refused (409).
 
@@ -556,7 +543,6 @@ class FilesystemStore:
             db.execute("DELETE FROM versions WHERE name=? AND version=?", (name, version))
             db.execute("UPDATE segmentations SET updated_at=? WHERE name=?", (utc_now(), name))
             self._record_event(db, actor, "delete_version", name, version, {"drift_reports": reports})
-        self._forget_cached(name, version)
         for path in self._version_files(name, version):
             path.unlink(missing_ok=True)
 
@@ -573,7 +559,6 @@ class FilesystemStore:
             db.execute("DELETE FROM segmentations WHERE name=?", (name,))
             self._record_event(db, actor, "delete_segmentation", name, None,
                                {"versions": versions, "drift_reports": reports})
-        self._forget_cached(name)
         shutil.rmtree(self.root / "segmentations" / name, ignore_errors=True)
 
     def prune_drift_reports(self, older_than: str, *, actor: str = "server") -> int:
@@ -588,7 +573,7 @@ class FilesystemStore:
     # ----------------------------------------------------------------- API keys
     def _bump_keys_counter(self, db: sqlite3.Connection) -> None:
         db.execute("INSERT INTO counters (name, value) VALUES ('keys', 1)"
-                   " ON CONFLICT (name) DO UPDATE SET value = value + 1")
+                   " ON CONFLICT (name) DO UPDATE SET value = counters.value + 1")
 
     def create_key(self, name: str, scopes: list[str], *, actor: str = CLI_ACTOR) -> str:
         """Create a key; return it (the only time it exists in clear). A taken name raises KeyNameTaken."""
@@ -616,6 +601,16 @@ class FilesystemStore:
         return [StoredKey(name=r["name"], prefix=r["prefix"], salt=r["salt"], digest=r["digest"],
                           scopes=tuple(json.loads(r["scopes"])), created_at=r["created_at"][:19] + "Z")
                 for r in rows]
+
+    def counters(self) -> dict[str, int]:
+        return {r["name"]: r["value"] for r in self._query("SELECT name, value FROM counters")}
+
+    def live_versions(self) -> dict[str, int]:
+        rows = self._query("SELECT name, live_version FROM segmentations WHERE live_version IS NOT NULL")
+        return {r["name"]: r["live_version"] for r in rows}
+
+    def version_keys(self) -> set[tuple[str, int]]:
+        return {(r["name"], r["version"]) for r in self._query("SELECT name, version FROM versions")}
 
     def keys_counter(self) -> int:
         """A number that changes whenever a key is created or revoked (cheap to poll)."""

@@ -172,7 +172,10 @@ def test_make_live_false_on_first_version_leaves_nothing_live(client, iris):
 def test_a_running_fit_does_not_block_other_requests(client, iris, monkeypatch, stage, csv):
     # Hold the fit inside one CPU-heavy stage (parsing the body, or fitting) and check that the app still
     # answers another request meanwhile: the stage runs off the event loop.
-    import service.api.segmentations as module
+    import service.api.segmentations as route
+    import service.inputs.fit_input as fit_input     # body parsing (shared with the CLI)
+
+    module = route if stage == "fit_in_worker" else fit_input
 
     started, release = threading.Event(), threading.Event()
     real = getattr(module, stage)

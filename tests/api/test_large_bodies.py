@@ -45,7 +45,9 @@ def test_count_in_small_chunks_agrees(monkeypatch):
     # The scan carries its state (inside a string, depth) across chunk borders.
     body = json.dumps({"records": [{"s": "a,\"b\"]", "v": [1, 2]} for _ in range(40)]}).encode()
     whole = payload.count_list_items_at_depth_two(body)
-    monkeypatch.setattr(payload, "_SCAN_CHUNK", 7)
+    import service.inputs.checks as checks       # where the body scan lives (shared with the CLI)
+
+    monkeypatch.setattr(checks, "_SCAN_CHUNK", 7)
     assert payload.count_list_items_at_depth_two(body) == whole == 40
 
 

@@ -21,7 +21,6 @@ from pathlib import Path
 
 from service.store import FilesystemStore
 from tests.store.test_filesystem import CHILD_TIMEOUT, artifact_path, run_at_once, sha256_of
-from tests.store.test_filesystem import bundles  # noqa: F401  (fixture)
 
 KILLS = 20
 
@@ -78,7 +77,7 @@ def assert_index_intact(root: Path) -> None:
         assert db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
 
 
-def test_sigkill_during_version_writes_20_times(tmp_path, bundles):  # noqa: F811
+def test_sigkill_during_version_writes_20_times(tmp_path, bundles):
     root = tmp_path / "store"
     FilesystemStore(root).save_version("loop", bundles[0], make_live=None)
     rng = random.Random(9)
@@ -98,7 +97,7 @@ def test_sigkill_during_version_writes_20_times(tmp_path, bundles):  # noqa: F81
     assert len(listed) > KILLS                            # the children did commit between kills
 
 
-def test_sigkill_during_drift_report_writes_20_times(tmp_path, bundles):  # noqa: F811
+def test_sigkill_during_drift_report_writes_20_times(tmp_path, bundles):
     root = tmp_path / "store"
     FilesystemStore(root).save_version("loop", bundles[0], make_live=None)
     rng = random.Random(10)
@@ -115,7 +114,7 @@ def test_sigkill_during_drift_report_writes_20_times(tmp_path, bundles):  # noqa
     assert len(every_committed) > KILLS
 
 
-def test_two_processes_promoting_at_once_leave_one_valid_pointer(tmp_path, bundles):  # noqa: F811
+def test_two_processes_promoting_at_once_leave_one_valid_pointer(tmp_path, bundles):
     root = tmp_path / "store"
     store = FilesystemStore(root)
     for bundle in (bundles[0], bundles[1], bundles[0]):

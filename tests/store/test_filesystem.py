@@ -19,21 +19,11 @@ import joblib
 import numpy as np
 import pytest
 
-from service.core.bundle import FitConfig
-from service.core.fit import fit_bundle
 from service.errors import BundleCorrupt, SegmentationNotFound, SegmentNotFound, StoreUnavailable, VersionNotFound
-from service.store import FilesystemStore
+from service.store import FilesystemStore, ServingCache
 
 REPO = Path(__file__).resolve().parents[2]
 CHILD_TIMEOUT = 120
-
-
-@pytest.fixture(scope="module")
-def bundles(iris):
-    """Two small iris bundles (k = 2 and k = 3)."""
-    def one(k):
-        return fit_bundle(iris.data, FitConfig(features=list(iris.feature_names), k_min=k, k_max=k, k_fixed=True))
-    return one(2), one(3)
 
 
 @pytest.fixture
@@ -125,7 +115,8 @@ def test_missing_artifact_is_a_clear_error(store, bundles):
 
 
 def test_loaded_bundles_are_cached_lru(tmp_path, bundles):
-    store = FilesystemStore(tmp_path / "store", cache_size=2)
+    # The cache sits above the backends (service/store/cache.py).
+    store = ServingCache(FilesystemStore(tmp_path / "store"), cache_size=2)
     for _ in range(3):
         store.save_version("shop", bundles[0], make_live=None)
     first = store.load("shop", 1)
