@@ -20,6 +20,14 @@ from service.inputs.checks import (  # noqa: F401
 )
 
 
+
+def body_model_keys(route: Any) -> list[str]:
+    """The fields of a route's JSON body model (for hints on unknown keys), or []."""
+    body = getattr(route, "body_field", None)
+    model = getattr(getattr(body, "field_info", None), "annotation", None)
+    return list(getattr(model, "model_fields", {}))
+
+
 MAX_VERSION = 2 ** 31 - 1
 _PLAIN_DECIMAL = re.compile(r"[1-9][0-9]{0,9}|0")
 

@@ -29,14 +29,20 @@ def printable(text: str) -> str:
 _UNION_TAGS = frozenset({"int", "float", "bool", "str", "none", "KRange", "list[str]"})
 
 
-def problems_from_pydantic(errors: Iterable[dict[str, Any]], skip_prefix: tuple[str, ...] = ()) -> list[RecordProblem]:
+def problems_from_pydantic(errors: Iterable[dict[str, Any]], skip_prefix: tuple[str, ...] = (),
+                           known_keys: Iterable[str] = ()) -> list[RecordProblem]:
+    """``known_keys``: the body model's fields, for a "did you mean" hint on an unknown key."""
+    known = sorted(known_keys)
     problems = []
     for error in errors:
         # Drop pydantic's internal location parts (union member tags such as "int" or
         # "function-after[...]") so that the field reads as the client wrote it: "k", "k.min".
         loc = [printable(str(part)) for part in error.get("loc", ())
                if str(part) not in skip_prefix and "[" not in str(part) and str(part) not in _UNION_TAGS]
-        problems.append(RecordProblem(None, ".".join(loc) or "body", error.get("msg", "invalid value")))
+        message = error.get("msg", "invalid value")
+        if error.get("type") == "extra_forbidden" and loc and known:
+            message = f"unknown key; known: {known}{did_you_mean(loc[-1], known)}"
+        problems.append(RecordProblem(None, ".".join(loc) or "body", message))
     return problems
 
 
@@ -44,7 +50,7 @@ def validate_model(model: type[BaseModel], data: Any) -> Any:
     try:
         return model.model_validate(data)
     except ValidationError as exc:
-        raise InvalidInput(problems_from_pydantic(exc.errors())) from None
+        raise InvalidInput(problems_from_pydantic(exc.errors(), known_keys=model.model_fields)) from None
 
 
 # --------------------------------------------------------------------------- numbers in paths and queries
