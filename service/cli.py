@@ -268,12 +268,16 @@ def upgrade_store(store_dir: Path | None) -> None:
 
     try:
         # The legacy pickle format exists only in local stores.
-        converted = _open_store(store_dir=store_dir, store_backend="local").upgrade_legacy_versions()
+        converted, refused = _open_store(store_dir=store_dir, store_backend="local").upgrade_legacy_versions()
     except ServiceError as exc:
         raise click.ClickException(str(exc.detail)) from None
     for name, version in converted:
         click.echo(f"converted '{name}' version {version}")
+    for name, version, reason in refused:
+        click.echo(f"not converted: '{name}' version {version}: {reason}", err=True)
     click.echo(f"{len(converted)} version(s) converted")
+    if refused:
+        sys.exit(1)
 
 
 for _command in CLIENT_COMMANDS:

@@ -23,6 +23,7 @@ say-so.
 
 from __future__ import annotations
 
+import dataclasses
 import fcntl
 import hashlib
 import json
@@ -442,15 +443,21 @@ class FilesystemStore:
                            " ORDER BY name, version")
         return [(r["name"], r["version"]) for r in rows]
 
-    def upgrade_legacy_versions(self) -> list[tuple[str, int]]:
-        """Convert every legacy (pickle) version into a serving artifact; return the converted versions.
+    def upgrade_legacy_versions(self) -> tuple[list[tuple[str, int]], list[tuple[str, int, str]]]:
+        """Convert every legacy (pickle) version into a serving artifact; return the converted versions and
+        those that cannot be converted, with the reason (they stay legacy: an error naming them, as before).
+
+        A version fitted by a release older than the per-segment held-out calibration lacks fields that the
+        serving artifact needs (held-out thresholds and drift baselines); they cannot be made up after the fact
+        without the training data, so such a version must be refitted.
 
         The one place in the code base that unpickles a stored file, and only a file that still matches the
         SHA-256 recorded when it was written. Run by an operator (``segscore upgrade-store``) on a store they
         trust, never by the server. The old file stays beside the new one as the analysts' copy of the fitted
         scikit-learn objects.
         """
-        converted = []
+        converted: list[tuple[str, int]] = []
+        refused: list[tuple[str, int, str]] = []
         for name, version in self.legacy_versions():
             row = self._require_version(self._db(), name, version)
             folder = self.root / "segmentations" / name
@@ -461,6 +468,11 @@ class FilesystemStore:
             except FileNotFoundError:
                 raise BundleCorrupt(name, version, "is missing") from None
             bundle = _legacy_read_pickled_bundle(legacy)
+            missing = _missing_fields(bundle)
+            if missing:
+                refused.append((name, version, f"fitted by an earlier release: it lacks {', '.join(missing[:5])}; "
+                                               "refit it from its training data"))
+                continue
             serving = artifacts.dumps(serving_version(bundle))
             artifact = folder / f"v{version:06d}{SERVING_SUFFIX}"
             sha = _write_atomic(artifact, lambda handle: handle.write(serving))
@@ -472,7 +484,7 @@ class FilesystemStore:
                 db.execute("UPDATE versions SET artifact=?, bundle_sha256=?, report=? WHERE name=? AND version=?",
                            (artifact.name, sha, text, name, version))
             converted.append((name, version))
-        return converted
+        return converted, refused
 
     def list_drift_reports(self, name: str, *, version: int | None, limit: int) -> list[dict[str, Any]]:
         if not self._query("SELECT 1 FROM segmentations WHERE name=?", (name,)):
@@ -616,6 +628,19 @@ class FilesystemStore:
         """A number that changes whenever a key is created or revoked (cheap to poll)."""
         rows = self._query("SELECT value FROM counters WHERE name='keys'")
         return rows[0]["value"] if rows else 0
+
+
+def _missing_fields(value: Any, prefix: str = "") -> list[str]:
+    """Dataclass fields (nested ones too) that an unpickled object lacks: it was written by an older release."""
+    if not dataclasses.is_dataclass(value):
+        return []
+    missing = []
+    for field in dataclasses.fields(value):
+        if field.name not in vars(value):
+            missing.append(prefix + field.name)
+        else:
+            missing.extend(_missing_fields(vars(value)[field.name], f"{prefix}{field.name}."))
+    return missing
 
 
 def _legacy_read_pickled_bundle(path: Path) -> Bundle:

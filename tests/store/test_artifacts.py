@@ -304,3 +304,28 @@ def test_upgrade_refuses_a_legacy_file_that_fails_its_sha256_without_unpickling_
         store.upgrade_legacy_versions()
     assert not marker.exists()
     assert os.path.exists(store.root / "index.sqlite3") and store.legacy_versions() == [("old", 1)]
+
+
+def test_upgrade_names_a_version_fitted_before_held_out_calibration_and_leaves_it_legacy(tmp_path, iris):
+    # A bundle pickled by an older release lacks fields the serving artifact needs (here the held-out outlier
+    # count of the drift baseline): the upgrade must say which version and why, not crash, and convert the rest.
+    bundle = fit_bundle(iris.data, FitConfig(features=list(iris.feature_names), k_min=2, k_max=2, k_fixed=True))
+    root = tmp_path / "store"
+    make_legacy_version(FilesystemStore(root), "fresh", bundle)
+    make_legacy_version(FilesystemStore(root), "old", bundle)
+    object.__delattr__(bundle.reference, "outlier_count")        # what an older release's pickle looks like
+    legacy = root / "segmentations" / "old" / "v000001.joblib"
+    joblib.dump(bundle, legacy, compress=3)
+    with sqlite3.connect(root / "index.sqlite3") as db:
+        db.execute("UPDATE versions SET bundle_sha256=? WHERE name='old'",
+                   (hashlib.sha256(legacy.read_bytes()).hexdigest(),))
+
+    result = CliRunner().invoke(cli, ["upgrade-store", "--store", str(root)])
+    assert result.exit_code == 1, result.output
+    assert "converted 'fresh' version 1" in result.output
+    assert "not converted: 'old' version 1" in result.output and "reference.outlier_count" in result.output
+    store = FilesystemStore(root)
+    assert store.legacy_versions() == [("old", 1)]
+    with pytest.raises(BundleCorrupt, match="'old' version 1 is in the legacy pickle format"):
+        store.load("old", 1)
+    assert store.load("fresh", 1).bundle.k == 2
