@@ -19,7 +19,7 @@ import httpx2
 import pytest
 
 from tests.conftest import fresh_schema_url, records_from
-from tests.server_process import serving
+from tests.serving import segscore_server
 
 CONVERGE_DEADLINE = 60.0
 
@@ -44,7 +44,7 @@ def replicas(tmp_path_factory):
         bases = []
         for name in ("a", "b"):
             (tmp_path / name).mkdir()
-            bases.append(stack.enter_context(serving(tmp_path / name, *arguments)))
+            bases.append(stack.enter_context(segscore_server(tmp_path / name, *arguments)))
         yield arguments, [stack.enter_context(httpx2.Client(base_url=base, timeout=120)) for base in bases]
 
 
