@@ -230,6 +230,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
     app.add_middleware(ErrorBoundary)
     app.add_middleware(MetricsMiddleware, metrics=metrics, log_requests=settings.access_log)
     app.add_middleware(RequestIdMiddleware)
+    _build_routes_now(app)
     return app
 
 
@@ -266,3 +267,14 @@ def _offline_docs(app: FastAPI) -> None:
     app.openapi = openapi
 
 
+def _build_routes_now(app: FastAPI) -> None:
+    """Build every included route's request model now, in one thread.
+
+    FastAPI builds an included router's routes on the first request that reaches it. Concurrent first requests
+    to two routers then build models from the same shared annotations (``VersionNumber``) at once, and
+    pydantic sees a field changed under it (seen as a warning turned 500 in a test of four simultaneous
+    drift posts). Matching a path no route has walks every router and builds them all.
+    """
+    scope = {"type": "http", "path": "/", "method": "GET", "headers": [], "root_path": "", "query_string": b""}
+    for route in app.router.routes:
+        route.matches(dict(scope))
