@@ -353,7 +353,7 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
     sample_rows = np.sort(rng.choice(n_records, size=min(n_records, config.reference_sample), replace=False))
     reference = _reference_profile(values, nearest, chosen, calibration, sample_rows)
 
-    fit_warnings = _fit_warnings(config, labels, chosen, n_records)
+    fit_warnings = _fit_warnings(config, labels, nearest, chosen, n_records)
     silhouette = next(row["silhouette"] for row in curve if row["k"] == chosen)
     inertia = float(_own_sq_distances(space, centroids, labels).sum())
     report: dict[str, Any] = {
@@ -401,8 +401,13 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
     )
 
 
-def _fit_warnings(config: FitConfig, labels: np.ndarray, k: int, n_records: int) -> list[dict[str, Any]]:
-    """Things the caller should know about an otherwise valid fit (the report's ``warnings``)."""
+def _fit_warnings(config: FitConfig, labels: np.ndarray, nearest: np.ndarray, k: int,
+                  n_records: int) -> list[dict[str, Any]]:
+    """Things the caller should know about an otherwise valid fit (the report's ``warnings``).
+
+    ``labels`` are the clusterer's own (how many distinct clusters it found); ``nearest`` is the assign rule,
+    which the report's segment sizes, the thresholds and the drift baseline use, so empty and tiny segments are
+    judged by the same counts the report shows."""
     found: list[dict[str, Any]] = []
 
     def warn(kind: str, field: str | None, message: str) -> None:
@@ -410,12 +415,11 @@ def _fit_warnings(config: FitConfig, labels: np.ndarray, k: int, n_records: int)
 
     for name, why in config.dropped_features:
         warn("dropped_feature", name, f"dropped from the default features: {why}")
-    sizes = np.bincount(labels, minlength=k)
-    distinct = int(np.count_nonzero(sizes))
+    distinct = int(np.count_nonzero(np.bincount(labels, minlength=k)))
     if distinct < k:
         warn("fewer_clusters", "k", f"the clusterer found {distinct} distinct clusters, fewer than k = {k}")
     tiny = max(TINY_SEGMENT_SIZE, TINY_SEGMENT_SHARE * n_records)
-    for segment, size in enumerate(sizes.tolist()):
+    for segment, size in enumerate(np.bincount(nearest, minlength=k).tolist()):
         if size == 0:
             warn("empty_segment", f"segments.{segment}", f"segment {segment} has no training records")
         elif size < tiny:

@@ -288,6 +288,9 @@ def test_a_tiny_segment_is_a_warning(client):
     report = client.post(f"{BASE}/fit", json={"records": RECORDS + far, "k": 2, "components": None}).json()
     tiny = [w for w in report["warnings"] if w["kind"] == "tiny_segment"]
     assert len(tiny) == 1 and "2 training records" in tiny[0]["message"]
+    # The warning counts what the report shows as the segment's size (the assign rule), not another count.
+    segment = int(tiny[0]["field"].split(".")[1])
+    assert report["segments"][segment]["size"] == 2
 
 
 def test_ids_echo_the_row_index_and_big_csv_ids_come_back_as_text(client):
