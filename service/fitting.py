@@ -2,7 +2,7 @@
 
 ``fit_in_worker`` starts one process per fit from a ``forkserver`` (a clean process that imported the
 fitting code once, so a worker starts in milliseconds and inherits no threads or locks from the server),
-pins it to ``FIT_WORKER_THREADS`` BLAS/OpenMP threads, and waits for its answer at most ``time_limit``
+pins it to ``FIT_WORKER_THREADS`` BLAS/OpenMP threads at a lower CPU priority (``FIT_WORKER_NICENESS``), and waits for its answer at most ``time_limit``
 seconds. The caller bounds how many run at once (``fit_concurrency``: the fit route's capacity limiter).
 
 The worker only computes: it sends the fitted ``Bundle`` back over a private pipe and the server writes the
@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import logging
 import multiprocessing
+import os
 import threading
 import traceback
 from typing import Any
@@ -33,6 +34,9 @@ log = logging.getLogger("segscore")
 
 # One BLAS/OpenMP thread per fit: on a small machine the fit then leaves the other cores to assign calls.
 FIT_WORKER_THREADS = 1
+# Fits are background work and assign calls are in someone's request path: the worker runs at a lower CPU
+# priority, so when the machine is busy the kernel gives serving the cores first and the fit takes longer.
+FIT_WORKER_NICENESS = 10
 _CONTEXT = multiprocessing.get_context("forkserver")
 _CONTEXT.set_forkserver_preload([__name__])
 
@@ -47,6 +51,7 @@ def running_fit_workers() -> list[int]:
 
 
 def _work(connection, values: np.ndarray, config: FitConfig, max_agglomerative_rows: int) -> None:
+    os.nice(FIT_WORKER_NICENESS)
     try:
         with threadpool_limits(limits=FIT_WORKER_THREADS):
             bundle = fit_bundle(values, config, max_agglomerative_rows=max_agglomerative_rows)

@@ -16,7 +16,7 @@ import pytest
 from fastapi.testclient import TestClient
 
 from service.app import create_app
-from service.fitting import running_fit_workers
+from service.fitting import FIT_WORKER_NICENESS, running_fit_workers
 from service.settings import Settings
 from tests.conftest import records_from
 
@@ -78,6 +78,10 @@ def test_a_killed_worker_fails_that_fit_with_503_and_the_store_stays_consistent(
         workers = running_fit_workers()
         assert workers, "the slow fit never started a worker"
         time.sleep(0.5)                                   # well inside the fit
+        # The worker yields the CPU to serving: it runs FIT_WORKER_NICENESS steps below the server (capped at
+        # 19, the lowest priority setpriority(2) knows).
+        assert os.getpriority(os.PRIO_PROCESS, workers[0]) == min(19, os.getpriority(os.PRIO_PROCESS, 0)
+                                                                  + FIT_WORKER_NICENESS)
         os.kill(workers[0], signal.SIGKILL)
         fitter.join(60)
         assert not fitter.is_alive()
