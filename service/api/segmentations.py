@@ -25,6 +25,7 @@ from service.api.validation import (
     printable,
 )
 from service.deps import ActorDep, AdminScope, FitScope, ReadScope, SettingsDep, StoreDep
+from service.core.fit import check_fit_inputs
 from service.errors import InvalidInput, RecordProblem
 from service.fitting import fit_in_worker
 from service.inputs.fit_input import QUERY_PARAMETERS, prepare_fit
@@ -80,7 +81,10 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
             prepare_fit, body, csv, fit_query, settings)
 
     if background:
-        # Checked above exactly as a synchronous fit is: a bad request never becomes a job.
+        # A bad request never becomes a job: what the worker would refuse (k above the distinct records, a
+        # constant named feature...) is refused here, with the synchronous fit's answer.
+        await anyio.to_thread.run_sync(lambda: check_fit_inputs(
+            values, config, max_agglomerative_rows=settings.max_agglomerative_rows))
         job = await request.app.state.jobs.submit(name, values, config, make_live=make_live, actor=actor)
         return JSONResponse(job, status_code=202, headers={"Location": f"/v1/jobs/{job['id']}"})
 
