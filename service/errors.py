@@ -17,6 +17,7 @@
     │   ├── NoLiveVersion
     │   ├── KeyNameTaken         an API key of that name exists
     │   ├── JobFinished          a finished job cannot be cancelled
+    │   ├── JobReportNotReady    a job that is not done has no report
     │   ├── JobNotRunning        the job was cancelled or failed while its fit ran: its version is not written
     │   └── FitCancelled         the fit's job was cancelled; its worker was stopped
     ├── BodyTimeout              the client stopped sending its body
@@ -144,6 +145,14 @@ class JobFinished(Conflict):
     def __init__(self, job_id: str, state: str) -> None:
         self.state = state
         super().__init__(f"job {job_id!r} is {state}; only a queued or running job can be cancelled")
+
+
+class JobReportNotReady(Conflict):
+    """The job is not done: it has no fit report (yet)."""
+
+    def __init__(self, job_id: str, state: str) -> None:
+        self.state = state
+        super().__init__(f"job {job_id!r} is {state}; a job has a fit report once it is done")
 
 
 class JobNotRunning(Conflict):

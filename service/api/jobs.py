@@ -9,11 +9,11 @@ import anyio
 from fastapi import APIRouter, Query, Request
 from pydantic import BeforeValidator
 
-from schemas import Job, JobList
+from schemas import FitReport, Job, JobList
 from service.api.payload import check_name
 from service.api.validation import StrictQuery, error_responses, plain_decimal
 from service.deps import ActorDep, FitScope, StoreDep
-from service.errors import JobNotFound
+from service.errors import JobNotFound, JobReportNotReady
 
 router = APIRouter(prefix="/jobs", tags=["jobs"])
 
@@ -48,6 +48,22 @@ async def list_jobs(
 async def get_job(job_id: str, store: StoreDep) -> dict[str, Any]:
     _check_job_id(job_id)
     return await anyio.to_thread.run_sync(store.job, job_id)
+
+
+@router.get("/{job_id}/report", response_model=FitReport, dependencies=[FitScope, StrictQuery],
+            summary="The fit report of the version a done job wrote (what the synchronous fit answers)",
+            responses=error_responses(401, 403, 404, 409, 422, 503))
+async def get_job_report(job_id: str, store: StoreDep) -> dict[str, Any]:
+    # The fit scope that started the job reads its answer here, as a synchronous fit's caller gets it.
+    _check_job_id(job_id)
+
+    def read() -> dict[str, Any]:
+        job = store.job(job_id)
+        if job["state"] != "done":
+            raise JobReportNotReady(job_id, job["state"])
+        return store.version_report(job["segmentation"], job["version"])
+
+    return await anyio.to_thread.run_sync(read)
 
 
 @router.delete("/{job_id}", response_model=Job, dependencies=[FitScope, StrictQuery],

@@ -202,6 +202,10 @@ class Client:
         """One job: id, segmentation, state, step, progress, version, error, created_at, updated_at."""
         return self._request("GET", "/v1/jobs/" + quote(job_id, safe=""))
 
+    def job_report(self, job_id: str) -> dict[str, Any]:
+        """The fit report of the version a done job wrote (needs the ``fit`` scope only); Conflict if not done."""
+        return self._request("GET", "/v1/jobs/" + quote(job_id, safe="") + "/report")
+
     def cancel_job(self, job_id: str) -> dict[str, Any]:
         """Cancel a queued or running job (no version is written); Conflict (409) once it has finished."""
         return self._request("DELETE", "/v1/jobs/" + quote(job_id, safe=""))
@@ -218,7 +222,7 @@ class Client:
                 seen = (job["step"], job["progress"])
                 progress(*seen)
             if job["state"] == "done":
-                return self.version(job["segmentation"], job["version"])
+                return self.job_report(job_id)
             if job["state"] in FINISHED_JOB_STATES:
                 raise JobFailed(job)
             time.sleep(poll_seconds)

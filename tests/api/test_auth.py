@@ -80,6 +80,7 @@ def _examples(iris, job_id: str = "0" * 32) -> dict[tuple[str, str], tuple[str, 
     return {
         ("GET", "/v1/jobs"): (f"/v1/jobs?segmentation={NAME}", None, 200),
         ("GET", "/v1/jobs/{job_id}"): (f"/v1/jobs/{job_id}", None, 200),
+        ("GET", "/v1/jobs/{job_id}/report"): (f"/v1/jobs/{job_id}/report", None, 409),    # cancelled: no report
         # The template's job has finished: the normal answer of a sufficient key is the 409 of a finished job.
         ("DELETE", "/v1/jobs/{job_id}"): (f"/v1/jobs/{job_id}", None, 409),
         ("POST", "/v1/segmentations/{name}/fit"): (f"{base}/fit", {"records": records_from(iris), "k": 2}, 201),

@@ -125,6 +125,19 @@ def test_a_background_fit_answers_202_with_the_job_and_its_location(client, iris
     done = finished(client, job["id"])
     assert (done["state"], done["progress"], done["version"], done["error"]) == ("done", 1.0, 1, None)
     assert client.get(f"/v1/segmentations/{NAME}").json()["live_version"] == 1
+    assert client.get(f"/v1/jobs/{job['id']}/report").json() == client.get(
+        f"/v1/segmentations/{NAME}/versions/1").json()
+
+
+def test_a_job_that_is_not_done_has_no_report(client, iris):
+    gate = Gate(client.app.state.store, "job_progress", at_step("clustering"))
+    job = start(client, iris).json()
+    gate.wait()
+    answer = client.get(f"/v1/jobs/{job['id']}/report")
+    assert answer.status_code == 409 and "running" in answer.json()["detail"]
+    client.delete(f"/v1/jobs/{job['id']}")
+    gate.release.set()
+    assert client.get(f"/v1/jobs/{job['id']}/report").status_code == 409
 
 
 def test_a_background_fit_stores_the_same_version_content_as_a_synchronous_one(client, iris):
