@@ -1,5 +1,6 @@
 """Background fit jobs against real ``segscore serve`` processes: a server killed with a job running and started
-again, clients that go away while their job runs, and the ``segscore fit`` / ``segscore jobs`` commands.
+again, clients that go away while their job runs, the ``segscore fit`` / ``segscore jobs`` commands, and two
+replicas on one PostgreSQL store (a job started on one is seen and cancelled through the other).
 
 Data: Iris and wine (scikit-learn's copies) for the short fits; for the fit that must still be running when its
 server is killed, blobs from ``sklearn.datasets.make_blobs`` (60,000 x 8, 19 candidate k: many seconds of
@@ -194,3 +195,27 @@ def test_the_client_raises_job_failed_with_the_synchronous_detail(tmp_path, iris
             assert failed.value.state == "failed"
             assert failed.value.detail == synchronous.value.detail
             assert seen and seen[0][0] == "reading"
+
+
+def test_a_job_on_one_postgres_replica_is_seen_and_cancelled_through_another(tmp_path, postgres_url):
+    """Two server processes on one PostgreSQL store: B sees A's running job and cancels it; A stops the fit (its
+    only fit slot is free again: a later job runs there and writes version 1) and the cancelled job never
+    writes a version."""
+    arguments = ("--backend", "postgres", "--database-url", postgres_url, "--store", str(tmp_path / "artifacts"))
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    values, _ = make_blobs(n_samples=60_000, n_features=8, centers=6, random_state=3)
+    slow = csv_path(tmp_path, pd.DataFrame(values, columns=[f"x{j}" for j in range(8)]).to_csv(index=False).encode())
+    settings_env = {"SEGSCORE_JOB_LEASE_SECONDS": "3", "SEGSCORE_FIT_CONCURRENCY": "1"}
+    with segscore_server(tmp_path / "a", *arguments, settings_env=settings_env) as url_a, \
+            segscore_server(tmp_path / "b", *arguments, settings_env=settings_env) as url_b, \
+            Client(url_a) as a, Client(url_b) as b:
+        job = a.fit("blobs", slow, k=(2, 20), background=True, wait=False)
+        wait_for(lambda: b.job(job["id"])["step"].startswith("clustering"), "B to see the job clustering")
+        assert [j["id"] for j in b.jobs()] == [job["id"]]
+        assert b.cancel_job(job["id"])["state"] == "cancelled"
+        small = a.fit("blobs", slow, k=2, background=True, wait=False)   # waits for A's one fit slot
+        report = a.follow_job(small["id"])
+        assert report["version"] == 1
+        assert b.job(job["id"])["state"] == "cancelled" and b.job(job["id"])["version"] is None
+        assert [v["version"] for v in b.versions("blobs")] == [1]
