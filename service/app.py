@@ -20,7 +20,7 @@ from fastapi.staticfiles import StaticFiles
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service import __version__, console
-from service.api import assign, charts, compare, drift, health, segmentations
+from service.api import assign, charts, compare, drift, health, jobs, segmentations
 from service.api.validation import body_model_keys, problems_from_pydantic
 from service.auth import KEY_POLL_SECONDS, KeyRing, is_loopback
 from service.charts import ChartCache
@@ -41,6 +41,7 @@ from service.errors import (
     StoreUnavailable,
     UnsupportedMediaType,
 )
+from service.jobs import JobRunner
 from service.metrics import Metrics, MetricsMiddleware
 from service.middleware import BodyReadTimeout, ErrorBoundary, RequestIdMiddleware
 from service.settings import Settings, get_settings
@@ -169,6 +170,8 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
         maintenance = loop.create_task(_maintenance(app, wake))
         keyring.refreshed_in_background = True
         app.state.fit_limiter = anyio.CapacityLimiter(settings.fit_concurrency)
+        # Background fits share the fit slots with synchronous ones; jobs of a killed server are failed here.
+        await app.state.jobs.start(app.state.fit_limiter)
         # Bodies over large_body_bytes are read and parsed by at most this many requests at once; the others
         # wait their turn before their body is read, so memory stays bounded (see README, "Limits").
         app.state.large_body_limiter = anyio.CapacityLimiter(settings.large_body_concurrency)
@@ -183,6 +186,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
             yield
         finally:
             keyring.refreshed_in_background = False
+            await app.state.jobs.stop()
             maintenance.cancel()
             with suppress(asyncio.CancelledError):
                 await maintenance
@@ -216,9 +220,10 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
                     "(first: '%s' version %d); convert them once with 'segscore upgrade-store --store %s'",
                     len(legacy), *legacy[0], settings.store_dir)
     app.state.metrics = metrics
+    app.state.jobs = JobRunner(app.state.store, settings, metrics)
     metrics.bundles_loaded.set_function(lambda: app.state.store.loaded_count())
     app.state.chart_cache = ChartCache(settings.chart_cache_size)
-    for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router):
+    for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router, jobs.router):
         app.include_router(router, prefix="/v1")
     app.include_router(health.router)
     console.install(app)

@@ -1,5 +1,5 @@
 """The terminal commands that talk to a running server: ``segscore fit FILE --name N``, ``versions``, ``show``,
-``compare``, ``promote``, ``label``, ``assign``, ``drift``.
+``compare``, ``promote``, ``label``, ``assign``, ``drift``, ``jobs``.
 
 Each is a thin layer over ``service.client.Client`` (no server code is imported): it checks the local file
 (``service.client._files``), sends the request, and prints the answer as tables (``service.cli_tables``) or,
@@ -190,26 +190,50 @@ def fit_command(file: Path, name: str, url: str | None, key: str | None, as_json
     """Upload FILE (CSV, optionally .gz) to the server and fit a new version of a segmentation; print its report.
 
     The file is checked here first (header, delimiter, column types of the first rows, gzip integrity), then
-    streamed with a progress bar; the command waits for the fit (a spinner shows the time)."""
+    streamed with a progress bar; the server runs the fit as a background job, which is followed with a second
+    progress bar (its step and share done). Interrupted (Ctrl-C), the job goes on: see 'segscore jobs'."""
     from rich.progress import BarColumn, DownloadColumn, Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
     params = fit_params(**options)
     check_csv_file(file, columns=params.get("features"), skip=[params["id_column"]] if "id_column" in params else ())
-    with _client(url, key) as api, Progress(SpinnerColumn(), TextColumn("{task.description}"), BarColumn(),
-                                            DownloadColumn(), TimeElapsedColumn(), console=_console(stderr=True),
-                                            transient=True) as progress:
-        upload = progress.add_task(f"uploading {file.name}", total=file.stat().st_size)
-        state: dict[str, Any] = {}
+    with _client(url, key) as api:
+        with Progress(SpinnerColumn(), TextColumn("{task.description}"), BarColumn(), DownloadColumn(),
+                      TimeElapsedColumn(), console=_console(stderr=True), transient=True) as progress:
+            upload = progress.add_task(f"uploading {file.name}", total=file.stat().st_size)
+            job = api.fit(name, file, upload_progress=lambda done, total: progress.update(
+                upload, completed=done, total=total), background=True, wait=False, **params)
+        with Progress(SpinnerColumn(), TextColumn("{task.description}"), BarColumn(),
+                      TextColumn("{task.percentage:>3.0f}%"), TimeElapsedColumn(), console=_console(stderr=True),
+                      transient=True) as progress:
+            fitting = progress.add_task(f"fitting '{name}' (job {job['id']})", total=1.0)
 
-        def uploaded(done: int, total: int) -> None:
-            progress.update(upload, completed=done, total=total)
-            if done >= total and "wait" not in state:
-                state["wait"] = progress.add_task(f"fitting '{name}' on the server", total=None)
+            def moved(step: str, fraction: float) -> None:
+                progress.update(fitting, completed=fraction, description=f"fitting '{name}': {step}")
 
-        report = api.fit(name, file, upload_progress=uploaded, **params)
+            try:
+                report = api.follow_job(job["id"], progress=moved)
+            except KeyboardInterrupt:
+                click.echo(f"stopped following job {job['id']}; it goes on on the server (see 'segscore jobs "
+                           f"--segmentation {name}'; cancel it with DELETE /v1/jobs/{job['id']})", err=True)
+                sys.exit(EXIT_SERVER)
     from service import cli_tables
 
     _print(report, as_json, lambda: cli_tables.fit_report(report))
+
+
+@click.command("jobs")
+@click.option("--segmentation", default=None, help="only the jobs of this segmentation")
+@click.option("--limit", type=click.IntRange(min=1, max=1000), default=None, help="at most this many (default 50)")
+@_connection_options
+@_talks_to_server
+def jobs_command(segmentation: str | None, limit: int | None, url: str | None, key: str | None,
+                 as_json: bool) -> None:
+    """Background fit jobs, newest first: state, step, progress, the version written or the error."""
+    from service import cli_tables
+
+    with _client(url, key) as api:
+        rows = api.jobs(segmentation=segmentation, limit=limit)
+    _print(rows, as_json, lambda: cli_tables.jobs(rows))
 
 
 @click.command("versions")
@@ -354,5 +378,5 @@ def drift_command(name: str, file: Path, version: int | None, url: str | None, k
     _print(report, as_json, lambda: cli_tables.drift(report))
 
 
-COMMANDS = (fit_command, versions_command, show_command, compare_command, promote_command, label_command,
+COMMANDS = (fit_command, jobs_command, versions_command, show_command, compare_command, promote_command, label_command,
             assign_command, drift_command)

@@ -93,6 +93,23 @@ def versions(name: str, rows: list[dict[str, Any]]) -> Table:
     return table
 
 
+def jobs(rows: list[dict[str, Any]]) -> Table | str:
+    """Background fit jobs, newest first; a failed job shows its error's first line."""
+    from service.client._errors import detail_lines
+
+    if not rows:
+        return "no background fit jobs"
+    table = Table(title="background fit jobs (newest first)")
+    for column in ("job", "segmentation", "state", "step", "progress", "version", "created", "updated", "error"):
+        table.add_column(column, justify="right" if column in ("progress", "version") else "left")
+    for row in rows:
+        error = detail_lines(row["error"])[0] if row.get("error") is not None else ""
+        table.add_row(row["id"], row["segmentation"], row["state"], row["step"], f"{100 * row['progress']:.0f}%",
+                      "" if row["version"] is None else str(row["version"]), row["created_at"], row["updated_at"],
+                      error)
+    return table
+
+
 def comparison(answer: dict[str, Any]) -> Group:
     """The crosswalk of two versions: ARI, the contingency table, best matches and label suggestions."""
     v, w = answer["from_version"], answer["to_version"]

@@ -11,10 +11,15 @@
     │   ├── SegmentNotFound
     │   └── KeyNotFound          no API key of that name (keys revoke)
     │   ├── ChartNotFound
-    │   └── DriftReportNotFound
+    │   ├── DriftReportNotFound
+    │   └── JobNotFound          no background job of that id
     ├── Conflict
     │   ├── NoLiveVersion
-    │   └── KeyNameTaken         an API key of that name exists
+    │   ├── KeyNameTaken         an API key of that name exists
+    │   ├── JobFinished          a finished job cannot be cancelled
+    │   ├── JobReportNotReady    a job that is not done has no report
+    │   ├── JobNotRunning        the job was cancelled or failed while its fit ran: its version is not written
+    │   └── FitCancelled         the fit's job was cancelled; its worker was stopped
     ├── BodyTimeout              the client stopped sending its body
     ├── PayloadTooLarge
     ├── UnsupportedMediaType     body neither JSON nor CSV
@@ -127,6 +132,37 @@ class KeyNameTaken(Conflict):
         super().__init__(f"an API key named '{name}' exists; revoke it first or choose another name")
 
 
+class JobNotFound(NotFound):
+    """No such job."""
+
+    def __init__(self, job_id: str) -> None:
+        super().__init__(f"there is no job {job_id[:40]!r}")
+
+
+class JobFinished(Conflict):
+    """The job has finished; only a queued or running job can be cancelled."""
+
+    def __init__(self, job_id: str, state: str) -> None:
+        self.state = state
+        super().__init__(f"job {job_id!r} is {state}; only a queued or running job can be cancelled")
+
+
+class JobReportNotReady(Conflict):
+    """The job is not done: it has no fit report (yet)."""
+
+    def __init__(self, job_id: str, state: str) -> None:
+        self.state = state
+        super().__init__(f"job {job_id!r} is {state}; a job has a fit report once it is done")
+
+
+class JobNotRunning(Conflict):
+    """The job is no longer running (cancelled, or failed by a server restart): its version is not written."""
+
+    def __init__(self, job_id: str, state: str | None) -> None:
+        self.state = state
+        super().__init__(f"job {job_id!r} is {state or 'gone'}; its version was not written")
+
+
 class BodyTimeout(ServiceError):
     """The client stopped sending the request body."""
 
@@ -202,6 +238,10 @@ class FitWorkerDied(ServiceError):
                else f"exited with code {exitcode}")
         super().__init__(f"the fit worker process {how} (for instance out of memory) before answering; "
                          "nothing was written; the fit can be retried")
+
+
+class FitCancelled(Conflict):
+    """The fit's job was cancelled; its worker was stopped and nothing was written."""
 
 
 class StoreUnavailable(ServiceError):

@@ -12,6 +12,10 @@ from our own child process; nothing read from the store is ever unpickled.
 - Past the time limit the worker is killed (SIGKILL) and ``FitTimeLimit`` raised.
 - A worker that dies (SIGKILL, the kernel's out-of-memory killer, a crash) raises ``FitWorkerDied``.
 - A refusal inside the fit (``InvalidInput`` and other ``ServiceError``) is re-raised as the same class.
+- With ``progress``, the worker sends ``("progress", step, fraction)`` messages over the same pipe as the fit
+  goes (``fit_bundle``'s callback) and the server calls ``progress(step, fraction)`` in the waiting thread.
+- With ``cancel`` (a ``threading.Event``), setting it kills the worker within ``CANCEL_POLL_SECONDS`` and
+  ``FitCancelled`` is raised; nothing was written.
 """
 
 from __future__ import annotations
@@ -20,15 +24,16 @@ import logging
 import multiprocessing
 import os
 import threading
+import time
 import traceback
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 from threadpoolctl import threadpool_limits
 
 from service.core.bundle import Bundle, FitConfig
 from service.core.fit import fit_bundle
-from service.errors import FitTimeLimit, FitWorkerDied, ServiceError
+from service.errors import FitCancelled, FitTimeLimit, FitWorkerDied, ServiceError
 
 log = logging.getLogger("segscore")
 
@@ -39,6 +44,8 @@ FIT_WORKER_THREADS = 1
 FIT_WORKER_NICENESS = 10
 _CONTEXT = multiprocessing.get_context("forkserver")
 _CONTEXT.set_forkserver_preload([__name__])
+# How often the waiting thread looks at the cancel flag while the worker computes.
+CANCEL_POLL_SECONDS = 0.2
 
 _running: set[int] = set()
 _running_lock = threading.Lock()
@@ -50,11 +57,16 @@ def running_fit_workers() -> list[int]:
         return sorted(_running)
 
 
-def _work(connection, values: np.ndarray, config: FitConfig, max_agglomerative_rows: int) -> None:
+def _work(connection, values: np.ndarray, config: FitConfig, max_agglomerative_rows: int,
+          send_progress: bool = False) -> None:
     os.nice(FIT_WORKER_NICENESS)
+    def progress(step: str, fraction: float) -> None:
+        connection.send(("progress", step, fraction))
+
     try:
         with threadpool_limits(limits=FIT_WORKER_THREADS):
-            bundle = fit_bundle(values, config, max_agglomerative_rows=max_agglomerative_rows)
+            bundle = fit_bundle(values, config, max_agglomerative_rows=max_agglomerative_rows,
+                                progress=progress if send_progress else None)
         message: tuple[Any, ...] = ("fitted", bundle)
     except ServiceError as exc:
         message = ("refused", type(exc), exc.detail, dict(exc.__dict__))
@@ -72,24 +84,42 @@ def _rebuild(cls: type[ServiceError], detail: Any, state: dict[str, Any]) -> Ser
     return error
 
 
+def _next_answer(receiver, worker, deadline: float, time_limit: float,
+                 progress: Callable[[str, float], None] | None, cancel: threading.Event | None) -> tuple[Any, ...]:
+    """The worker's answer; progress messages on the way go to ``progress``."""
+    while True:
+        if cancel is not None and cancel.is_set():
+            raise FitCancelled()
+        remaining = deadline - time.monotonic()
+        if remaining <= 0:
+            raise FitTimeLimit(time_limit)
+        if not receiver.poll(min(remaining, CANCEL_POLL_SECONDS) if cancel is not None else remaining):
+            continue
+        try:
+            message = receiver.recv()
+        except (EOFError, OSError):
+            worker.join(10)
+            raise FitWorkerDied(worker.exitcode) from None
+        if message[0] != "progress":
+            return message
+        if progress is not None:
+            progress(message[1], message[2])
+
+
 def fit_in_worker(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int,
-                  time_limit: float) -> Bundle:
+                  time_limit: float, progress: Callable[[str, float], None] | None = None,
+                  cancel: threading.Event | None = None) -> Bundle:
     """``fit_bundle`` in a worker process, stopped after ``time_limit`` seconds. Blocks: call from a thread."""
     receiver, sender = _CONTEXT.Pipe(duplex=False)
-    worker = _CONTEXT.Process(target=_work, args=(sender, values, config, max_agglomerative_rows),
+    worker = _CONTEXT.Process(target=_work, args=(sender, values, config, max_agglomerative_rows,
+                                                  progress is not None),
                               name="segscore-fit", daemon=True)
     worker.start()
     sender.close()              # the worker holds the only sending end: its death reads as end of file
     with _running_lock:
         _running.add(worker.pid)
     try:
-        if not receiver.poll(time_limit):
-            raise FitTimeLimit(time_limit)
-        try:
-            message = receiver.recv()
-        except (EOFError, OSError):
-            worker.join(10)
-            raise FitWorkerDied(worker.exitcode) from None
+        message = _next_answer(receiver, worker, time.monotonic() + time_limit, time_limit, progress, cancel)
     finally:
         if worker.is_alive():
             worker.kill()

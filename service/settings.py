@@ -70,6 +70,9 @@ class Settings(BaseSettings):
     fit_concurrency: int = Field(1, ge=1)     # fits running at once, each in its own worker process
     # A fit still running after this many seconds is stopped (its worker killed, nothing written; 504).
     fit_time_limit_seconds: float = Field(1800.0, gt=0)
+    # A server refreshes its background jobs' heartbeat every third of this; a queued or running job whose
+    # heartbeat is older (its server was killed or restarted) is marked failed by any server of the store.
+    job_lease_seconds: float = Field(30.0, gt=0)
 
     drift_min_rows: int = Field(50, ge=2)
     drift_alpha: float = Field(0.01, gt=0, lt=0.5)

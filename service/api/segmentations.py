@@ -6,10 +6,10 @@ import time
 from typing import Annotated, Any
 
 import anyio
-from fastapi import APIRouter, Path, Request
+from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import JSONResponse, Response
 
-from schemas import FitReport, FitRequest, LabelUpdate, LiveUpdate, Segment, SegmentationDetail, SegmentationList
+from schemas import FitReport, FitRequest, Job, LabelUpdate, LiveUpdate, Segment, SegmentationDetail, SegmentationList
 from service.api.payload import (
     body_kind,
     check_name,
@@ -25,6 +25,7 @@ from service.api.validation import (
     printable,
 )
 from service.deps import ActorDep, AdminScope, FitScope, ReadScope, SettingsDep, StoreDep
+from service.core.fit import check_fit_inputs
 from service.errors import InvalidInput, RecordProblem
 from service.fitting import fit_in_worker
 from service.inputs.fit_input import QUERY_PARAMETERS, prepare_fit
@@ -53,22 +54,39 @@ FIT_BODY = {**request_body_openapi(FitRequest, "header row, then one row per rec
             "parameters": _csv_query_parameters_openapi()}
 
 
+BACKGROUND = "background"
+BACKGROUND_ANSWER = {202: {"model": Job, "description": "?background=true: the request was checked and a job "
+                           "queued; follow it at the Location header (/v1/jobs/{id})"}}
+
+
 @router.post("/{name}/fit", status_code=201, response_model=FitReport, openapi_extra=FIT_BODY,
              dependencies=[FitScope, StrictQuery], summary="Fit a new version from records",
-             responses=error_responses(400, 401, 403, 413, 415, 422, 500, 503))
-async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep, actor: ActorDep) -> JSONResponse:
+             responses={**BACKGROUND_ANSWER, **error_responses(400, 401, 403, 413, 415, 422, 500, 503)})
+async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep, actor: ActorDep,
+              background: Annotated[bool, Query(description="true: check the request, answer 202 with a job at "
+                                                "once and fit in the background (JSON and CSV bodies)")] = False,
+              ) -> JSONResponse:
     check_name(name)
     csv = body_kind(request) == "csv"
-    if not csv and request.query_params:
+    fit_query = {key: value for key, value in request.query_params.items() if key != BACKGROUND}
+    if not csv and fit_query:
         # A JSON body carries its parameters; a ?k=3 beside it would otherwise be ignored without a word.
         raise InvalidInput([RecordProblem(None, printable(key), "a JSON fit takes its parameters in the body; "
                                           "query parameters are for text/csv bodies")
-                            for key in dict.fromkeys(request.query_params.keys())])
+                            for key in dict.fromkeys(k for k in request.query_params.keys() if k != BACKGROUND)])
     async with large_body_slot(request, settings):
         body = await read_body(request, settings.max_body_bytes)
         # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
         values, config, make_live = await anyio.to_thread.run_sync(
-            prepare_fit, body, csv, request.query_params, settings)
+            prepare_fit, body, csv, fit_query, settings)
+
+    if background:
+        # A bad request never becomes a job: what the worker would refuse (k above the distinct records, a
+        # constant named feature...) is refused here, with the synchronous fit's answer.
+        await anyio.to_thread.run_sync(lambda: check_fit_inputs(
+            values, config, max_agglomerative_rows=settings.max_agglomerative_rows))
+        job = await request.app.state.jobs.submit(name, values, config, make_live=make_live, actor=actor)
+        return JSONResponse(job, status_code=202, headers={"Location": f"/v1/jobs/{job['id']}"})
 
     def fit_and_save() -> dict[str, Any]:
         # The fit runs in a worker process (service.fitting); the store is written here, by the server.

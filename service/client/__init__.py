@@ -24,6 +24,7 @@ from service.client._errors import (
     Conflict,
     Forbidden,
     InvalidInput,
+    JobFailed,
     LocalInputError,
     NotFound,
     PayloadTooLarge,
@@ -37,7 +38,7 @@ from service.client._errors import (
 
 __all__ = [
     "ASSIGN_BATCH_ROWS", "DEFAULT_URL", "KEY_VARIABLE", "RESULT_COLUMNS", "URL_VARIABLE", "ApiError", "BadFile",
-    "BadRequest", "BodyTimeout", "Client", "Conflict", "Forbidden", "InvalidInput", "LocalInputError", "NotFound",
+    "BadRequest", "BodyTimeout", "Client", "Conflict", "Forbidden", "InvalidInput", "JobFailed", "LocalInputError", "NotFound",
     "PayloadTooLarge", "SegscoreError", "ServerError", "ServerUnreachable", "Unauthorized", "UnexpectedResponse",
     "UnsupportedMediaType",
 ]

@@ -13,6 +13,7 @@ import io
 import json
 import os
 import tempfile
+import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -21,7 +22,7 @@ from urllib.parse import quote
 import httpx2
 import pandas as pd
 
-from service.client._errors import ApiError, LocalInputError, ServerUnreachable, UnexpectedResponse, api_error
+from service.client._errors import ApiError, JobFailed, LocalInputError, ServerUnreachable, UnexpectedResponse, api_error
 from service.client._files import CHUNK_BYTES, csv_chunks, open_text
 
 DEFAULT_URL = "http://127.0.0.1:8000"
@@ -41,6 +42,9 @@ RESULT_COLUMNS = ("segment", "label", "distance", "outlier", "outlier_reasons", 
 RESULT_DTYPES = {"segment": "Int64", "runner_up": "Int64", "outlier": "boolean", "distance": "float64",
                  "margin": "float64", "residual": "float64"}
 _SERVER_DEFAULT: Any = object()
+# How often a followed background job is read again.
+JOB_POLL_SECONDS = 0.5
+FINISHED_JOB_STATES = ("done", "failed", "cancelled")
 
 
 class Client:
@@ -154,13 +158,20 @@ class Client:
             linkage: str | None = None, k: int | tuple[int, int] | Mapping[str, int] | None = None,
             selection: str | None = None, n_init: int | None = None, seed: int | None = None,
             outlier_quantile: float | None = None, make_live: bool | None = None,
-            upload_progress: Callable[[int, int], None] | None = None) -> dict[str, Any]:
+            upload_progress: Callable[[int, int], None] | None = None, background: bool = False,
+            progress: Callable[[str, float], None] | None = None, wait: bool = True) -> dict[str, Any]:
         """Fit a new version and return its fit report (waits until the fit is done).
 
         Parameters left at None take the server's defaults; ``components=None`` means no PCA (leave it out for
         the default). ``k`` is an int, a ``(min, max)`` pair or ``{"min": .., "max": ..}``.
         ``upload_progress(bytes handed to the connection, total bytes)`` is called per 1 MiB chunk of a CSV
-        body (a DataFrame or a file); the fit itself reports no progress until background fits exist.
+        body (a DataFrame or a file).
+
+        ``background=True`` runs the fit as a server job (``?background=true``): the request is checked at once
+        (a bad one raises as a synchronous fit does), then the job is followed until it ends, calling
+        ``progress(step, fraction)`` whenever it moves (see ``follow_job``); the report is returned as for a
+        synchronous fit, and ``JobFailed`` raised if the job fails or is cancelled. With ``wait=False`` the job
+        resource is returned as soon as it is queued.
         """
         given = {"features": features, "id_column": id_column, "scaling": scaling, "method": method,
                  "linkage": linkage, "k": _k_range(k), "selection": selection, "n_init": n_init, "seed": seed,
@@ -169,10 +180,52 @@ class Client:
         if components is not _SERVER_DEFAULT:
             params["components"] = components
         path = self._path(name, "fit")
+        flag = {"background": "true"} if background else {}
         if isinstance(data, list):
-            return self._request("POST", path, document={"records": data, **params}, timeout=self._fit_timeout)
-        return self._request("POST", path, params=_query_form(params), content=_csv_content(data, upload_progress),
-                             content_type="text/csv", timeout=self._fit_timeout)
+            answer = self._request("POST", path, params=flag or None, document={"records": data, **params},
+                                   timeout=self._fit_timeout)
+        else:
+            answer = self._request("POST", path, params={**_query_form(params), **flag},
+                                   content=_csv_content(data, upload_progress), content_type="text/csv",
+                                   timeout=self._fit_timeout)
+        if not background or not wait:
+            return answer
+        return self.follow_job(answer["id"], progress=progress)
+
+    # ------------------------------------------------------------------ background fit jobs
+    def jobs(self, *, segmentation: str | None = None, limit: int | None = None) -> list[dict[str, Any]]:
+        """Background fit jobs, newest first (of one segmentation if given)."""
+        params = {k: v for k, v in (("segmentation", segmentation), ("limit", limit)) if v is not None}
+        return self._request("GET", "/v1/jobs", params=params)["jobs"]
+
+    def job(self, job_id: str) -> dict[str, Any]:
+        """One job: id, segmentation, state, step, progress, version, error, created_at, updated_at."""
+        return self._request("GET", "/v1/jobs/" + quote(job_id, safe=""))
+
+    def job_report(self, job_id: str) -> dict[str, Any]:
+        """The fit report of the version a done job wrote (needs the ``fit`` scope only); Conflict if not done."""
+        return self._request("GET", "/v1/jobs/" + quote(job_id, safe="") + "/report")
+
+    def cancel_job(self, job_id: str) -> dict[str, Any]:
+        """Cancel a queued or running job (no version is written); Conflict (409) once it has finished."""
+        return self._request("DELETE", "/v1/jobs/" + quote(job_id, safe=""))
+
+    def follow_job(self, job_id: str, *, progress: Callable[[str, float], None] | None = None,
+                   poll_seconds: float = JOB_POLL_SECONDS) -> dict[str, Any]:
+        """Read job ``job_id`` every ``poll_seconds`` until it ends; call ``progress(step, fraction)`` each time
+        its step or progress changed. Returns the fit report of the version it wrote; ``JobFailed`` if it
+        failed (``detail``: what a synchronous fit would have answered) or was cancelled."""
+        seen: tuple[str, float] | None = None
+        while True:
+            job = self.job(job_id)
+            if progress is not None and (job["step"], job["progress"]) != seen:
+                seen = (job["step"], job["progress"])
+                progress(*seen)
+            if job["state"] == "done":
+                return self.job_report(job_id)
+            if job["state"] in FINISHED_JOB_STATES:
+                raise JobFailed(job)
+            time.sleep(poll_seconds)
 
     def promote(self, name: str, version: int) -> dict[str, Any]:
         """Make ``version`` live (promote or roll back); returns the segmentation."""

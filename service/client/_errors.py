@@ -14,6 +14,7 @@
     │   ├── UnsupportedMediaType 415  the body is neither JSON nor CSV (by its Content-Type)
     │   ├── InvalidInput         422  valid JSON/CSV whose content cannot be used (items name record and field)
     │   └── ServerError          5xx
+    ├── JobFailed                a background fit ended failed or cancelled; ``job`` and its ``detail``
     └── LocalInputError          a problem found before anything was sent (a file, a column name, an argument)
         └── BadFile              a CSV file that cannot be used: ``problem`` is file, gzip, encoding, empty,
                                  header, delimiter or column; ``line`` and ``column`` say where
@@ -48,6 +49,18 @@ class UnexpectedResponse(SegscoreError):
         self.status = status
         super().__init__(f"the server answered {status} with {content_type or 'no content type'}, not JSON; "
                          "is the URL that of a segscore server?")
+
+
+class JobFailed(SegscoreError):
+    """A background fit job ended without a version: failed (``detail`` is what a synchronous fit would have
+    answered) or cancelled."""
+
+    def __init__(self, job: dict[str, Any]) -> None:
+        self.job = job
+        self.state = job.get("state")
+        self.detail = job.get("error") if self.state == "failed" else "the job was cancelled; no version was written"
+        lines = "; ".join(detail_lines(self.detail))
+        super().__init__(f"background fit job {job.get('id')} of '{job.get('segmentation')}' is {self.state}: {lines}")
 
 
 def detail_lines(detail: Any) -> list[str]:

@@ -9,7 +9,7 @@ from __future__ import annotations
 import hashlib
 import platform
 import warnings
-from typing import Any
+from typing import Any, Callable
 
 import joblib
 import numpy as np
@@ -285,9 +285,29 @@ def library_versions() -> dict[str, str]:
     }
 
 
-def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int = 20_000) -> Bundle:
-    """Fit the whole bundle on ``values`` (n_records, n_features), NaN = missing."""
+# Where each step of a fit starts on the 0..1 progress scale. Clustering (one fit per candidate k) is most of the
+# work and shares its span evenly between the candidates; 'saving' (the store write, done by the caller) comes
+# last, and 1 is left for "done".
+STEP_START = {"reading": 0.0, "scaling": 0.05, "reducing": 0.1, "clustering": 0.2, "profiling": 0.85,
+              "saving": 0.95}
+
+Progress = Callable[[str, float], None]
+
+
+def _no_progress(step: str, fraction: float) -> None:
+    return None
+
+
+def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int = 20_000,
+               progress: Progress | None = None) -> Bundle:
+    """Fit the whole bundle on ``values`` (n_records, n_features), NaN = missing.
+
+    ``progress(step, fraction)``, when given, is called as each step starts: 'scaling', 'reducing',
+    'clustering k=N' (once per candidate k), 'profiling'; ``fraction`` (0..1, never decreasing) is the share of
+    the whole fit done before that step (``STEP_START``)."""
+    report_step = progress or _no_progress
     check_fit_inputs(values, config, max_agglomerative_rows=max_agglomerative_rows)
+    report_step("scaling", STEP_START["scaling"])
     n_records, n_features = values.shape
     q = config.outlier_quantile
 
@@ -299,6 +319,7 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
 
     pca = None
     space = scaled
+    report_step("reducing", STEP_START["reducing"])
     if config.components is not None:
         pca = PCA(n_components=config.components, svd_solver="full", random_state=config.seed).fit(scaled)
         space = pca.transform(scaled)
@@ -307,7 +328,9 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
     ks = list(range(config.k_min, config.k_max + 1))
     curve: list[dict[str, Any]] = []
     fitted: dict[int, tuple[Any, np.ndarray, np.ndarray]] = {}
-    for k in ks:
+    clustering_span = STEP_START["profiling"] - STEP_START["clustering"]
+    for i, k in enumerate(ks):
+        report_step(f"clustering k={k}", STEP_START["clustering"] + clustering_span * i / len(ks))
         model, labels, centroids = _cluster(space, k, config)
         inertia = float(_own_sq_distances(space, centroids, labels).sum())
         curve.append({"k": k, "distortion": inertia / n_records, "inertia": inertia,
@@ -327,6 +350,7 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
         chosen, method = -max(scored)[1], "silhouette"
     clusterer, labels, centroids = fitted[chosen]
     del fitted
+    report_step("profiling", STEP_START["profiling"])
 
     # One truth for sizes: the assign rule (nearest centroid in the clustering space) applied to the training
     # rows gives the report's sizes and shares, the segments the thresholds are calibrated on, and the drift

@@ -172,8 +172,8 @@ class ServingCache:
                                       if not (k[0] == name and (version is None or k[1] == version))}
 
     # ----------------------------------------------------------------- writes (then read our own write)
-    def save_version(self, name: str, bundle: Bundle, *, make_live: bool | None, **actor: str) -> dict[str, Any]:
-        report = self.backend.save_version(name, bundle, make_live=make_live, **actor)
+    def save_version(self, name: str, bundle: Bundle, *, make_live: bool | None, **actor_and_job: Any) -> dict[str, Any]:
+        report = self.backend.save_version(name, bundle, make_live=make_live, **actor_and_job)
         self.refresh(force=True)
         return report
 
@@ -233,3 +233,32 @@ class ServingCache:
 
     def keys_counter(self) -> int:
         return self.backend.keys_counter()
+
+    # ----------------------------------------------------------------- background fit jobs (not served state)
+    def create_job(self, name: str, *, owner: str, **actor: str) -> dict[str, Any]:
+        return self.backend.create_job(name, owner=owner, **actor)
+
+    def job(self, job_id: str) -> dict[str, Any]:
+        return self.backend.job(job_id)
+
+    def jobs(self, name: str | None, *, limit: int) -> list[dict[str, Any]]:
+        return self.backend.jobs(name, limit=limit)
+
+    def job_progress(self, job_id: str, step: str, progress: float) -> str | None:
+        return self.backend.job_progress(job_id, step, progress)
+
+    def fail_job(self, job_id: str, error: Any) -> None:
+        self.backend.fail_job(job_id, error)
+
+    def cancel_job(self, job_id: str, **actor: str) -> dict[str, Any]:
+        return self.backend.cancel_job(job_id, **actor)
+
+    def heartbeat_jobs(self, owner: str) -> None:
+        self.backend.heartbeat_jobs(owner)
+
+    def fail_abandoned_jobs(self, *, alive_owner: str, heartbeat_before: str, error: Any) -> int:
+        return self.backend.fail_abandoned_jobs(alive_owner=alive_owner, heartbeat_before=heartbeat_before,
+                                                error=error)
+
+    def fail_owned_jobs(self, owner: str, error: Any) -> int:
+        return self.backend.fail_owned_jobs(owner, error)

@@ -47,6 +47,9 @@ from service.core.serving import serving_version
 from service.errors import (
     BundleCorrupt,
     Conflict,
+    JobFinished,
+    JobNotFound,
+    JobNotRunning,
     KeyNameTaken,
     KeyNotFound,
     NoLiveVersion,
@@ -56,7 +59,7 @@ from service.errors import (
     VersionNotFound,
 )
 from service.store import artifacts
-from service.store.base import LoadedVersion, StoredKey
+from service.store.base import ACTIVE_JOB_STATES, JOB_FIRST_STEP, MAX_UNFINISHED_PROGRESS, LoadedVersion, StoredKey
 from service.store.keys import SHOWN_PREFIX, key_digest, new_key, new_salt
 
 SQLITE_MAX_INTEGER = 2**63 - 1
@@ -123,6 +126,23 @@ CREATE TABLE IF NOT EXISTS events (
 );
 CREATE INDEX IF NOT EXISTS events_by_name ON events (name, seq);
 CREATE INDEX IF NOT EXISTS drift_by_time ON drift_reports (created_at);
+CREATE TABLE IF NOT EXISTS jobs (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT,  -- orders the list (newest first)
+    id TEXT NOT NULL UNIQUE,
+    segmentation TEXT NOT NULL,
+    state TEXT NOT NULL,               -- queued, running, done, failed, cancelled
+    step TEXT NOT NULL,
+    progress REAL NOT NULL,
+    version INTEGER,
+    error TEXT,                        -- JSON: the 'detail' a synchronous fit would have answered
+    created_at TEXT NOT NULL,
+    updated_at TEXT NOT NULL,
+    owner TEXT NOT NULL,               -- the server process running it (it refreshes heartbeat_at)
+    heartbeat_at TEXT NOT NULL,
+    actor TEXT NOT NULL
+);
+CREATE INDEX IF NOT EXISTS jobs_by_segmentation ON jobs (segmentation, seq);
+CREATE INDEX IF NOT EXISTS jobs_active ON jobs (state, heartbeat_at);
 """
 
 # The actor of writes made from the shell (``segscore store-fit``, ``segscore keys ...``).
@@ -263,9 +283,11 @@ class FilesystemStore:
 
     # ----------------------------------------------------------------- writes
     def save_version(self, name: str, bundle: Bundle, *, make_live: bool | None,
-                     actor: str = CLI_ACTOR) -> dict[str, Any]:
+                     actor: str = CLI_ACTOR, job_id: str | None = None) -> dict[str, Any]:
         """Persist ``bundle`` as the next version of ``name``; return its report.
 
+        With ``job_id`` (a background fit), the version is written only if that job is still running, and the
+        job is marked done with it in the same transaction (JobNotRunning otherwise: nothing is written).
         A write the file system refuses (read-only, full, no permission) is StoreUnavailable."""
         serving = artifacts.dumps(serving_version(bundle))
         folder = self.root / "segmentations" / name
@@ -278,6 +300,7 @@ class FilesystemStore:
             bundle_sha = _write_atomic(staged_serving, lambda handle: handle.write(serving))
             _write_atomic(staged_fitted, lambda handle: joblib.dump(bundle, handle, compress=3))
             with self._writing(f"a version of '{name}'") as db:
+                self._claim_job_for_version(db, job_id)
                 now = utc_now()
                 row = db.execute("SELECT last_version, live_version FROM segmentations WHERE name=?",
                                  (name,)).fetchone()
@@ -308,6 +331,7 @@ class FilesystemStore:
                            " live_version=CASE WHEN ? THEN ? ELSE live_version END WHERE name=?",
                            (version, now, go_live, version, name))
                 self._record_event(db, actor, "fit", name, version, {"live": bool(go_live)}, at=now)
+                self._complete_job(db, job_id, version, now)
         except OSError as exc:
             raise StoreUnavailable(f"a version of '{name}' could not be written to the store: "
                                    f"{exc.strerror or type(exc).__name__}") from None
@@ -496,6 +520,114 @@ class FilesystemStore:
             rows = self._query("SELECT report FROM drift_reports WHERE name=? AND version=? ORDER BY seq DESC"
                                " LIMIT ?", (name, version, limit))
         return [json.loads(r["report"]) for r in rows]
+
+    # ----------------------------------------------------------------- background fit jobs
+    # Postgres appends " FOR UPDATE" (a row lock until commit); SQLite's BEGIN IMMEDIATE already serializes
+    # every writer of the index.
+    _ROW_LOCK = ""
+
+    @staticmethod
+    def _job_row(row: sqlite3.Row) -> dict[str, Any]:
+        return {"id": row["id"], "segmentation": row["segmentation"], "state": row["state"], "step": row["step"],
+                "progress": float(row["progress"]), "version": row["version"],
+                "error": None if row["error"] is None else json.loads(row["error"]),
+                "created_at": row["created_at"][:19] + "Z", "updated_at": row["updated_at"][:19] + "Z"}
+
+    def create_job(self, name: str, *, owner: str, actor: str = CLI_ACTOR) -> dict[str, Any]:
+        job_id = uuid.uuid4().hex
+        with self._writing(f"a job of '{name}'") as db:
+            now = utc_now()
+            db.execute("INSERT INTO jobs (id, segmentation, state, step, progress, version, error, created_at,"
+                       " updated_at, owner, heartbeat_at, actor) VALUES (?, ?, 'queued', ?, 0.0, NULL, NULL, ?, ?,"
+                       " ?, ?, ?)", (job_id, name, JOB_FIRST_STEP, now, now, owner, now, actor))
+        return self.job(job_id)
+
+    def job(self, job_id: str) -> dict[str, Any]:
+        rows = self._query("SELECT * FROM jobs WHERE id=?", (job_id,))
+        if not rows:
+            raise JobNotFound(job_id)
+        return self._job_row(rows[0])
+
+    def jobs(self, name: str | None, *, limit: int) -> list[dict[str, Any]]:
+        if name is None:
+            rows = self._query("SELECT * FROM jobs ORDER BY seq DESC LIMIT ?", (limit,))
+        else:
+            rows = self._query("SELECT * FROM jobs WHERE segmentation=? ORDER BY seq DESC LIMIT ?", (name, limit))
+        return [self._job_row(r) for r in rows]
+
+    def _locked_job(self, db: sqlite3.Connection, job_id: str) -> sqlite3.Row | None:
+        return db.execute(f"SELECT * FROM jobs WHERE id=?{self._ROW_LOCK}", (job_id,)).fetchone()
+
+    def job_progress(self, job_id: str, step: str, progress: float) -> str | None:
+        """Record that a queued or running job is running ``step``; its progress never goes back, and stays below
+        1 (1 is "done"). Returns the job's state after the call (a cancelled job stays cancelled), None if gone."""
+        with self._writing(f"the progress of job {job_id!r}") as db:
+            row = self._locked_job(db, job_id)
+            if row is None:
+                return None
+            if row["state"] not in ACTIVE_JOB_STATES:
+                return row["state"]
+            db.execute("UPDATE jobs SET state='running', step=?, progress=?, updated_at=? WHERE id=?",
+                       (step, max(float(row["progress"]), min(float(progress), MAX_UNFINISHED_PROGRESS)),
+                        utc_now(), job_id))
+        return "running"
+
+    def fail_job(self, job_id: str, error: Any) -> None:
+        """Mark a queued or running job failed with ``error`` (the ``detail`` of the refusal); a finished or
+        cancelled job is left as it is."""
+        with self._writing(f"the state of job {job_id!r}") as db:
+            db.execute("UPDATE jobs SET state='failed', error=?, updated_at=? WHERE id=? AND state IN"
+                       " ('queued', 'running')", (json.dumps(error, allow_nan=False), utc_now(), job_id))
+
+    def cancel_job(self, job_id: str, *, actor: str = CLI_ACTOR) -> dict[str, Any]:
+        """Cancel a queued or running job (JobFinished, a 409, for any other). Its version can no longer be
+        written: ``save_version`` checks the job's state in its own transaction."""
+        with self._writing(f"the state of job {job_id!r}") as db:
+            row = self._locked_job(db, job_id)
+            if row is None:
+                raise JobNotFound(job_id)
+            if row["state"] not in ACTIVE_JOB_STATES:
+                raise JobFinished(job_id, row["state"])
+            db.execute("UPDATE jobs SET state='cancelled', updated_at=? WHERE id=?", (utc_now(), job_id))
+            self._record_event(db, actor, "cancel_job", row["segmentation"], None, {"job": job_id})
+        return self.job(job_id)
+
+    def heartbeat_jobs(self, owner: str) -> None:
+        """The jobs of ``owner`` that are queued or running are still being looked after."""
+        with self._writing("the heartbeat of running jobs") as db:
+            db.execute("UPDATE jobs SET heartbeat_at=? WHERE owner=? AND state IN ('queued', 'running')",
+                       (utc_now(), owner))
+
+    def fail_abandoned_jobs(self, *, alive_owner: str, heartbeat_before: str, error: Any) -> int:
+        """Mark failed the queued or running jobs of other server processes that stopped refreshing them
+        (their process stopped: a restart, a crash). Returns how many."""
+        with self._writing("the state of abandoned jobs") as db:
+            result = db.execute("UPDATE jobs SET state='failed', error=?, updated_at=? WHERE state IN"
+                                " ('queued', 'running') AND owner<>? AND heartbeat_at<?",
+                                (json.dumps(error), utc_now(), alive_owner, heartbeat_before))
+            return max(result.rowcount, 0)
+
+    def fail_owned_jobs(self, owner: str, error: Any) -> int:
+        """Mark failed every queued or running job of ``owner`` (a server shutting down). Returns how many."""
+        with self._writing("the state of stopped jobs") as db:
+            result = db.execute("UPDATE jobs SET state='failed', error=?, updated_at=? WHERE state IN"
+                                " ('queued', 'running') AND owner=?", (json.dumps(error), utc_now(), owner))
+            return max(result.rowcount, 0)
+
+    def _claim_job_for_version(self, db: sqlite3.Connection, job_id: str | None) -> None:
+        """Inside the transaction that writes a job's version: refuse unless the job still runs, so a cancel
+        that committed first (even during 'saving') leaves no version. The row stays locked until commit."""
+        if job_id is None:
+            return
+        row = self._locked_job(db, job_id)
+        if row is None or row["state"] != "running":
+            raise JobNotRunning(job_id, None if row is None else row["state"])
+
+    @staticmethod
+    def _complete_job(db: sqlite3.Connection, job_id: str | None, version: int, now: str) -> None:
+        if job_id is not None:
+            db.execute("UPDATE jobs SET state='done', progress=1.0, version=?, updated_at=? WHERE id=?",
+                       (version, now, job_id))
 
     # ----------------------------------------------------------------- events (who did what)
     @staticmethod

@@ -36,7 +36,7 @@ from psycopg_pool import ConnectionPool, PoolTimeout
 
 from service.core.bundle import Bundle
 from service.core.serving import serving_version
-from service.errors import BundleCorrupt, StoreUnavailable
+from service.errors import BundleCorrupt, JobNotRunning, StoreUnavailable
 from service.store import artifacts
 from service.store.base import LoadedVersion
 from service.store.filesystem import CLI_ACTOR, FITTED_SUFFIX, SERVING_SUFFIX, FilesystemStore, utc_now
@@ -239,8 +239,10 @@ class PostgresStore(FilesystemStore):
         self._listener.start()
 
     # ----------------------------------------------------------------- artifacts (content-addressed)
+    _ROW_LOCK = " FOR UPDATE"      # a job's row stays locked until the transaction that reads it ends
+
     def save_version(self, name: str, bundle: Bundle, *, make_live: bool | None,
-                     actor: str = CLI_ACTOR) -> dict[str, Any]:
+                     actor: str = CLI_ACTOR, job_id: str | None = None) -> dict[str, Any]:
         fitted = io.BytesIO()
         joblib.dump(bundle, fitted, compress=3)
         try:
@@ -249,7 +251,17 @@ class PostgresStore(FilesystemStore):
         except OSError as exc:
             raise StoreUnavailable(f"a version of '{name}' could not be written to the artifact directory: "
                                    f"{exc.strerror or type(exc).__name__}") from None
+        try:
+            return self._index_version(name, bundle, make_live=make_live, actor=actor, job_id=job_id,
+                                       bundle_sha=bundle_sha, fitted_sha=fitted_sha)
+        except JobNotRunning:
+            self._remove_unreferenced({bundle_sha, fitted_sha})     # the job's files go with its version
+            raise
+
+    def _index_version(self, name: str, bundle: Bundle, *, make_live: bool | None, actor: str, job_id: str | None,
+                       bundle_sha: str, fitted_sha: str) -> dict[str, Any]:
         with self._writing(f"a version of '{name}'") as db:
+            self._claim_job_for_version(db, job_id)
             now = utc_now()
             db.execute("INSERT INTO segmentations (name, live_version, last_version, created_at, updated_at)"
                        " VALUES (?, NULL, 0, ?, ?) ON CONFLICT (name) DO NOTHING", (name, now, now))
@@ -271,6 +283,7 @@ class PostgresStore(FilesystemStore):
                        " live_version=CASE WHEN ? THEN ? ELSE live_version END WHERE name=?",
                        (version, now, go_live, version, name))
             self._record_event(db, actor, "fit", name, version, {"live": go_live}, at=now)
+            self._complete_job(db, job_id, version, now)
         return self.version_report(name, version)
 
     def load(self, name: str, version: int) -> LoadedVersion:

@@ -43,24 +43,46 @@ def template(tmp_path_factory, iris):
         assert client.post(f"/v1/segmentations/{NAME}/fit", json=body).status_code == 201
         assert client.post(f"/v1/segmentations/{NAME}/fit", json=body).status_code == 201
         assert client.post(f"/v1/segmentations/{NAME}/drift", json={"records": records_from(iris)}).status_code == 200
+        # A finished background job for the job routes' rows of the matrix: cancelled while it waits for a fit
+        # slot (so no third version).
+        job = _cancelled_job(client, body)
     store = FilesystemStore(root)
+    assert store.job(job["id"])["state"] == "cancelled"
     keys = {scope: store.create_key(f"key-{scope}", [scope]) for scope in SCOPES}
-    return root, keys
+    return root, keys, job["id"]
+
+
+def _cancelled_job(client, body) -> dict:
+    """Start a background fit and cancel it before it runs: the fit slot is held by the test meanwhile."""
+    limiter = client.app.state.fit_limiter
+    holder = object()
+    client.portal.call(limiter.acquire_on_behalf_of, holder)
+    try:
+        job = client.post(f"/v1/segmentations/{NAME}/fit?background=true", json=body).json()
+        assert client.delete(f"/v1/jobs/{job['id']}").json()["state"] == "cancelled"
+    finally:
+        client.portal.call(lambda: limiter.release_on_behalf_of(holder))
+    return job
 
 
 @pytest.fixture
 def secured(template, tmp_path):
     """A fresh copy of the template store behind a running app, and the keys (by scope)."""
-    root, keys = template
+    root, keys, job_id = template
     shutil.copytree(root, tmp_path / "store")
     with TestClient(create_app(Settings(store_dir=tmp_path / "store"))) as client:
-        yield client, keys
+        yield client, keys, job_id
 
 
 # (method, route template) -> (path, JSON body, the route's normal status with a sufficient key)
-def _examples(iris) -> dict[tuple[str, str], tuple[str, object, int]]:
+def _examples(iris, job_id: str = "0" * 32) -> dict[tuple[str, str], tuple[str, object, int]]:
     base = f"/v1/segmentations/{NAME}"
     return {
+        ("GET", "/v1/jobs"): (f"/v1/jobs?segmentation={NAME}", None, 200),
+        ("GET", "/v1/jobs/{job_id}"): (f"/v1/jobs/{job_id}", None, 200),
+        ("GET", "/v1/jobs/{job_id}/report"): (f"/v1/jobs/{job_id}/report", None, 409),    # cancelled: no report
+        # The template's job has finished: the normal answer of a sufficient key is the 409 of a finished job.
+        ("DELETE", "/v1/jobs/{job_id}"): (f"/v1/jobs/{job_id}", None, 409),
         ("POST", "/v1/segmentations/{name}/fit"): (f"{base}/fit", {"records": records_from(iris), "k": 2}, 201),
         ("GET", "/v1/segmentations"): ("/v1/segmentations", None, 200),
         ("GET", "/v1/segmentations/{name}"): (base, None, 200),
@@ -119,8 +141,8 @@ def _state(client, admin_key) -> object:
 @pytest.mark.parametrize("credential", CREDENTIALS)
 @pytest.mark.parametrize("route", sorted(ROUTES), ids=lambda r: f"{r[0]} {r[1]}")
 def test_authorization_matrix(secured, iris, route, credential):
-    client, keys = secured
-    path, body, normal_status = _examples(iris)[route]
+    client, keys, job_id = secured
+    path, body, normal_status = _examples(iris, job_id)[route]
     if credential == "no-key":
         headers = None
     elif credential == "unknown-key":
@@ -148,7 +170,7 @@ def test_authorization_matrix(secured, iris, route, credential):
 
 @pytest.mark.parametrize("path", ["/healthz", "/readyz", "/metrics"])
 def test_health_endpoints_need_no_key(secured, path):
-    client, _ = secured
+    client, _, _ = secured
     assert client.get(path).status_code == 200
 
 
@@ -158,7 +180,7 @@ def test_health_endpoints_need_no_key(secured, path):
     ids=["no-scheme", "wrong-scheme", "empty-key", "same-first-characters", "key-plus-a-character"],
 )
 def test_malformed_or_near_miss_keys_are_401(secured, header):
-    client, keys = secured
+    client, keys, _ = secured
     key = keys["read"]
     value = header.format(key=key, prefix=key[:SHOWN_PREFIX])
     assert client.get("/v1/segmentations", headers={"Authorization": value}).status_code == 401
@@ -166,7 +188,7 @@ def test_malformed_or_near_miss_keys_are_401(secured, header):
 
 
 def test_writes_record_the_key_name_as_actor(secured):
-    client, keys = secured
+    client, keys, _ = secured
     assert client.put(f"/v1/segmentations/{NAME}/live", json={"version": 2},
                       headers=bearer(keys["fit"])).status_code == 200
     events = _state(client, keys["admin"])["events"]
@@ -174,7 +196,7 @@ def test_writes_record_the_key_name_as_actor(secured):
 
 
 def test_a_revoked_key_is_refused_and_a_new_key_accepted_by_a_running_app(secured):
-    client, keys = secured
+    client, keys, _ = secured
     assert client.get("/v1/segmentations", headers=bearer(keys["read"])).status_code == 200   # now remembered
     other_process_store = FilesystemStore(client.app.state.settings.store_dir)   # as `segscore keys` does
     other_process_store.revoke_key("key-read")
@@ -186,7 +208,7 @@ def test_a_revoked_key_is_refused_and_a_new_key_accepted_by_a_running_app(secure
 
 
 def test_the_index_holds_no_key(template):
-    root, keys = template
+    root, keys, _ = template
     raw = (root / "index.sqlite3").read_bytes()
     for key in keys.values():
         assert key.encode() not in raw
