@@ -60,6 +60,7 @@ def running_fit_workers() -> list[int]:
 def _work(connection, values: np.ndarray, config: FitConfig, max_agglomerative_rows: int,
           send_progress: bool = False) -> None:
     os.nice(FIT_WORKER_NICENESS)
+
     def progress(step: str, fraction: float) -> None:
         connection.send(("progress", step, fraction))
 
