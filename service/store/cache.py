@@ -164,6 +164,17 @@ class ServingCache:
                 problems.append({"segmentation": name, "version": version, "message": str(exc.detail)})
         return problems
 
+    def warm(self) -> list[dict[str, Any]]:
+        """Load the live versions now (at most ``bundle_cache_size`` of them, in name order), so that the first assigns of this process find them in memory. Every
+        server process (each uvicorn worker) does this at start-up. Returns the problems, as ``readiness``."""
+        problems = []
+        for name, version in sorted(self._live.items())[: self._cache_size]:
+            try:
+                self.load(name, version)
+            except ServiceError as exc:
+                problems.append({"segmentation": name, "version": version, "message": str(exc.detail)})
+        return problems
+
     def _forget(self, name: str, version: int | None = None) -> None:
         with self._lock:
             for key in [k for k in self._cache if k[0] == name and (version is None or k[1] == version)]:
