@@ -146,10 +146,22 @@ def run_server(app, settings: Settings) -> None:
     from service.connections import head_limited_protocol
 
     # log_config=None: uvicorn keeps our logging set-up (request ids in every line) instead of its own.
+    _exit_zero_after_graceful_stop()
     uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
                 access_log=False, log_level=settings.log_level,   # the app logs requests itself
                 timeout_keep_alive=settings.keep_alive_seconds,
                 http=head_limited_protocol(settings.header_read_timeout_seconds, settings.max_header_bytes))
+
+
+def _exit_zero_after_graceful_stop() -> None:
+    """On SIGTERM (or SIGINT) uvicorn stops accepting, finishes the requests in flight, and then raises the
+    signal again under the handlers it found when it started; with Python's defaults the process would then
+    die by that signal (status 143) after a clean stop. The handlers it finds do nothing, so ``serve``
+    returns and exits 0. Called just before uvicorn starts, which installs its own handlers at once."""
+    import signal
+
+    for stop in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(stop, lambda *_: None)
 
 
 def run_workers(settings: Settings, **command_line: object) -> None:
@@ -173,6 +185,7 @@ def run_workers(settings: Settings, **command_line: object) -> None:
     metrics_dir = tempfile.mkdtemp(prefix="segscore-metrics-")
     os.environ[MULTIPROCESS_DIRECTORY_VARIABLE] = metrics_dir
     try:
+        _exit_zero_after_graceful_stop()
         uvicorn.run("service.app:worker_app", factory=True, workers=settings.workers,
                     host=settings.host, port=settings.port, log_config=None, access_log=False,
                     log_level=settings.log_level, timeout_keep_alive=settings.keep_alive_seconds,
