@@ -135,6 +135,9 @@ async def _maintenance(app: FastAPI, wake: asyncio.Event) -> None:
     while True:
         try:
             await anyio.to_thread.run_sync(app.state.store.refresh)
+            # A version made live elsewhere is loaded now, not by the first assign (which would then need
+            # the index, and fail while the database is down).
+            await anyio.to_thread.run_sync(app.state.store.warm)
             await anyio.to_thread.run_sync(app.state.keyring.refresh)
             app.state.metrics.sync()
             if anyio.current_time() >= next_retention:
@@ -166,7 +169,10 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
                         "--name NAME' to turn it on.", settings.store_dir, settings.host, settings.store_dir)
         await anyio.to_thread.run_sync(_prune_drift_reports, app)
         # Every server process loads the live versions before it takes requests (each worker has its own cache).
-        problems = await anyio.to_thread.run_sync(app.state.store.warm)
+        try:
+            problems = await anyio.to_thread.run_sync(app.state.store.warm)
+        except StoreUnavailable:
+            problems = []          # /readyz says so; the background loop tries again
         for problem in problems:
             log.warning("live version '%s' version %d not loaded at start-up: %s", problem["segmentation"],
                         problem["version"], problem["message"])

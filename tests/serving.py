@@ -93,3 +93,32 @@ def segscore_server(workdir: Path, *arguments: str, settings_env: dict[str, str]
     """``segscore serve *arguments --port P`` in ``workdir``, as ``server_process`` runs it."""
     with server_process(segscore_command(*arguments), workdir, settings_env=settings_env) as base:
         yield base
+
+
+def _processes() -> dict[int, tuple[int, str]]:
+    """pid -> (parent pid, command line) of every process, from /proc."""
+    table = {}
+    for entry in Path("/proc").iterdir():
+        if entry.name.isdigit():
+            try:
+                stat = (entry / "stat").read_text()
+                cmdline = (entry / "cmdline").read_bytes().replace(b"\0", b" ").decode(errors="replace")
+            except OSError:
+                continue
+            table[int(entry.name)] = (int(stat.rsplit(")", 1)[1].split()[1]), cmdline)
+    return table
+
+
+def fit_workers_under(server_pid: int) -> list[int]:
+    """Processes below ``server_pid`` forked by a forkserver (the fit workers: service/fitting.py)."""
+    table = _processes()
+
+    def below(pid: int) -> bool:
+        while pid in table and pid > 1:
+            pid = table[pid][0]
+            if pid == server_pid:
+                return True
+        return False
+
+    return [pid for pid, (parent, cmdline) in table.items()
+            if "forkserver" in cmdline and parent in table and "forkserver" in table[parent][1] and below(pid)]
