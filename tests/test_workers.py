@@ -134,3 +134,20 @@ def test_a_promote_and_a_new_key_reach_both_workers(two_workers, iris):
     answers = on_new_connections(base, 16, lambda c: c.get("/v1/segmentations",
                                                            headers={"Authorization": f"Bearer {key}"}))
     assert [a.status_code for a in answers] == [200] * 16
+
+
+def test_every_worker_loads_the_live_version_before_any_assign(tmp_path, iris):
+    from service.core.bundle import FitConfig
+    from service.core.fit import fit_bundle
+    from service.store import FilesystemStore
+
+    store_dir = tmp_path / "store"
+    bundle = fit_bundle(iris.data, FitConfig(features=list(iris.feature_names), k_min=3, k_max=3, k_fixed=True))
+    FilesystemStore(store_dir).save_version("shop", bundle, make_live=None)
+    with segscore_server(tmp_path, "--workers", "2", "--store", str(store_dir)) as base:
+        # No assign is made: a /readyz probe (one worker answers it) could explain one copy, not two.
+        started = time.monotonic()
+        while scraped(base, "segscore_bundles_loaded") != 2:
+            assert time.monotonic() - started < DEADLINE, f"bundles loaded: {scraped(base, 'segscore_bundles_loaded')}"
+            time.sleep(0.2)
+        assert scraped(base, "segscore_http_requests_total", route=ASSIGN_TEMPLATE) == 0
