@@ -136,7 +136,11 @@ async def _maintenance(app: FastAPI, wake: asyncio.Event) -> None:
     while True:
         try:
             await anyio.to_thread.run_sync(app.state.store.refresh)
+            # A version made live elsewhere is loaded now, not by the first assign (which would then need
+            # the index, and fail while the database is down).
+            await anyio.to_thread.run_sync(app.state.store.warm)
             await anyio.to_thread.run_sync(app.state.keyring.refresh)
+            app.state.metrics.sync()
             if anyio.current_time() >= next_retention:
                 next_retention = anyio.current_time() + RETENTION_EVERY_SECONDS
                 await anyio.to_thread.run_sync(_prune_drift_reports, app)
@@ -165,6 +169,14 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
                         "address %s only. Create a key with 'segscore keys create --store %s --scope admin "
                         "--name NAME' to turn it on.", settings.store_dir, settings.host, settings.store_dir)
         await anyio.to_thread.run_sync(_prune_drift_reports, app)
+        # Every server process loads the live versions before it takes requests (each worker has its own cache).
+        try:
+            problems = await anyio.to_thread.run_sync(app.state.store.warm)
+        except StoreUnavailable:
+            problems = []          # /readyz says so; the background loop tries again
+        for problem in problems:
+            log.warning("live version '%s' version %d not loaded at start-up: %s", problem["segmentation"],
+                        problem["version"], problem["message"])
         loop, wake = asyncio.get_running_loop(), asyncio.Event()
         app.state.store.watch(lambda: loop.call_soon_threadsafe(wake.set))
         maintenance = loop.create_task(_maintenance(app, wake))
@@ -192,6 +204,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
                 await maintenance
             if owns_store:
                 await anyio.to_thread.run_sync(app.state.store.close)
+            metrics.process_exit()
 
     app = FastAPI(
         title="segscore",
@@ -221,7 +234,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
                     len(legacy), *legacy[0], settings.store_dir)
     app.state.metrics = metrics
     app.state.jobs = JobRunner(app.state.store, settings, metrics)
-    metrics.bundles_loaded.set_function(lambda: app.state.store.loaded_count())
+    metrics.track_bundles_loaded(lambda: app.state.store.loaded_count())
     app.state.chart_cache = ChartCache(settings.chart_cache_size)
     for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router, jobs.router):
         app.include_router(router, prefix="/v1")
@@ -237,6 +250,18 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
     app.add_middleware(RequestIdMiddleware)
     _build_routes_now(app)
     return app
+
+
+def worker_app() -> FastAPI:
+    """The application of one worker process of ``segscore serve --workers N`` (uvicorn imports this factory
+    in each worker; the settings come from the ``SEGSCORE_*`` variables that ``serve`` passed on)."""
+    from service.cli import pin_blas_threads
+    from service.logs import configure_logging
+
+    settings = get_settings()
+    configure_logging(settings.log_level, settings.log_format)
+    pin_blas_threads()
+    return create_app(settings)
 
 
 DOCS_ASSETS = "/docs-assets"

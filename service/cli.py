@@ -108,24 +108,31 @@ def main() -> None:
 @main.command()
 @click.option("--host", default=None, help="bind address (default 127.0.0.1; env SEGSCORE_HOST)")
 @click.option("--port", type=int, default=None, help="port (default 8000; env SEGSCORE_PORT)")
+@click.option("--workers", type=int, default=None,
+              help="server processes behind the port (default 1; env SEGSCORE_WORKERS)")
 @_store_options
 @click.option("--demo", is_flag=True, help="fit the 'demo' segmentation from synthetic data if absent")
-def serve(host: str | None, port: int | None, demo: bool, **store_options) -> None:
-    """Run the HTTP API with uvicorn (one process)."""
+def serve(host: str | None, port: int | None, workers: int | None, demo: bool, **store_options) -> None:
+    """Run the HTTP API with uvicorn (one process, or --workers processes behind one port)."""
     from service.app import create_app, start_up_refusal
     from service.logs import configure_logging
 
-    settings = _settings(host=host, port=port, **store_options)
+    settings = _settings(host=host, port=port, workers=workers, **store_options)
     configure_logging(settings.log_level, settings.log_format)
     store = _open_store(**store_options)
     app = create_app(settings, store)
     refusal = start_up_refusal(settings, app.state.keyring)
     if refusal:
         click.echo(refusal, err=True)
+        store.close()
         sys.exit(1)
     pin_blas_threads()
     if demo:
         ensure_demo(settings, store)
+    if settings.workers > 1:
+        store.close()       # each worker opens its own
+        run_workers(settings, host=host, port=port, workers=workers, **store_options)
+        return
     try:
         run_server(app, settings)
     finally:
@@ -139,10 +146,52 @@ def run_server(app, settings: Settings) -> None:
     from service.connections import head_limited_protocol
 
     # log_config=None: uvicorn keeps our logging set-up (request ids in every line) instead of its own.
+    _exit_zero_after_graceful_stop()
     uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
                 access_log=False, log_level=settings.log_level,   # the app logs requests itself
                 timeout_keep_alive=settings.keep_alive_seconds,
                 http=head_limited_protocol(settings.header_read_timeout_seconds, settings.max_header_bytes))
+
+
+def _exit_zero_after_graceful_stop() -> None:
+    """On SIGTERM (or SIGINT) uvicorn stops accepting, finishes the requests in flight, and then raises the
+    signal again under the handlers it found when it started; with Python's defaults the process would then
+    die by that signal (status 143) after a clean stop. The handlers it finds do nothing, so ``serve``
+    returns and exits 0. Called just before uvicorn starts, which installs its own handlers at once."""
+    import signal
+
+    for stop in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(stop, lambda *_: None)
+
+
+def run_workers(settings: Settings, **command_line: object) -> None:
+    """``settings.workers`` uvicorn worker processes, each building its app with ``service.app.worker_app``.
+
+    The workers are new interpreters: they read the settings from the environment, so the command-line
+    options are passed on as ``SEGSCORE_*`` variables. Their metrics go to a fresh directory (multiprocess
+    mode, so that /metrics adds up every worker's counts), removed when the server stops."""
+    import os
+    import shutil
+    import tempfile
+
+    import uvicorn
+
+    from service.connections import WORKER_PROTOCOL
+    from service.metrics import MULTIPROCESS_DIRECTORY_VARIABLE
+
+    for field, value in command_line.items():
+        if value is not None:
+            os.environ[f"SEGSCORE_{field.upper()}"] = str(value)
+    metrics_dir = tempfile.mkdtemp(prefix="segscore-metrics-")
+    os.environ[MULTIPROCESS_DIRECTORY_VARIABLE] = metrics_dir
+    try:
+        _exit_zero_after_graceful_stop()
+        uvicorn.run("service.app:worker_app", factory=True, workers=settings.workers,
+                    host=settings.host, port=settings.port, log_config=None, access_log=False,
+                    log_level=settings.log_level, timeout_keep_alive=settings.keep_alive_seconds,
+                    http=WORKER_PROTOCOL)
+    finally:
+        shutil.rmtree(metrics_dir, ignore_errors=True)
 
 
 @main.command("demo-data")

@@ -82,6 +82,22 @@ class HeadLimitedProtocol(HttpToolsProtocol):
             self.transport.close()
 
 
+class SettingsHeadLimitedProtocol(HeadLimitedProtocol):
+    """The protocol that worker processes name by import string (a class made by ``head_limited_protocol``
+    cannot be sent to a spawned worker): its limits are read from the worker's own settings."""
+
+    def __init__(self, *args, **kwargs) -> None:
+        from service.settings import get_settings
+
+        settings = get_settings()
+        self.head_timeout_seconds = settings.header_read_timeout_seconds
+        self.max_head_bytes = settings.max_header_bytes
+        super().__init__(*args, **kwargs)
+
+
+WORKER_PROTOCOL = f"{__name__}:{SettingsHeadLimitedProtocol.__name__}"
+
+
 def head_limited_protocol(timeout_seconds: float, max_bytes: int) -> type[HeadLimitedProtocol]:
     """The protocol class for ``uvicorn.run(http=...)`` with these limits."""
     return type("ConfiguredHeadLimitedProtocol", (HeadLimitedProtocol,),

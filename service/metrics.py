@@ -1,11 +1,19 @@
-"""Prometheus metrics, one registry per app (so test apps do not share counters)."""
+"""Prometheus metrics, one registry per app (so test apps do not share counters).
+
+With several server processes (``segscore serve --workers N``) each worker counts in its own files under
+``PROMETHEUS_MULTIPROC_DIR`` (prometheus_client's multiprocess mode; the serve command makes a fresh directory
+per server start and removes it at exit), and ``/metrics``, whichever worker answers it, adds them up. The
+library chooses its mode when it is first imported, from that variable, so the mode here follows it too.
+"""
 
 from __future__ import annotations
 
 import logging
+import os
 import time
+from typing import Callable
 
-from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest, multiprocess
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
 __all__ = ["CONTENT_TYPE_LATEST", "Metrics", "MetricsMiddleware"]
@@ -13,9 +21,18 @@ __all__ = ["CONTENT_TYPE_LATEST", "Metrics", "MetricsMiddleware"]
 request_log = logging.getLogger("segscore.requests")
 
 
+MULTIPROCESS_DIRECTORY_VARIABLE = "PROMETHEUS_MULTIPROC_DIR"
+
+
+def multiprocess_mode() -> bool:
+    return bool(os.environ.get(MULTIPROCESS_DIRECTORY_VARIABLE))
+
+
 class Metrics:
     def __init__(self) -> None:
+        self.multiprocess = multiprocess_mode()
         self.registry = CollectorRegistry()
+        self._bundles_loaded_now: Callable[[], int] | None = None
         self.requests = Counter("segscore_http_requests", "HTTP requests by route and status",
                                 ["method", "route", "status"], registry=self.registry)
         self.latency = Histogram("segscore_http_request_seconds", "HTTP request time by route",
@@ -32,13 +49,14 @@ class Metrics:
         self.drift_reports = Counter("segscore_drift_reports", "Drift reports computed", ["status"],
                                      registry=self.registry)
         self.drift_status = Gauge("segscore_drift_status", "Status of the last drift report (0 stable, 1 watch, 2 alert)",
-                                  ["segmentation"], registry=self.registry)
+                                  ["segmentation"], registry=self.registry, multiprocess_mode="mostrecent")
         self.drift_psi = Gauge("segscore_drift_feature_psi", "Per-feature PSI of the last drift report",
-                               ["segmentation", "feature"], registry=self.registry)
+                               ["segmentation", "feature"], registry=self.registry, multiprocess_mode="mostrecent")
         self.store_errors = Counter("segscore_store_errors", "Calls answered 503 because the store was unavailable",
                                     registry=self.registry)
-        self.bundles_loaded = Gauge("segscore_bundles_loaded", "Compiled versions held in memory",
-                                    registry=self.registry)
+        # Summed over the live workers (each holds its own copies).
+        self.bundles_loaded = Gauge("segscore_bundles_loaded", "Compiled versions held in memory (all workers)",
+                                    registry=self.registry, multiprocess_mode="livesum")
 
     DRIFT_STATUS_NUMBER = {"stable": 0, "watch": 1, "alert": 2}
 
@@ -48,8 +66,29 @@ class Metrics:
         for feature in report["features"]:
             self.drift_psi.labels(report["name"], feature["name"]).set(feature["psi"])
 
+    def track_bundles_loaded(self, count: Callable[[], int]) -> None:
+        """Report ``count()`` as bundles loaded: read at each scrape with one worker; with several, each worker
+        writes its own count (``sync``, called by its background loop and before it answers a scrape)."""
+        self._bundles_loaded_now = count
+        if not self.multiprocess:
+            self.bundles_loaded.set_function(count)
+
+    def sync(self) -> None:
+        if self.multiprocess and self._bundles_loaded_now is not None:
+            self.bundles_loaded.set(self._bundles_loaded_now())
+
     def exposition(self) -> bytes:
-        return generate_latest(self.registry)
+        if not self.multiprocess:
+            return generate_latest(self.registry)
+        self.sync()
+        merged = CollectorRegistry()
+        multiprocess.MultiProcessCollector(merged)
+        return generate_latest(merged)
+
+    def process_exit(self) -> None:
+        """A worker that stops: its live gauges leave the sums (its counters stay counted)."""
+        if self.multiprocess:
+            multiprocess.mark_process_dead(os.getpid())
 
 
 class MetricsMiddleware:

@@ -28,6 +28,10 @@ class Settings(BaseSettings):
     database_timeout_seconds: float = Field(5.0, gt=0)
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=1, le=65535)
+    # Server processes (uvicorn workers) behind the one port. Each pins its BLAS/OpenMP pool to one thread and
+    # loads the live versions at start-up; with more than one, /metrics adds up the workers' counts
+    # (prometheus_client's multiprocess mode, in a fresh directory per server start). See README, "Workers".
+    workers: int = Field(1, ge=1, le=64)
 
     # API keys live in the store (``segscore keys create``); there is no key setting.
 

@@ -41,11 +41,10 @@ def get_json(url: str) -> tuple[int, Any]:
         return response.status, json.loads(response.read())
 
 
-@contextmanager
-def server_process(command: list[str], workdir: Path, *, settings_env: dict[str, str] | None = None,
-                   cwd: Path | None = None) -> Iterator[str]:
-    """Run ``command`` (a server on 127.0.0.1 whose port is the last argument) until /readyz answers 200 with
-    status "ready"; yield its base URL; stop it with SIGTERM (SIGKILL after 30 s).
+def start_server(command: list[str], workdir: Path, *, settings_env: dict[str, str] | None = None,
+                 cwd: Path | None = None) -> tuple[subprocess.Popen, str]:
+    """Start ``command`` (a server on 127.0.0.1 whose port is the last argument) and wait until /readyz
+    answers 200 with status "ready"; return the process and its base URL. The caller stops it.
 
     The server's output goes to ``workdir/server.log`` (shown when it fails to start); SEGSCORE_* variables
     of the calling environment are not passed on, those of ``settings_env`` are."""
@@ -54,27 +53,72 @@ def server_process(command: list[str], workdir: Path, *, settings_env: dict[str,
     log_path = workdir / "server.log"
     with log_path.open("w") as log:
         server = subprocess.Popen(command, stdout=log, stderr=subprocess.STDOUT, env=env, cwd=cwd or workdir)
-        base = f"http://127.0.0.1:{port}"
-        try:
-            deadline = time.monotonic() + SERVER_START_TIMEOUT
-            status, body = None, None
-            while time.monotonic() < deadline:
-                assert server.poll() is None, log_path.read_text()
-                try:
-                    status, body = get_json(f"{base}/readyz")
-                    break
-                except (urllib.error.URLError, ConnectionError, TimeoutError):
-                    time.sleep(0.25)
-            assert status == 200 and body["status"] == "ready", log_path.read_text()
-            yield base
-        finally:
-            stop_process(server)
+    base = f"http://127.0.0.1:{port}"
+    try:
+        deadline = time.monotonic() + SERVER_START_TIMEOUT
+        status, body = None, None
+        while time.monotonic() < deadline:
+            assert server.poll() is None, log_path.read_text()
+            try:
+                status, body = get_json(f"{base}/readyz")
+                break
+            except (urllib.error.URLError, ConnectionError, TimeoutError):
+                time.sleep(0.25)
+        assert status == 200 and body["status"] == "ready", log_path.read_text()
+    except BaseException:
+        stop_process(server)
+        raise
+    return server, base
+
+
+@contextmanager
+def server_process(command: list[str], workdir: Path, *, settings_env: dict[str, str] | None = None,
+                   cwd: Path | None = None) -> Iterator[str]:
+    """``start_server``; yield the base URL; stop the server with SIGTERM (SIGKILL after 30 s)."""
+    server, base = start_server(command, workdir, settings_env=settings_env, cwd=cwd)
+    try:
+        yield base
+    finally:
+        stop_process(server)
+
+
+def segscore_command(*arguments: str) -> list[str]:
+    """``segscore serve *arguments --port P`` on a free port P."""
+    segscore = Path(sys.executable).with_name("segscore")
+    return [str(segscore), "serve", *arguments, "--port", str(free_port())]
 
 
 @contextmanager
 def segscore_server(workdir: Path, *arguments: str, settings_env: dict[str, str] | None = None) -> Iterator[str]:
     """``segscore serve *arguments --port P`` in ``workdir``, as ``server_process`` runs it."""
-    segscore = Path(sys.executable).with_name("segscore")
-    with server_process([str(segscore), "serve", *arguments, "--port", str(free_port())], workdir,
-                        settings_env=settings_env) as base:
+    with server_process(segscore_command(*arguments), workdir, settings_env=settings_env) as base:
         yield base
+
+
+def _processes() -> dict[int, tuple[int, str]]:
+    """pid -> (parent pid, command line) of every process, from /proc."""
+    table = {}
+    for entry in Path("/proc").iterdir():
+        if entry.name.isdigit():
+            try:
+                stat = (entry / "stat").read_text()
+                cmdline = (entry / "cmdline").read_bytes().replace(b"\0", b" ").decode(errors="replace")
+            except OSError:
+                continue
+            table[int(entry.name)] = (int(stat.rsplit(")", 1)[1].split()[1]), cmdline)
+    return table
+
+
+def fit_workers_under(server_pid: int) -> list[int]:
+    """Processes below ``server_pid`` forked by a forkserver (the fit workers: service/fitting.py)."""
+    table = _processes()
+
+    def below(pid: int) -> bool:
+        while pid in table and pid > 1:
+            pid = table[pid][0]
+            if pid == server_pid:
+                return True
+        return False
+
+    return [pid for pid, (parent, cmdline) in table.items()
+            if "forkserver" in cmdline and parent in table and "forkserver" in table[parent][1] and below(pid)]

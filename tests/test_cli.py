@@ -112,7 +112,7 @@ def test_serve_demo_answers_readyz_and_lists_demo(tmp_path):
     from service.settings import Settings
 
     ensure_demo(Settings(store_dir=store))
-    assert sorted(p.name for p in (store / "segmentations" / "demo").glob("v*.joblib")) == ["v000001.joblib"]
+    assert sorted(p.name for p in (store / "segmentations" / "demo").glob("v*.json")) == ["v000001.json"]
 
 
 def test_a_bad_setting_is_a_clean_message_naming_the_variable(tmp_path, demo_csv, monkeypatch):

@@ -33,6 +33,16 @@ def test_the_image_is_slim_runs_as_a_user_and_checks_its_health():
     assert {pattern.rstrip("*") for pattern in packages["include"]} <= copied
 
 
+def test_the_worker_count_comes_from_the_workers_setting():
+    steps = instructions()
+    environment = dict(re.findall(r"(\w+)=(\S+)", " ".join(argument for kind, argument in steps if kind == "ENV")))
+    assert "workers" in Settings.model_fields
+    assert Settings(workers=int(environment["SEGSCORE_WORKERS"])).workers == 1
+    # The command is ``segscore serve`` with no --workers of its own, so the setting decides.
+    command = [argument for kind, argument in steps if kind == "CMD"][-1]
+    assert "serve" in command and "--workers" not in command
+
+
 def test_compose_runs_two_replicas_on_one_index_and_one_artifact_volume():
     compose = yaml.safe_load((DOCKER / "compose.yaml").read_text())
     services = compose["services"]

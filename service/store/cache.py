@@ -25,7 +25,7 @@ from typing import Any, Callable
 import anyio
 
 from service.core.bundle import Bundle
-from service.errors import ServiceError
+from service.errors import ServiceError, StoreUnavailable
 from service.store.base import LoadedVersion, StoreBackend, StoredKey
 
 
@@ -38,6 +38,8 @@ class ServingCache:
         self._cache: OrderedDict[tuple[str, int], LoadedVersion] = OrderedDict()
         # Versions that loaded and verified once and were then evicted: /readyz does not load them again.
         self._verified_evicted: set[tuple[str, int]] = set()
+        # Live versions that ``warm`` could not load since the index last changed (not retried every second).
+        self._warm_failed: set[tuple[str, int]] = set()
         self._labels: dict[tuple[str, int], dict[int, str]] = {}
         self._live: dict[str, int] = {}
         self._changes: int | None = None
@@ -73,6 +75,7 @@ class ServingCache:
                 for key in [k for k in self._cache if k not in existing]:
                     del self._cache[key]          # deleted elsewhere
                 self._verified_evicted &= existing
+                self._warm_failed.clear()
                 self._changes = changes
             return True
 
@@ -161,6 +164,27 @@ class ServingCache:
             try:
                 self.load(name, version)
             except ServiceError as exc:
+                problems.append({"segmentation": name, "version": version, "message": str(exc.detail)})
+        return problems
+
+    def warm(self) -> list[dict[str, Any]]:
+        """Load the live versions not in memory yet, with their labels, so that assigns find them there even
+        when the index is unreachable later: at start-up (every server process, each uvicorn worker, has its
+        own cache) and after each background check, so a version made live elsewhere is held before it is
+        asked for. A version loaded once and evicted since is left out (no churn when more versions are live
+        than ``bundle_cache_size``); one that failed is not retried until the index changes. Returns the
+        problems, as ``readiness``. Raises StoreUnavailable."""
+        problems = []
+        wanted = [key for key in sorted(self._live.items())
+                  if key not in self._verified_evicted and key not in self._warm_failed]
+        for name, version in wanted[: self._cache_size]:
+            try:
+                self.load(name, version)
+                self.labels(name, version)
+            except ServiceError as exc:
+                if isinstance(exc, StoreUnavailable):
+                    raise
+                self._warm_failed.add((name, version))
                 problems.append({"segmentation": name, "version": version, "message": str(exc.detail)})
         return problems
 

@@ -1,19 +1,24 @@
-"""Local store: one directory per segmentation, pickle-free serving artifacts, JSON reports, a SQLite index.
+"""Local store: content-addressed pickle-free serving artifacts, JSON reports, a SQLite index.
 
 Layout under the store root::
 
     index.sqlite3                          segmentations, versions, labels, live pointer, drift reports
-    segmentations/<name>/v000003.npz       the serving artifact: arrays + JSON manifest, no pickle
-                                           (``service.store.artifacts``); its SHA-256 is in the index
-    segmentations/<name>/v000003.joblib    the fitted scikit-learn objects, for analysts; the server never
-                                           reads it
+    objects/ab/<sha256>.npz                a serving artifact: arrays + JSON manifest, no pickle
+                                           (``service.store.artifacts``), named by its SHA-256, which the
+                                           version's index row holds (``service.store.objects``)
+    objects/cd/<sha256>.joblib             the fitted scikit-learn objects, for analysts; the server never
+                                           reads it (``FilesystemStore.fitted_path`` finds a version's)
     segmentations/<name>/v000003.json      the fit report (identity fields included)
 
-A version becomes visible only when its index row commits, and that happens last: artifacts and
-report are written to temporary files, fsynced and renamed into place first. A crash before the
-commit leaves at most unlisted files that the next fit of that number overwrites. Version numbers
-come from a per-segmentation counter bumped inside the same ``BEGIN IMMEDIATE`` transaction, so
-concurrent fits (threads or processes) never share a number.
+The same layout as the postgres backend's shared artifact directory. A version becomes visible only when
+its index row commits, and that happens last: the artifacts are written to temporary files, fsynced and
+renamed to their content's name first, and the report inside the transaction. A crash before the commit
+leaves at most files that no row names (an object, a report that the next fit of that number overwrites).
+Version numbers come from a per-segmentation counter bumped inside the same ``BEGIN IMMEDIATE``
+transaction, so concurrent fits (threads or processes) never share a number.
+
+Stores written before content addressing keep their artifacts at ``segmentations/<name>/v000003.npz`` (and
+``.joblib``); the index row names that file, and it is read from there (no conversion needed).
 
 Stores written before the serving artifact existed list a ``.joblib`` file as a version's artifact. The
 server does not unpickle it (a pickle is code): such a version answers an error that names it until
@@ -26,12 +31,12 @@ from __future__ import annotations
 import dataclasses
 import fcntl
 import hashlib
+import io
 import json
 import os
 import re
 import shutil
 import sqlite3
-import tempfile
 import threading
 import time
 import uuid
@@ -60,6 +65,7 @@ from service.errors import (
 )
 from service.store import artifacts
 from service.store.base import ACTIVE_JOB_STATES, JOB_FIRST_STEP, MAX_UNFINISHED_PROGRESS, LoadedVersion, StoredKey
+from service.store.objects import ContentAddressedFiles, _sha256_file, _write_atomic
 from service.store.keys import SHOWN_PREFIX, key_digest, new_key, new_salt
 
 SQLITE_MAX_INTEGER = 2**63 - 1
@@ -82,8 +88,9 @@ CREATE TABLE IF NOT EXISTS versions (
     n_records INTEGER NOT NULL,
     data_sha256 TEXT NOT NULL,
     bundle_sha256 TEXT NOT NULL,
-    artifact TEXT NOT NULL,
+    artifact TEXT NOT NULL,            -- <bundle_sha256>.npz (content-addressed); older rows: v000003.npz
     report TEXT NOT NULL,
+    fitted_sha256 TEXT,                -- the analysts' .joblib object (NULL in rows older than objects)
     PRIMARY KEY (name, version)
 );
 CREATE TABLE IF NOT EXISTS labels (
@@ -155,39 +162,6 @@ def utc_now() -> str:
     return datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
-def _fsync_dir(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
-def _write_atomic(target: Path, write) -> str:
-    """Write via ``write(file)`` to a temp file beside ``target``, fsync, rename; return its SHA-256."""
-    fd, tmp = tempfile.mkstemp(dir=target.parent, prefix=".tmp-", suffix=target.suffix)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            write(handle)
-            handle.flush()
-            os.fsync(handle.fileno())
-        digest = _sha256_file(Path(tmp))
-        os.replace(tmp, target)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    _fsync_dir(target.parent)
-    return digest
-
-
-def _sha256_file(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
-
 _LONE_SURROGATE = re.compile("[\ud800-\udfff]")
 _SURROGATE_ESCAPE = re.compile(r"\\u[dD][89a-fA-F]")
 
@@ -212,6 +186,7 @@ class FilesystemStore:
 
     def __init__(self, root: Path | str) -> None:
         self.root = Path(root)
+        self.files = ContentAddressedFiles(self.root)
         self._local = threading.local()
         try:
             (self.root / "segmentations").mkdir(parents=True, exist_ok=True)
@@ -221,6 +196,9 @@ class FilesystemStore:
                 fcntl.flock(lock, fcntl.LOCK_EX)
                 self._db().execute("PRAGMA journal_mode=WAL")
                 self._db().executescript(SCHEMA)  # idempotent; executescript manages its own transaction
+                columns = {row["name"] for row in self._db().execute("PRAGMA table_info(versions)")}
+                if "fitted_sha256" not in columns:        # a store made before content addressing
+                    self._db().execute("ALTER TABLE versions ADD COLUMN fitted_sha256 TEXT")
             self._remove_crash_leftovers()
         except (OSError, sqlite3.Error) as exc:
             raise StoreUnavailable(f"cannot open the store at {self.root}: {exc}") from None
@@ -229,13 +207,15 @@ class FilesystemStore:
         """Delete temporary and staged files a killed writer left behind. Only old ones: a file younger than
         ``min_age_seconds`` may belong to a fit that another process is writing right now."""
         cutoff = time.time() - min_age_seconds
+        leftovers = [*self.files.temporary_files()]
         for pattern in (".tmp-*", ".staged-*"):
-            for path in (self.root / "segmentations").glob(f"*/{pattern}"):
-                try:
-                    if path.stat().st_mtime < cutoff:
-                        path.unlink()
-                except FileNotFoundError:
-                    pass
+            leftovers += (self.root / "segmentations").glob(f"*/{pattern}")
+        for path in leftovers:
+            try:
+                if path.stat().st_mtime < cutoff:
+                    path.unlink()
+            except FileNotFoundError:
+                pass
 
     # ----------------------------------------------------------------- connections
     def _db(self) -> sqlite3.Connection:
@@ -282,6 +262,20 @@ class FilesystemStore:
             raise StoreUnavailable(f"the store directory {self.root} is not writable")
 
     # ----------------------------------------------------------------- writes
+    def _put_artifacts(self, name: str, bundle: Bundle) -> tuple[str, str]:
+        """Write the serving artifact and the analysts' file as content-addressed objects (both backends);
+        return their SHA-256s. A write the file system refuses (read-only, full, no permission) is
+        StoreUnavailable. Objects that no index row names yet are harmless: nothing lists them."""
+        fitted = io.BytesIO()
+        try:
+            joblib.dump(bundle, fitted, compress=3)
+            bundle_sha = self.files.put(artifacts.dumps(serving_version(bundle)), SERVING_SUFFIX)
+            fitted_sha = self.files.put(fitted.getvalue(), FITTED_SUFFIX)
+        except OSError as exc:
+            raise StoreUnavailable(f"a version of '{name}' could not be written to the store: "
+                                   f"{exc.strerror or type(exc).__name__}") from None
+        return bundle_sha, fitted_sha
+
     def save_version(self, name: str, bundle: Bundle, *, make_live: bool | None,
                      actor: str = CLI_ACTOR, job_id: str | None = None) -> dict[str, Any]:
         """Persist ``bundle`` as the next version of ``name``; return its report.
@@ -289,16 +283,11 @@ class FilesystemStore:
         With ``job_id`` (a background fit), the version is written only if that job is still running, and the
         job is marked done with it in the same transaction (JobNotRunning otherwise: nothing is written).
         A write the file system refuses (read-only, full, no permission) is StoreUnavailable."""
-        serving = artifacts.dumps(serving_version(bundle))
+        # The heavy writes happen outside the index lock; only the small report inside it.
+        bundle_sha, fitted_sha = self._put_artifacts(name, bundle)
         folder = self.root / "segmentations" / name
-        token = uuid.uuid4().hex
-        staged_serving = folder / f".staged-{token}{SERVING_SUFFIX}"
-        staged_fitted = folder / f".staged-{token}{FITTED_SUFFIX}"
         try:
             folder.mkdir(parents=True, exist_ok=True)
-            # The heavy writes happen outside the index lock; the renames to numbered names inside it.
-            bundle_sha = _write_atomic(staged_serving, lambda handle: handle.write(serving))
-            _write_atomic(staged_fitted, lambda handle: joblib.dump(bundle, handle, compress=3))
             with self._writing(f"a version of '{name}'") as db:
                 self._claim_job_for_version(db, job_id)
                 now = utc_now()
@@ -316,32 +305,24 @@ class FilesystemStore:
                     "name": name, "version": version, "created_at": now[:19] + "Z",
                     **bundle.report, "bundle_sha256": bundle_sha,
                 }
-                artifact = folder / f"v{version:06d}{SERVING_SUFFIX}"
-                os.replace(staged_serving, artifact)
-                os.replace(staged_fitted, folder / f"v{version:06d}{FITTED_SUFFIX}")
                 text = json.dumps(report, allow_nan=False)  # no NaN/Infinity may reach a stored report
                 _write_atomic(folder / f"v{version:06d}.json", lambda handle: handle.write(text.encode()))
-                _fsync_dir(folder)
                 db.execute(
                     "INSERT INTO versions (name, version, created_at, k, n_records, data_sha256, bundle_sha256,"
-                    " artifact, report) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                    " fitted_sha256, artifact, report) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                     (name, version, report["created_at"], bundle.k, bundle.report["n_records"],
-                     bundle.report["data_sha256"], bundle_sha, artifact.name, text))
+                     bundle.report["data_sha256"], bundle_sha, fitted_sha, f"{bundle_sha}{SERVING_SUFFIX}", text))
                 db.execute("UPDATE segmentations SET last_version=?, updated_at=?,"
                            " live_version=CASE WHEN ? THEN ? ELSE live_version END WHERE name=?",
                            (version, now, go_live, version, name))
                 self._record_event(db, actor, "fit", name, version, {"live": bool(go_live)}, at=now)
                 self._complete_job(db, job_id, version, now)
+        except JobNotRunning:
+            self._remove_unreferenced({bundle_sha, fitted_sha})     # the job's files go with its version
+            raise
         except OSError as exc:
             raise StoreUnavailable(f"a version of '{name}' could not be written to the store: "
                                    f"{exc.strerror or type(exc).__name__}") from None
-        finally:
-            for staged in (staged_serving, staged_fitted):
-                try:
-                    staged.unlink(missing_ok=True)
-                except OSError:
-                    pass    # a read-only file system answers EROFS even for a missing file; leftovers are
-                            # removed when a store opens (_remove_crash_leftovers)
         return self.version_report(name, version)
 
     def set_live(self, name: str, version: int, *, actor: str = CLI_ACTOR) -> dict[str, Any]:
@@ -440,6 +421,22 @@ class FilesystemStore:
             raise NoLiveVersion(name)
         return int(rows[0]["live_version"])
 
+    def _artifact_path_of(self, name: str, row: Any) -> Path:
+        if row["artifact"] == f"{row['bundle_sha256']}{SERVING_SUFFIX}":     # content-addressed
+            return self.files.path(row["bundle_sha256"], SERVING_SUFFIX)
+        return self.root / "segmentations" / name / row["artifact"]          # a store older than objects
+
+    def artifact_path(self, name: str, version: int) -> Path:
+        """Where a version's serving artifact is (an object; in stores older than objects, the version's file)."""
+        return self._artifact_path_of(name, self._require_version(self._db(), name, version))
+
+    def fitted_path(self, name: str, version: int) -> Path:
+        """Where a version's fitted scikit-learn objects are (``joblib.load`` it; for analysts, trusted)."""
+        row = self._require_version(self._db(), name, version)
+        if row["fitted_sha256"]:
+            return self.files.path(row["fitted_sha256"], FITTED_SUFFIX)
+        return self.root / "segmentations" / name / f"v{version:06d}{FITTED_SUFFIX}"
+
     def load(self, name: str, version: int) -> LoadedVersion:
         """The verified serving artifact of a version, read now (``ServingCache`` keeps what is served). Never
         unpickles anything."""
@@ -447,9 +444,8 @@ class FilesystemStore:
         if not row["artifact"].endswith(SERVING_SUFFIX):
             raise BundleCorrupt(name, version, "is in the legacy pickle format, which the server does not load; "
                                 "run 'segscore upgrade-store' once to convert it")
-        path = self.root / "segmentations" / name / row["artifact"]
         try:
-            data = path.read_bytes()
+            data = self._artifact_path_of(name, row).read_bytes()
         except OSError:
             raise BundleCorrupt(name, version, "is missing or unreadable") from None
         # Hash the very bytes that get parsed: no window in which the file could change in between.
@@ -497,16 +493,14 @@ class FilesystemStore:
                 refused.append((name, version, f"fitted by an earlier release: it lacks {', '.join(missing[:5])}; "
                                                "refit it from its training data"))
                 continue
-            serving = artifacts.dumps(serving_version(bundle))
-            artifact = folder / f"v{version:06d}{SERVING_SUFFIX}"
-            sha = _write_atomic(artifact, lambda handle: handle.write(serving))
+            sha = self.files.put(artifacts.dumps(serving_version(bundle)), SERVING_SUFFIX)
             report = json.loads(row["report"])
             report["bundle_sha256"] = sha
             text = json.dumps(report, allow_nan=False)
             _write_atomic(folder / f"v{version:06d}.json", lambda handle: handle.write(text.encode()))
             with self._writing(f"the upgraded artifact of '{name}' version {version}") as db:
                 db.execute("UPDATE versions SET artifact=?, bundle_sha256=?, report=? WHERE name=? AND version=?",
-                           (artifact.name, sha, text, name, version))
+                           (f"{sha}{SERVING_SUFFIX}", sha, text, name, version))
             converted.append((name, version))
         return converted, refused
 
@@ -668,14 +662,31 @@ class FilesystemStore:
 
     # ----------------------------------------------------------------- deletion (personal data)
     def _version_files(self, name: str, version: int) -> list[Path]:
-        """Every file of one version, whatever the artifact layout (all are named v<number>.*)."""
+        """The files of one version under its segmentation's folder (its report; in stores older than objects,
+        its artifacts too): all are named v<number>.*."""
         return sorted((self.root / "segmentations" / name).glob(f"v{version:06d}.*"))
+
+    def _artifact_shas(self, name: str, version: int | None) -> set[str]:
+        rows = self._query("SELECT bundle_sha256, fitted_sha256 FROM versions WHERE name=?"
+                           + ("" if version is None else " AND version=?"),
+                           (name,) if version is None else (name, version))
+        return {sha for row in rows for sha in (row[0], row[1]) if sha}
+
+    def _remove_unreferenced(self, shas: set[str]) -> None:
+        """Delete the objects of ``shas`` that no version refers to any more (personal data goes with them):
+        the same bytes fitted twice are one object, kept while a version names it."""
+        for sha in shas:
+            if not self._query("SELECT 1 FROM versions WHERE bundle_sha256=? OR fitted_sha256=? LIMIT 1",
+                               (sha, sha)):
+                self.files.remove(sha, SERVING_SUFFIX)
+                self.files.remove(sha, FITTED_SUFFIX)
 
     def delete_version(self, name: str, version: int, *, actor: str = CLI_ACTOR) -> None:
         """Erase one version: its index row, labels, drift reports and files. The live version is refused (409).
 
         The index rows go first (one transaction), then the files; a crash in between leaves unlisted files
         that no request can reach and that a second deletion of the segmentation removes."""
+        shas = self._artifact_shas(name, version)
         with self._writing(f"the deletion of '{name}' version {version}") as db:
             self._require_version(db, name, version)
             live = db.execute("SELECT live_version FROM segmentations WHERE name=?", (name,)).fetchone()[0]
@@ -689,9 +700,11 @@ class FilesystemStore:
             self._record_event(db, actor, "delete_version", name, version, {"drift_reports": reports})
         for path in self._version_files(name, version):
             path.unlink(missing_ok=True)
+        self._remove_unreferenced(shas)
 
     def delete_segmentation(self, name: str, *, actor: str = CLI_ACTOR) -> None:
         """Erase a segmentation: every version, artifact, report, label and drift report. The event stays."""
+        shas = self._artifact_shas(name, None)
         with self._writing(f"the deletion of '{name}'") as db:
             if db.execute("SELECT 1 FROM segmentations WHERE name=?", (name,)).fetchone() is None:
                 raise SegmentationNotFound(name)
@@ -704,6 +717,7 @@ class FilesystemStore:
             self._record_event(db, actor, "delete_segmentation", name, None,
                                {"versions": versions, "drift_reports": reports})
         shutil.rmtree(self.root / "segmentations" / name, ignore_errors=True)
+        self._remove_unreferenced(shas)
 
     def prune_drift_reports(self, older_than: str, *, actor: str = "server") -> int:
         """Delete drift reports created before ``older_than`` (ISO UTC); return how many went."""

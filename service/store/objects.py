@@ -8,9 +8,42 @@ Writes go to a temporary file beside the target, are fsynced and renamed into pl
 from __future__ import annotations
 
 import hashlib
+import os
+import tempfile
 from pathlib import Path
 
-from service.store.filesystem import _write_atomic
+
+def _fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _write_atomic(target: Path, write) -> str:
+    """Write via ``write(file)`` to a temp file beside ``target``, fsync, rename; return its SHA-256."""
+    fd, tmp = tempfile.mkstemp(dir=target.parent, prefix=".tmp-", suffix=target.suffix)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            write(handle)
+            handle.flush()
+            os.fsync(handle.fileno())
+        digest = _sha256_file(Path(tmp))
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    _fsync_dir(target.parent)
+    return digest
+
+
+def _sha256_file(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
 
 
 class ContentAddressedFiles:
@@ -39,3 +72,7 @@ class ContentAddressedFiles:
 
     def remove(self, sha256: str, suffix: str) -> None:
         self.path(sha256, suffix).unlink(missing_ok=True)
+
+    def temporary_files(self) -> list[Path]:
+        """Temporary files of writes that never finished (a killed writer leaves them)."""
+        return list((self.root / "objects").glob("*/.tmp-*"))

@@ -20,7 +20,6 @@ says so); the serving cache keeps answering assigns from memory, and the pool re
 
 from __future__ import annotations
 
-import io
 import json
 import logging
 import threading
@@ -30,16 +29,12 @@ from importlib import resources
 from pathlib import Path
 from typing import Any, Callable, Iterator
 
-import joblib
 import psycopg
 from psycopg_pool import ConnectionPool, PoolTimeout
 
 from service.core.bundle import Bundle
-from service.core.serving import serving_version
-from service.errors import BundleCorrupt, JobNotRunning, StoreUnavailable
-from service.store import artifacts
-from service.store.base import LoadedVersion
-from service.store.filesystem import CLI_ACTOR, FITTED_SUFFIX, SERVING_SUFFIX, FilesystemStore, utc_now
+from service.errors import JobNotRunning, StoreUnavailable
+from service.store.filesystem import CLI_ACTOR, SERVING_SUFFIX, FilesystemStore, utc_now
 from service.store.objects import ContentAddressedFiles
 
 log = logging.getLogger("segscore.store")
@@ -243,14 +238,7 @@ class PostgresStore(FilesystemStore):
 
     def save_version(self, name: str, bundle: Bundle, *, make_live: bool | None,
                      actor: str = CLI_ACTOR, job_id: str | None = None) -> dict[str, Any]:
-        fitted = io.BytesIO()
-        joblib.dump(bundle, fitted, compress=3)
-        try:
-            bundle_sha = self.files.put(artifacts.dumps(serving_version(bundle)), SERVING_SUFFIX)
-            fitted_sha = self.files.put(fitted.getvalue(), FITTED_SUFFIX)
-        except OSError as exc:
-            raise StoreUnavailable(f"a version of '{name}' could not be written to the artifact directory: "
-                                   f"{exc.strerror or type(exc).__name__}") from None
+        bundle_sha, fitted_sha = self._put_artifacts(name, bundle)
         try:
             return self._index_version(name, bundle, make_live=make_live, actor=actor, job_id=job_id,
                                        bundle_sha=bundle_sha, fitted_sha=fitted_sha)
@@ -286,43 +274,10 @@ class PostgresStore(FilesystemStore):
             self._complete_job(db, job_id, version, now)
         return self.version_report(name, version)
 
-    def load(self, name: str, version: int) -> LoadedVersion:
-        row = self._require_version(self._db(), name, version)
-        data = self.files.get(row["bundle_sha256"], SERVING_SUFFIX)
-        if data is None:
-            raise BundleCorrupt(name, version, "is missing, unreadable or altered in the artifact directory")
-        try:
-            serving = artifacts.loads(data)
-        except artifacts.ArtifactError:
-            raise BundleCorrupt(name, version, "cannot be read as a serving artifact") from None
-        return LoadedVersion(name, version, serving.bundle, serving.compiled)
-
+    # load, artifact_path, fitted_path and the deletions (objects no version names any more) are the local
+    # backend's: both keep artifacts as content-addressed objects (service/store/objects.py).
     def _version_files(self, name: str, version: int) -> list[Path]:
-        return []       # files are shared by content; _remove_unreferenced deletes them
-
-    def _artifact_shas(self, name: str, version: int | None) -> set[str]:
-        rows = self._query("SELECT bundle_sha256, fitted_sha256 FROM versions WHERE name=?"
-                           + ("" if version is None else " AND version=?"),
-                           (name,) if version is None else (name, version))
-        return {sha for row in rows for sha in (row[0], row[1])}
-
-    def _remove_unreferenced(self, shas: set[str]) -> None:
-        """Delete the files of ``shas`` that no version refers to any more (personal data goes with them)."""
-        for sha in shas:
-            if not self._query("SELECT 1 FROM versions WHERE bundle_sha256=? OR fitted_sha256=? LIMIT 1",
-                               (sha, sha)):
-                self.files.remove(sha, SERVING_SUFFIX)
-                self.files.remove(sha, FITTED_SUFFIX)
-
-    def delete_version(self, name: str, version: int, *, actor: str = CLI_ACTOR) -> None:
-        shas = self._artifact_shas(name, version)
-        super().delete_version(name, version, actor=actor)
-        self._remove_unreferenced(shas)
-
-    def delete_segmentation(self, name: str, *, actor: str = CLI_ACTOR) -> None:
-        shas = self._artifact_shas(name, None)
-        super().delete_segmentation(name, actor=actor)
-        self._remove_unreferenced(shas)
+        return []       # no per-segmentation folder
 
     def legacy_versions(self) -> list[tuple[str, int]]:
         return []       # the legacy pickle format predates this backend

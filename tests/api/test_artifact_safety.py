@@ -7,7 +7,6 @@ The payload is a real pickle whose only effect is to create a marker file (the c
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import pytest
 
@@ -22,7 +21,8 @@ def two_versions(client, iris):
     for k in (2, 3):
         response = client.post(f"/v1/segmentations/{NAME}/fit", json={"records": records_from(iris), "k": k})
         assert response.status_code == 201, response.text
-    client.post("/v1/segmentations/other/fit", json={"records": records_from(iris), "k": 2})
+    # k = 4: bytes of its own (the same bundle fitted twice is one content-addressed file).
+    client.post("/v1/segmentations/other/fit", json={"records": records_from(iris), "k": 4})
     return client
 
 
@@ -77,7 +77,7 @@ def test_a_planted_pickle_is_never_executed_by_any_route(two_versions, iris, tmp
 def test_a_tampered_or_missing_artifact_fails_that_version_only(two_versions, iris, settings, damage):
     store = two_versions.app.state.store
     store._cache.clear()
-    artifact = Path(settings.store_dir) / "segmentations" / NAME / "v000001.npz"
+    artifact = store.artifact_path(NAME, 1)
     if damage == "delete":
         artifact.unlink()
     else:

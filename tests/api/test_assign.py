@@ -56,7 +56,7 @@ def post_raw(client, name: str, content: bytes | str, content_type: str = "appli
 def bundle_of(client, name: str, version: int = 1):
     """The fitted scikit-learn objects of a version: the analysts' joblib file, which the server never reads
     (the server answers from the pickle-free serving artifact; these tests compare the two)."""
-    return joblib.load(client.app.state.store.root / "segmentations" / name / f"v{version:06d}.joblib")
+    return joblib.load(client.app.state.store.fitted_path(name, version))
 
 
 def columns(results: list[dict]) -> dict[str, np.ndarray]:

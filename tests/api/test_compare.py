@@ -84,9 +84,8 @@ def test_table_and_ari_match_scikit_learn_on_the_stored_objects(client, wine):
     body = _compare(client, 1, 2).json()
 
     # The server serves a pickle-free artifact; the fitted scikit-learn objects are the analysts' copy the
-    # store writes beside it (models_store/README.md: segmentations/<name>/v00000N.joblib).
-    folder = client.app.state.store.root / "segmentations" / NAME
-    older, newer = (joblib.load(folder / f"v{version:06d}.joblib") for version in (1, 2))
+    # store keeps beside it (FilesystemStore.fitted_path).
+    older, newer = (joblib.load(client.app.state.store.fitted_path(NAME, version)) for version in (1, 2))
     sample = newer.reference.sample
     assert np.isnan(sample).any()
 

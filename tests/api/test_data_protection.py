@@ -39,6 +39,17 @@ def _files(client, version: int | None = None) -> list[str]:
     return sorted(p.name for p in folder.glob(pattern)) if folder.exists() else []
 
 
+def _version_paths(client, version: int) -> list:
+    """A version's report file and its two artifact objects (serving, analysts')."""
+    store = client.app.state.store
+    report = client.app.state.settings.store_dir / "segmentations" / NAME / f"v{version:06d}.json"
+    return [report, store.artifact_path(NAME, version), store.fitted_path(NAME, version)]
+
+
+def _objects(client) -> list[str]:
+    return sorted(p.name for p in (client.app.state.settings.store_dir / "objects").rglob("*") if p.is_file())
+
+
 # --------------------------------------------------------------------------- events
 def test_events_newest_first_and_created_by(two_versions):
     client = two_versions
@@ -71,15 +82,18 @@ def test_a_cli_fit_is_recorded_as_cli(tmp_path, iris):
 # --------------------------------------------------------------------------- deleting a version
 def test_delete_a_version_erases_it_and_what_hangs_on_it(two_versions):
     client = two_versions
-    assert _files(client, 2)                                     # artifact and report exist
+    second, first = _version_paths(client, 2), _version_paths(client, 1)
+    assert all(path.exists() for path in second + first)         # artifacts and report exist
+    # The two fits had the same input and seed: one pair of content-addressed objects serves both versions.
+    assert second[1:] == first[1:]
     # Loads v2 into the server's cache (the empty record itself is refused: too many missing values).
     assert client.post(f"{BASE}/assign?version=2", json={"records": [{}]}).status_code == 422
     response = client.delete(f"{BASE}/versions/2")
     assert response.status_code == 204 and response.content == b""
     assert client.get(f"{BASE}/versions/2").status_code == 404
     assert client.post(f"{BASE}/assign?version=2", json={"records": [{}]}).status_code == 404
-    assert _files(client, 2) == []
-    assert _files(client, 1)                                     # the other version is untouched
+    assert _files(client, 2) == [] and not second[0].exists()
+    assert all(path.exists() for path in first)                  # the other version's files (shared objects too)
     assert [row[1] for row in _rows(client, "labels")] == [1]
     assert {row[3] for row in _rows(client, "drift_reports")} == {1}
     detail = client.get(BASE).json()
@@ -102,7 +116,7 @@ def test_deleting_the_live_version_is_409_and_changes_nothing(two_versions):
     assert response.status_code == 409
     assert "live" in response.json()["detail"]
     assert client.get(BASE).json() == before
-    assert _files(client, 1)
+    assert all(path.exists() for path in _version_paths(client, 1))
 
 
 @pytest.mark.parametrize("path, status", [(f"{BASE}/versions/9", 404), ("/v1/segmentations/nope/versions/1", 404),
@@ -117,7 +131,7 @@ def test_delete_a_segmentation_erases_everything_but_the_event(two_versions, iri
     assert client.delete(BASE).status_code == 204
     assert client.get(BASE).status_code == 404
     assert client.get("/v1/segmentations").json() == {"segmentations": []}
-    assert _files(client) == []
+    assert _files(client) == [] and _objects(client) == []
     assert not (client.app.state.settings.store_dir / "segmentations" / NAME).exists()
     for table in ("segmentations", "versions", "labels", "drift_reports"):
         assert _rows(client, table) == [], table

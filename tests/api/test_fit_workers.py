@@ -62,7 +62,9 @@ def test_a_fit_past_its_time_limit_is_stopped_and_writes_nothing(tmp_path, iris)
         assert running_fit_workers() == []
         assert seen and not pid_alive(seen[0])           # the worker was stopped, not left running
         folder = tmp_path / "store" / "segmentations" / NAME
-        assert sorted(p.name for p in folder.iterdir()) == ["v000001.joblib", "v000001.json", "v000001.npz"]
+        assert sorted(p.name for p in folder.iterdir()) == ["v000001.json"]
+        objects = sorted(p.suffix for p in (tmp_path / "store" / "objects").rglob("*") if p.is_file())
+        assert objects == [".joblib", ".npz"]             # version 1's two objects, nothing of the stopped fit
 
 
 def test_a_killed_worker_fails_that_fit_with_503_and_the_store_stays_consistent(tmp_path, iris):

@@ -13,7 +13,7 @@ import subprocess
 import pytest
 from fastapi.testclient import TestClient
 
-import service.store.filesystem as filesystem
+import service.store.objects as objects
 from service.app import create_app
 from service.settings import Settings
 from tests.conftest import records_from
@@ -60,5 +60,5 @@ def test_a_file_system_that_refuses_writes(client, iris, monkeypatch):
     def read_only(*args, **kwargs):
         raise OSError(errno.EROFS, "Read-only file system")
 
-    monkeypatch.setattr(filesystem.tempfile, "mkstemp", read_only)
+    monkeypatch.setattr(objects.tempfile, "mkstemp", read_only)
     check_fit_refused_and_reads_work(client, iris)

@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import re
 import threading
-from pathlib import Path
 
 import pytest
 from fastapi.testclient import TestClient
@@ -187,20 +186,23 @@ def test_readyz_ready_with_loadable_live_bundles(fitted):
 
 
 def test_readyz_503_when_a_live_artifact_is_corrupted(fitted, settings):
-    artifact = Path(settings.store_dir) / "segmentations" / NAME / "v000001.npz"
+    artifact = fitted.app.state.store.artifact_path(NAME, 1)
     data = bytearray(artifact.read_bytes())
     data[len(data) // 2] ^= 0xFF
     artifact.write_bytes(bytes(data))
-    response = fitted.get("/readyz")
-    assert response.status_code == 503
-    problems = response.json()["detail"]
-    assert problems[0]["segmentation"] == NAME and problems[0]["version"] == 1
-    assert "SHA-256" in problems[0]["message"]
-    # Only that version: making version 2 live makes the service ready again.
-    fitted.put(f"/v1/segmentations/{NAME}/live", json={"version": 2})
-    assert fitted.get("/readyz").status_code == 200
-    # The report (index data) of the corrupted version is still readable.
-    assert fitted.get(f"/v1/segmentations/{NAME}/versions/1").status_code == 200
+    # The running server holds the copy it verified when it loaded it; a server started now (a restart, or
+    # another worker) must read the file and finds it corrupted.
+    with TestClient(create_app(settings)) as restarted:
+        response = restarted.get("/readyz")
+        assert response.status_code == 503
+        problems = response.json()["detail"]
+        assert problems[0]["segmentation"] == NAME and problems[0]["version"] == 1
+        assert "SHA-256" in problems[0]["message"]
+        # Only that version: making version 2 live makes the service ready again.
+        restarted.put(f"/v1/segmentations/{NAME}/live", json={"version": 2})
+        assert restarted.get("/readyz").status_code == 200
+        # The report (index data) of the corrupted version is still readable.
+        assert restarted.get(f"/v1/segmentations/{NAME}/versions/1").status_code == 200
 
 
 def test_metrics_text_exposition(fitted):

@@ -26,6 +26,7 @@ from pathlib import Path
 import joblib
 
 import service.store.filesystem as filesystem
+import service.store.objects as objects
 
 
 def _hold(signal_file: str) -> None:
@@ -53,29 +54,25 @@ class _HoldingConnection:
 def crash(store_dir: str, bundle_path: str, point: str, signal_file: str) -> None:
     bundle = joblib.load(bundle_path)
     store = filesystem.FilesystemStore(store_dir)
-    if point == "dump":
-        def dump(value, handle, **kwargs):
-            handle.write(b"the first bytes of a bundle that never finishes")
-            handle.flush()
-            os.fsync(handle.fileno())
+    if point == "object-fsync":
+        # The serving artifact's temporary file is written and being fsynced (objects._write_atomic).
+        def fsync(fd):
             _hold(signal_file)
 
-        filesystem.joblib.dump = dump
+        objects.os.fsync = fsync
     elif point in ("artifact-renamed", "report-renamed"):
-        # os.replace calls in save_version: 1 temp -> staged serving artifact, 2 temp -> staged analysts' file,
-        # 3 staged -> vN.npz and 4 staged -> vN.joblib (inside the index transaction), 5 temp -> vN.json.
+        # os.replace calls in save_version: 1 temp -> the serving artifact's object, 2 temp -> the analysts'
+        # object (both before the index transaction), 3 temp -> vN.json (inside it).
         real_replace = os.replace
         calls = [0]
 
         def replace(src, dst):
             calls[0] += 1
-            if point == "artifact-renamed" and calls[0] == 5:
-                _hold(signal_file)
             real_replace(src, dst)
-            if point == "report-renamed" and calls[0] == 5:
+            if (point, calls[0]) in (("artifact-renamed", 2), ("report-renamed", 3)):
                 _hold(signal_file)
 
-        filesystem.os.replace = replace
+        objects.os.replace = replace
     elif point == "commit":
         real_db = store._db
         store._db = lambda: _HoldingConnection(real_db(), signal_file)

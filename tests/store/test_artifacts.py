@@ -221,11 +221,13 @@ def test_a_manifest_cannot_name_a_class_outside_the_registry():
 def plant(store: FilesystemStore, name: str, version: int, data: bytes) -> None:
     """Replace a version's serving artifact and update its SHA-256 in the index (what an intruder with
     write access to the store directory can do)."""
-    path = store.root / "segmentations" / name / f"v{version:06d}.npz"
+    sha = hashlib.sha256(data).hexdigest()
+    path = store.files.path(sha, ".npz")
+    path.parent.mkdir(parents=True, exist_ok=True)
     path.write_bytes(data)
     with sqlite3.connect(store.root / "index.sqlite3") as db:
-        db.execute("UPDATE versions SET bundle_sha256=? WHERE name=? AND version=?",
-                   (hashlib.sha256(data).hexdigest(), name, version))
+        db.execute("UPDATE versions SET bundle_sha256=?, artifact=? WHERE name=? AND version=?",
+                   (sha, f"{sha}.npz", name, version))
 
 
 def test_a_planted_pickle_with_a_matching_sha256_is_refused_by_the_store(tmp_path, iris):
@@ -246,19 +248,20 @@ def test_a_planted_pickle_with_a_matching_sha256_is_refused_by_the_store(tmp_pat
 def make_legacy_version(store: FilesystemStore, name: str, bundle: Bundle) -> int:
     """Save ``bundle``, then put the version in the layout the store used before serving artifacts: the index
     row names ``vN.joblib`` (``joblib.dump(bundle, compress=3)``, as the old ``save_version`` wrote it) and
-    records its SHA-256 (also in the stored report), and there is no ``.npz``."""
+    records its SHA-256 (also in the stored report), and there is no ``.npz`` (nor any object)."""
     version = store.save_version(name, bundle, make_live=None)["version"]
+    store.artifact_path(name, version).unlink()
+    store.fitted_path(name, version).unlink()
     folder = store.root / "segmentations" / name
     legacy = folder / f"v{version:06d}.joblib"
     joblib.dump(bundle, legacy, compress=3)
-    (folder / f"v{version:06d}.npz").unlink()
     sha = hashlib.sha256(legacy.read_bytes()).hexdigest()
     with sqlite3.connect(store.root / "index.sqlite3") as db:
         report = json.loads(db.execute("SELECT report FROM versions WHERE name=? AND version=?",
                                        (name, version)).fetchone()[0])
         report["bundle_sha256"] = sha
-        db.execute("UPDATE versions SET artifact=?, bundle_sha256=?, report=? WHERE name=? AND version=?",
-                   (legacy.name, sha, json.dumps(report), name, version))
+        db.execute("UPDATE versions SET artifact=?, bundle_sha256=?, fitted_sha256=NULL, report=?"
+                   " WHERE name=? AND version=?", (legacy.name, sha, json.dumps(report), name, version))
     return version
 
 
@@ -282,14 +285,15 @@ def test_a_legacy_store_is_named_until_upgraded_then_serves_the_same_results(tmp
     upgraded = FilesystemStore(root)
     assert upgraded.legacy_versions() == []
     loaded = upgraded.load("old", 1)
-    assert_same(serving_version(bundle), artifacts.loads(
-        (root / "segmentations" / "old" / "v000001.npz").read_bytes()))
+    converted = upgraded.artifact_path("old", 1)
+    assert converted.parent.parent == root / "objects"            # written as an object, as new versions are
+    assert_same(serving_version(bundle), artifacts.loads(converted.read_bytes()))
     assert loaded.bundle.report == bundle.report
     # The report's bundle_sha256 names the new artifact; the old file stays as the analysts' copy.
     report = upgraded.version_report("old", 1)
-    assert report["bundle_sha256"] == hashlib.sha256((root / "segmentations" / "old" / "v000001.npz")
-                                                     .read_bytes()).hexdigest()
-    assert (root / "segmentations" / "old" / "v000001.joblib").exists()
+    assert report["bundle_sha256"] == hashlib.sha256(converted.read_bytes()).hexdigest()
+    assert upgraded.fitted_path("old", 1) == root / "segmentations" / "old" / "v000001.joblib"
+    assert upgraded.fitted_path("old", 1).exists()
     # A second run has nothing left to do.
     assert "0 version(s) converted" in CliRunner().invoke(cli, ["upgrade-store", "--store", str(root)]).output
 
@@ -329,3 +333,48 @@ def test_upgrade_names_a_version_fitted_before_held_out_calibration_and_leaves_i
     with pytest.raises(BundleCorrupt, match="'old' version 1 is in the legacy pickle format"):
         store.load("old", 1)
     assert store.load("fresh", 1).bundle.k == 2
+
+
+# --------------------------------------------------------------------------- stores older than objects
+def make_pre_objects_store(root, name: str, bundles) -> None:
+    """A store in the layout used before content-addressed objects: each version's ``vN.npz`` and ``vN.joblib``
+    under ``segmentations/<name>/``, the index row naming ``vN.npz``, and no ``fitted_sha256`` column."""
+    store = FilesystemStore(root)
+    folder = root / "segmentations" / name
+    for bundle in bundles:
+        version = store.save_version(name, bundle, make_live=None)["version"]
+        store.artifact_path(name, version).rename(folder / f"v{version:06d}.npz")
+        store.fitted_path(name, version).rename(folder / f"v{version:06d}.joblib")
+        with sqlite3.connect(root / "index.sqlite3") as db:
+            db.execute("UPDATE versions SET artifact=? WHERE name=? AND version=?",
+                       (f"v{version:06d}.npz", name, version))
+    with sqlite3.connect(root / "index.sqlite3") as db:
+        db.execute("ALTER TABLE versions DROP COLUMN fitted_sha256")
+    assert not [p for p in (root / "objects").rglob("*") if p.is_file()]
+
+
+def test_a_store_older_than_objects_is_read_in_place_and_grows_objects(tmp_path, iris):
+    bundles = [fit_bundle(iris.data, FitConfig(features=list(iris.feature_names), k_min=k, k_max=k, k_fixed=True))
+               for k in (2, 3)]
+    root = tmp_path / "store"
+    make_pre_objects_store(root, "old", bundles)
+
+    store = FilesystemStore(root)            # adds the missing column; converts nothing
+    folder = root / "segmentations" / "old"
+    assert store.artifact_path("old", 1) == folder / "v000001.npz"
+    assert store.fitted_path("old", 2) == folder / "v000002.joblib"
+    assert store.load("old", 1).bundle.k == 2 and store.load("old", 2).bundle.k == 3
+    # A tampered old file is still refused (its SHA-256 in the index).
+    data = bytearray((folder / "v000001.npz").read_bytes())
+    data[len(data) // 2] ^= 0x01
+    (folder / "v000001.npz").write_bytes(bytes(data))
+    with pytest.raises(BundleCorrupt):
+        store.load("old", 1)
+
+    # New versions go to objects; deleting an old version removes its files in place.
+    report = store.save_version("old", bundles[0], make_live=None)
+    assert store.artifact_path("old", 3).parent.parent == root / "objects"
+    assert report["bundle_sha256"] == hashlib.sha256(store.artifact_path("old", 3).read_bytes()).hexdigest()
+    store.delete_version("old", 2)
+    assert sorted(p.name for p in folder.iterdir()) == ["v000001.joblib", "v000001.json", "v000001.npz",
+                                                        "v000003.json"]

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import threading
 
+import anyio
 import numpy as np
 import pytest
 
@@ -20,6 +21,7 @@ from service.errors import (
     NoLiveVersion,
     SegmentationNotFound,
     SegmentNotFound,
+    StoreUnavailable,
     VersionNotFound,
 )
 from service.store import open_store
@@ -212,3 +214,31 @@ def _sha(path):
     import hashlib
 
     return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def test_warm_holds_a_version_made_live_elsewhere_so_it_is_served_without_the_index(store, replica, bundles):
+    store.save_version("shop", bundles[0], make_live=None)
+    store.set_label("shop", 1, 0, "first")
+    replica.refresh()
+    assert replica.loaded_count() == 0
+    assert replica.warm() == [] and replica.loaded_count() == 1
+
+    def unavailable(*args, **kwargs):
+        raise StoreUnavailable("the store database is unavailable (test)")
+    for read in ("load", "labels", "resolve_version"):
+        setattr(replica.backend, read, unavailable)
+    # Served from memory alone: the bundle and its labels.
+    loaded, labels = anyio.run(replica.serving, "shop", None)
+    assert loaded.version == 1 and labels == {0: "first"}
+    assert replica.warm() == []             # nothing left to load: no index read
+
+
+def test_warm_reports_a_broken_live_version_once_until_the_index_changes(store, bundles, tmp_path):
+    report = store.save_version("shop", bundles[0], make_live=None)
+    [artifact] = [p for p in tmp_path.rglob("*.npz") if _sha(p) == report["bundle_sha256"]]
+    artifact.write_bytes(b"not an archive")
+    problems = store.warm()
+    assert [(p["segmentation"], p["version"]) for p in problems] == [("shop", 1)]
+    assert store.warm() == []               # not retried every second
+    store.save_version("shop", bundles[1], make_live=True)
+    assert store.warm() == [] and store.loaded_count() == 1

@@ -40,7 +40,11 @@ def bundle_file(tmp_path_factory, bundles):
 
 def artifact_path(store: FilesystemStore, name: str, version: int) -> Path:
     """The serving artifact (the file whose SHA-256 the index records)."""
-    return store.root / "segmentations" / name / f"v{version:06d}.npz"
+    return store.artifact_path(name, version)
+
+
+def object_files(root: Path) -> list[str]:
+    return sorted(p.name for p in (root / "objects").rglob("*") if p.is_file())
 
 
 def sha256_of(path: Path) -> str:
@@ -68,7 +72,11 @@ def test_a_save_leaves_only_numbered_files(store, bundles):
     store.save_version("shop", bundles[0], make_live=None)
     store.save_version("shop", bundles[1], make_live=None)
     names = sorted(p.name for p in (store.root / "segmentations" / "shop").iterdir())
-    assert names == ["v000001.joblib", "v000001.json", "v000001.npz", "v000002.joblib", "v000002.json", "v000002.npz"]
+    assert names == ["v000001.json", "v000002.json"]
+    # Artifacts are objects named by their SHA-256 (reference: hashlib of the bytes), two per version.
+    expected = sorted(f"{sha256_of(store.artifact_path('shop', v))}.npz" for v in (1, 2)) + \
+        sorted(f"{sha256_of(store.fitted_path('shop', v))}.joblib" for v in (1, 2))
+    assert object_files(store.root) == sorted(expected)
 
 
 def test_versions_count_up_per_segmentation(store, bundles):
@@ -100,7 +108,8 @@ def test_tampered_artifact_is_a_clear_error_for_that_version_only(tmp_path, bund
     assert "'shop' version 1" in str(caught.value.detail) and "SHA-256" in str(caught.value.detail)
     # Other versions still load; the tampered version's report (index data) is still readable.
     assert fresh.load("shop", 2).bundle.k == 3
-    assert fresh.load("other", 1).bundle.k == 2
+    # 'other' was fitted from the same bytes: one content-addressed file, so the damage is shared.
+    assert fresh.artifact_path("other", 1) == fresh.artifact_path("shop", 1)
     assert fresh.version_report("shop", 1)["version"] == 1
     # The error does not stick: each attempt re-verifies (still corrupt, still the same error).
     with pytest.raises(BundleCorrupt):
@@ -160,8 +169,8 @@ def test_an_exception_during_save_leaves_no_version_and_no_files(store, bundles,
     monkeypatch.undo()
     assert [v["version"] for v in store.get_segmentation("shop")["versions"]] == [1]
     assert store.get_segmentation("shop")["live_version"] == 1
-    assert sorted(p.name for p in (store.root / "segmentations" / "shop").iterdir()) == [
-        "v000001.joblib", "v000001.json", "v000001.npz"]
+    assert sorted(p.name for p in (store.root / "segmentations" / "shop").iterdir()) == ["v000001.json"]
+    assert len(object_files(store.root)) == 2             # version 1's two objects only
     assert store.save_version("shop", bundles[1], make_live=None)["version"] == 2
 
 
@@ -229,7 +238,7 @@ def _wait_for(path: Path, process: subprocess.Popen, timeout: float = CHILD_TIME
         time.sleep(0.02)
 
 
-@pytest.mark.parametrize("point", ["dump", "artifact-renamed", "report-renamed", "commit"])
+@pytest.mark.parametrize("point", ["object-fsync", "artifact-renamed", "report-renamed", "commit"])
 def test_a_save_killed_mid_write_leaves_the_store_readable(tmp_path, bundles, bundle_file, point):
     root = tmp_path / "store"
     store = FilesystemStore(root)
@@ -248,10 +257,13 @@ def test_a_save_killed_mid_write_leaves_the_store_readable(tmp_path, bundles, bu
     assert child.returncode == -signal.SIGKILL
     # The crash really happened where intended: it left files behind that no index row points to.
     leftovers = {p.name for p in (root / "segmentations" / "crash").iterdir()}
-    if point == "dump":
-        assert any(name.startswith(".tmp-") for name in leftovers), leftovers
+    objects = object_files(root)
+    if point == "object-fsync":
+        assert any(name.startswith(".tmp-") for name in objects), objects
+    elif point == "artifact-renamed":
+        assert len(objects) == 4, objects             # version 1's two objects and the new two, named by nothing
     else:
-        assert "v000002.npz" in leftovers, leftovers
+        assert "v000002.json" in leftovers, leftovers
 
     # Readable by a new instance (as after a restart): no partial version is listed.
     after = FilesystemStore(root)
@@ -327,11 +339,27 @@ def test_opening_a_store_removes_old_crash_leftovers_only(tmp_path):
     folder = root / "segmentations" / "shop"
     folder.mkdir(parents=True)
     old_tmp, old_staged, fresh = folder / ".tmp-a.joblib", folder / ".staged-b.joblib", folder / ".tmp-c.json"
-    for path in (old_tmp, old_staged, fresh):
+    (root / "objects" / "ab").mkdir(parents=True)
+    old_object, fresh_object = root / "objects" / "ab" / ".tmp-d.npz", root / "objects" / "ab" / ".tmp-e.npz"
+    for path in (old_tmp, old_staged, fresh, old_object, fresh_object):
         path.write_bytes(b"partial")
     two_hours_ago = time.time() - 7200
-    for path in (old_tmp, old_staged):
+    for path in (old_tmp, old_staged, old_object):
         os.utime(path, (two_hours_ago, two_hours_ago))
     FilesystemStore(root)
-    assert not old_tmp.exists() and not old_staged.exists()
-    assert fresh.exists()
+    assert not old_tmp.exists() and not old_staged.exists() and not old_object.exists()
+    assert fresh.exists() and fresh_object.exists()
+
+
+def test_shared_objects_are_deleted_with_the_last_version_that_names_them(store, bundles):
+    store.save_version("a", bundles[0], make_live=None)
+    store.save_version("a", bundles[1], make_live=None)
+    store.save_version("b", bundles[0], make_live=None)         # the same bytes as a/1: the same objects
+    shared, own = store.artifact_path("a", 1), store.artifact_path("a", 2)
+    assert store.artifact_path("b", 1) == shared and len(object_files(store.root)) == 4
+    store.delete_version("a", 2)
+    assert not own.exists() and shared.exists()
+    store.delete_segmentation("a")
+    assert shared.exists() and store.load("b", 1).bundle.k == 2  # b still names them
+    store.delete_segmentation("b")
+    assert object_files(store.root) == []
