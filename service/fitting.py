@@ -26,7 +26,8 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from service.core.bundle import Bundle, FitConfig
-from service.core.fit import fit_bundle
+from service.engines import run_engine
+from service.engines.source import MatrixFile
 from service.errors import FitTimeLimit, FitWorkerDied, ServiceError
 
 log = logging.getLogger("segscore")
@@ -46,10 +47,11 @@ def running_fit_workers() -> list[int]:
         return sorted(_running)
 
 
-def _work(connection, values: np.ndarray, config: FitConfig, max_agglomerative_rows: int) -> None:
+def _work(connection, values: np.ndarray | MatrixFile, config: FitConfig, max_agglomerative_rows: int,
+          engine: str = "memory") -> None:
     try:
         with threadpool_limits(limits=FIT_WORKER_THREADS):
-            bundle = fit_bundle(values, config, max_agglomerative_rows=max_agglomerative_rows)
+            bundle = run_engine(engine, values, config, max_agglomerative_rows=max_agglomerative_rows)
         message: tuple[Any, ...] = ("fitted", bundle)
     except ServiceError as exc:
         message = ("refused", type(exc), exc.detail, dict(exc.__dict__))
@@ -67,11 +69,12 @@ def _rebuild(cls: type[ServiceError], detail: Any, state: dict[str, Any]) -> Ser
     return error
 
 
-def fit_in_worker(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int,
-                  time_limit: float) -> Bundle:
-    """``fit_bundle`` in a worker process, stopped after ``time_limit`` seconds. Blocks: call from a thread."""
+def fit_in_worker(values: np.ndarray | MatrixFile, config: FitConfig, *, max_agglomerative_rows: int,
+                  time_limit: float, engine: str = "memory") -> Bundle:
+    """The ``engine``'s fit (service.engines) in a worker process, stopped after ``time_limit`` seconds. Blocks:
+    call from a thread. ``values``: the matrix, or a ``MatrixFile`` (big inputs: the worker reads the file)."""
     receiver, sender = _CONTEXT.Pipe(duplex=False)
-    worker = _CONTEXT.Process(target=_work, args=(sender, values, config, max_agglomerative_rows),
+    worker = _CONTEXT.Process(target=_work, args=(sender, values, config, max_agglomerative_rows, engine),
                               name="segscore-fit", daemon=True)
     worker.start()
     sender.close()              # the worker holds the only sending end: its death reads as end of file

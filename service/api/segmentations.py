@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import time
 from typing import Annotated, Any
 
@@ -11,7 +12,6 @@ from fastapi.responses import JSONResponse, Response
 
 from schemas import FitReport, FitRequest, LabelUpdate, LiveUpdate, Segment, SegmentationDetail, SegmentationList
 from service.api.payload import (
-    body_kind,
     check_name,
     large_body_slot,
     read_body,
@@ -26,8 +26,11 @@ from service.api.validation import (
 )
 from service.deps import ActorDep, AdminScope, FitScope, ReadScope, SettingsDep, StoreDep
 from service.errors import InvalidInput, RecordProblem
+from service.api.upload import PARQUET_TYPES, fit_body_kind, spool_upload, upload_directory
+from service.engines import resolve_engine
 from service.fitting import fit_in_worker
 from service.inputs.fit_input import QUERY_PARAMETERS, prepare_fit
+from service.inputs.streamed import prepare_streamed_fit
 
 router = APIRouter(prefix="/segmentations", tags=["segmentations"])
 
@@ -48,9 +51,17 @@ def _csv_query_parameters_openapi() -> list[dict[str, Any]]:
     return parameters
 
 
-FIT_BODY = {**request_body_openapi(FitRequest, "header row, then one row per record; parameters in the query "
-                                   "string (features=a,b&k=2-10&components=none)"),
-            "parameters": _csv_query_parameters_openapi()}
+def _fit_body_openapi() -> dict[str, Any]:
+    body = request_body_openapi(FitRequest, "header row, then one row per record (gzip-compressed with "
+                                "'Content-Encoding: gzip' or as a .gz file); parameters in the query string "
+                                "(features=a,b&k=2-10&components=none&engine=auto)")
+    body["requestBody"]["content"][PARQUET_TYPES[0]] = {
+        "schema": {"type": "string", "format": "binary",
+                   "description": "a Parquet file, one row per record; parameters in the query string as for CSV"}}
+    return {**body, "parameters": _csv_query_parameters_openapi()}
+
+
+FIT_BODY = _fit_body_openapi()
 
 
 @router.post("/{name}/fit", status_code=201, response_model=FitReport, openapi_extra=FIT_BODY,
@@ -58,26 +69,36 @@ FIT_BODY = {**request_body_openapi(FitRequest, "header row, then one row per rec
              responses=error_responses(400, 401, 403, 413, 415, 422, 500, 503))
 async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep, actor: ActorDep) -> JSONResponse:
     check_name(name)
-    csv = body_kind(request) == "csv"
-    if not csv and request.query_params:
+    kind = fit_body_kind(request)
+    if kind == "json" and request.query_params:
         # A JSON body carries its parameters; a ?k=3 beside it would otherwise be ignored without a word.
         raise InvalidInput([RecordProblem(None, printable(key), "a JSON fit takes its parameters in the body; "
                                           "query parameters are for text/csv bodies")
                             for key in dict.fromkeys(request.query_params.keys())])
-    async with large_body_slot(request, settings):
-        body = await read_body(request, settings.max_body_bytes)
-        # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
-        values, config, make_live = await anyio.to_thread.run_sync(
-            prepare_fit, body, csv, request.query_params, settings)
+    with upload_directory(settings.upload_dir) as work_dir:
+        async with large_body_slot(request, settings):
+            if kind == "json":
+                body = await read_body(request, settings.max_body_bytes)
+                # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
+                values, config, make_live = await anyio.to_thread.run_sync(
+                    prepare_fit, body, False, request.query_params, settings)
+                del body
+            else:
+                # Big inputs: CSV (maybe gzip) and Parquet arrive into a file and are read in blocks.
+                upload = await spool_upload(request, settings.max_body_bytes, work_dir)
+                values, config, make_live = await anyio.to_thread.run_sync(functools.partial(
+                    prepare_streamed_fit, upload, kind, request.query_params, settings, work_dir=work_dir))
+                upload.unlink()
+        engine = resolve_engine(config.engine, values.shape[0], out_of_core_rows=settings.out_of_core_rows)
 
-    def fit_and_save() -> dict[str, Any]:
-        # The fit runs in a worker process (service.fitting); the store is written here, by the server.
-        bundle = fit_in_worker(values, config, max_agglomerative_rows=settings.max_agglomerative_rows,
-                               time_limit=settings.fit_time_limit_seconds)
-        return store.save_version(name, bundle, make_live=make_live, actor=actor)
+        def fit_and_save() -> dict[str, Any]:
+            # The fit runs in a worker process (service.fitting); the store is written here, by the server.
+            bundle = fit_in_worker(values, config, max_agglomerative_rows=settings.max_agglomerative_rows,
+                                   time_limit=settings.fit_time_limit_seconds, engine=engine)
+            return store.save_version(name, bundle, make_live=make_live, actor=actor)
 
-    started = time.perf_counter()
-    report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
+        started = time.perf_counter()
+        report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
     request.app.state.metrics.fit_seconds.observe(time.perf_counter() - started)
     request.app.state.metrics.fits.inc()
     return JSONResponse(report, status_code=201)
