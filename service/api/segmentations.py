@@ -89,7 +89,9 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
                 values, config, make_live = await anyio.to_thread.run_sync(functools.partial(
                     prepare_streamed_fit, upload, kind, request.query_params, settings, work_dir=work_dir))
                 upload.unlink()
-        engine = resolve_engine(config.engine, values.shape[0], out_of_core_rows=settings.out_of_core_rows)
+        # auto: out of core above out_of_core_rows, and above the memory engine's own limit (max_fit_rows).
+        engine = resolve_engine(config.engine, values.shape[0],
+                                out_of_core_rows=min(settings.out_of_core_rows, settings.max_fit_rows))
 
         def fit_and_save() -> dict[str, Any]:
             # The fit runs in a worker process (service.fitting); the store is written here, by the server.

@@ -298,6 +298,9 @@ def _csv_header(body: bytes) -> list[str]:
             if delimiter in names[0]:
                 raise InvalidInput(f"line 1: the header has one column and contains {shown}; the CSV must be "
                                    "comma-separated (export with ',' as the delimiter)", field="body")
+    if names and all(_is_number(name) for name in names):
+        raise InvalidInput("line 1: every header name is a number: the CSV has no header row? The first line must "
+                           "name the columns", field="body")
     problems = []
     for position, name in enumerate(names, start=1):
         if not name:
@@ -311,6 +314,14 @@ def _csv_header(body: bytes) -> list[str]:
     if problems:
         raise InvalidInput(problems)
     return names
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
 
 
 def _check_field_counts(body: bytes, n_fields: int, max_rows: int | None, line_offset: int = 0) -> None:
