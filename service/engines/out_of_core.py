@@ -32,7 +32,7 @@ import numpy as np
 from sklearn.cluster import MiniBatchKMeans
 from sklearn.decomposition import IncrementalPCA
 from sklearn.impute import SimpleImputer
-from sklearn.preprocessing import MinMaxScaler, RobustScaler, StandardScaler
+from sklearn.preprocessing import RobustScaler
 
 from service.core.bundle import Bundle, FitConfig, ReferenceProfile
 from service.core.calibration import (

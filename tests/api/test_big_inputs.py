@@ -10,7 +10,6 @@ from __future__ import annotations
 import gzip
 import io
 
-import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
