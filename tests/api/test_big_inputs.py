@@ -95,6 +95,8 @@ def test_out_of_core_engine_runs_on_request_and_makes_an_ordinary_version(client
     assert _segment_sizes(report) == _segment_sizes(reference)
     stored = client.get(f"/v1/segmentations/{NAME}/versions/{report['version']}").json()
     assert stored["engine"] == "out_of_core"
+    summary = client.get(f"/v1/segmentations/{NAME}").json()["versions"]
+    assert [row["engine"] for row in summary] == ["out_of_core"]
     # An ordinary version: assign and drift answer as for any other.
     records = records_from(iris.data[:60], feature_names=["a", "b", "c", "d"])
     assigned = client.post(f"/v1/segmentations/{NAME}/assign", json={"records": records})
