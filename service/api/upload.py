@@ -17,27 +17,23 @@ from typing import Iterator, Literal
 
 from fastapi import Request
 
-from service.api.payload import CSV_TYPES, body_kind
+from service.api.payload import body_kind
 from service.errors import InvalidInput, PayloadTooLarge, UnsupportedMediaType
 
 PARQUET_TYPES = ("application/vnd.apache.parquet", "application/x-parquet")
-FitBodyKind = Literal["json", "csv", "parquet"]
+FitBodyKind = Literal["json", "csv", "csv-gzip", "parquet"]
 
 
 def fit_body_kind(request: Request) -> FitBodyKind:
-    """'json', 'csv' (maybe gzip-compressed) or 'parquet' from the headers; anything else is a 415."""
+    """'json', 'csv', 'csv-gzip' (Content-Encoding: gzip; a .gz file sent as text/csv is recognised later, by its
+    first bytes) or 'parquet' from the headers; anything else is a 415."""
     media_type = request.headers.get("content-type", "").split(";")[0].strip().lower()
     encoding = request.headers.get("content-encoding", "identity").strip().lower()
-    kind: FitBodyKind = "parquet" if media_type in PARQUET_TYPES else body_kind(request)
+    kind = "parquet" if media_type in PARQUET_TYPES else body_kind(request)
     if encoding not in ("identity", "gzip") or (encoding == "gzip" and kind != "csv"):
         raise UnsupportedMediaType(f"{media_type} with Content-Encoding {encoding}; only text/csv may be "
                                    "gzip-compressed")
-    return kind
-
-
-def is_streamed(request: Request) -> bool:
-    media_type = request.headers.get("content-type", "").split(";")[0].strip().lower()
-    return media_type in CSV_TYPES or media_type in PARQUET_TYPES
+    return "csv-gzip" if encoding == "gzip" else kind
 
 
 @contextmanager

@@ -165,14 +165,16 @@ def _parquet_frames(path: Path) -> Iterator[pd.DataFrame]:
 
 def prepare_streamed_fit(upload: Path, kind: str, query: Mapping[str, str], settings, *,
                          work_dir: Path) -> tuple[MatrixFile, FitConfig, Any]:
-    """A spooled fit upload (``kind`` 'csv' or 'parquet'; CSV may be gzip-compressed) -> (matrix file in
+    """A spooled fit upload (``kind`` 'csv', 'csv-gzip' or 'parquet') -> (matrix file in
     ``work_dir``, config, make_live). Parameters come from the query string, as for a CSV body in memory."""
     params = validate_model(FitRequest, _query_parameters(query))
     limit = fit_row_limit(params.engine, settings)
     if kind == "parquet":
         frames = _parquet_frames(upload)
     else:
-        frames = _csv_frames(upload, is_gzip(upload), params.id_column, settings.max_decompressed_bytes)
+        # Content-Encoding: gzip, or a .gz file sent as it is (recognised by its first two bytes).
+        compressed = kind == "csv-gzip" or is_gzip(upload)
+        frames = _csv_frames(upload, compressed, params.id_column, settings.max_decompressed_bytes)
     matrix_path = work_dir / "matrix.f64"
     features: list[str] | None = None
     problems: list[RecordProblem] = []

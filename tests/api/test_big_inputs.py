@@ -148,6 +148,7 @@ def _bad_cases(iris):
         "missing-header": (no_header, "text/csv", None, 422, ["line 1", "header"]),
         "mixed-types": (mixed.to_csv(index=False).encode(), "text/csv", None, 422, ["string"]),
         "short-row-late": (text + b"r999,1.0,2.0\n", "text/csv", None, 422, ["line 152", "fields"]),
+        "declared-gzip-but-plain": (text, "text/csv", "gzip", 400, ["gzip"]),
         "empty": (b"", "text/csv", None, 422, ["empty"]),
         "empty-gzip": (gzip.compress(b""), "text/csv", "gzip", 422, ["empty"]),
         "header-only": (b"id,a,b,c,d\n", "text/csv", None, 422, ["no records"]),
@@ -157,7 +158,7 @@ def _bad_cases(iris):
 
 @pytest.mark.parametrize("case", [
     "truncated-gzip", "not-gzip", "unreadable-parquet", "parquet-cut-short", "wrong-delimiter", "missing-header",
-    "mixed-types", "short-row-late", "empty", "empty-gzip", "header-only", "gzip-json"])
+    "mixed-types", "short-row-late", "declared-gzip-but-plain", "empty", "empty-gzip", "header-only", "gzip-json"])
 def test_bad_file_is_a_4xx_naming_the_problem_and_writes_nothing(client, iris, small_blocks, case):
     body, content_type, encoding, status, words = _bad_cases(iris)[case]
     response = _post(client, body, content_type, "" if content_type == "application/json" else "?id_column=id",
