@@ -6,6 +6,12 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator, model_valida
 
 Record = dict[str, Any]
 
+# The fit engines, in one place (service/engines maps each to its function): how the bundle is fitted, never
+# what a version holds. "auto" picks memory up to the out_of_core_rows setting and out_of_core above.
+FIT_ENGINES = ("memory", "out_of_core")
+AUTO_ENGINE = "auto"
+EngineChoice = Literal[(AUTO_ENGINE, *FIT_ENGINES)]  # type: ignore[valid-type]
+
 
 class KRange(BaseModel):
     model_config = ConfigDict(extra="forbid")
@@ -37,6 +43,9 @@ class FitRequest(BaseModel):
     seed: int = Field(0, ge=0, le=2**32 - 1)
     outlier_quantile: float = Field(0.99, ge=0.5, lt=1.0)
     make_live: bool | None = None
+    engine: EngineChoice = Field(AUTO_ENGINE, description=(  # type: ignore[valid-type]
+        "memory: the whole matrix in memory (exact); out_of_core: streaming passes over the upload (big inputs; "
+        "k-means only); auto: memory up to the out_of_core_rows setting, out_of_core above"))
 
     @field_validator("components", "k", mode="before")
     @classmethod
@@ -121,6 +130,7 @@ class FitReport(BaseModel):
     data_sha256: str
     bundle_sha256: str
     library_versions: dict[str, str]
+    engine: str | None = Field(None, description="the fit engine that ran (memory, out_of_core); None before engines")
     warnings: list[FitWarning] = Field(default_factory=list, description=(
         "what the caller should know about a valid fit: default features dropped (all missing or constant), "
         "empty or tiny segments, fewer distinct clusters than k, k at the edge of the searched range; [] if none"))

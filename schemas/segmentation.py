@@ -25,6 +25,7 @@ class VersionSummary(BaseModel):
     n_records: int
     data_sha256: str
     created_by: str | None = None   # the actor of the fit (a key name, 'local' or 'cli'); None before events
+    engine: str | None = None       # the fit engine that ran (memory, out_of_core); None before engines
 
 
 class Event(BaseModel):

@@ -2,8 +2,8 @@
 
 ``fit_in_worker`` starts one process per fit from a ``forkserver`` (a clean process that imported the
 fitting code once, so a worker starts in milliseconds and inherits no threads or locks from the server),
-pins it to ``FIT_WORKER_THREADS`` BLAS/OpenMP threads at a lower CPU priority (``FIT_WORKER_NICENESS``), and waits for its answer at most ``time_limit``
-seconds. The caller bounds how many run at once (``fit_concurrency``: the fit route's capacity limiter).
+pins it to ``FIT_WORKER_THREADS`` BLAS/OpenMP threads at a lower CPU priority (``FIT_WORKER_NICENESS``),
+and waits for its answer at most ``time_limit`` seconds. The caller bounds how many run at once (``fit_concurrency``: the fit route's capacity limiter).
 
 The worker only computes: it sends the fitted ``Bundle`` back over a private pipe and the server writes the
 store (one writer, and a killed worker can leave nothing half-written behind). The pipe carries a pickle
@@ -13,7 +13,7 @@ from our own child process; nothing read from the store is ever unpickled.
 - A worker that dies (SIGKILL, the kernel's out-of-memory killer, a crash) raises ``FitWorkerDied``.
 - A refusal inside the fit (``InvalidInput`` and other ``ServiceError``) is re-raised as the same class.
 - With ``progress``, the worker sends ``("progress", step, fraction)`` messages over the same pipe as the fit
-  goes (``fit_bundle``'s callback) and the server calls ``progress(step, fraction)`` in the waiting thread.
+  goes (the engine's callback) and the server calls ``progress(step, fraction)`` in the waiting thread.
 - With ``cancel`` (a ``threading.Event``), setting it kills the worker within ``CANCEL_POLL_SECONDS`` and
   ``FitCancelled`` is raised; nothing was written.
 """
@@ -32,7 +32,8 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from service.core.bundle import Bundle, FitConfig
-from service.core.fit import fit_bundle
+from service.engines import run_engine
+from service.engines.source import MatrixFile
 from service.errors import FitCancelled, FitTimeLimit, FitWorkerDied, ServiceError
 
 log = logging.getLogger("segscore")
@@ -57,8 +58,8 @@ def running_fit_workers() -> list[int]:
         return sorted(_running)
 
 
-def _work(connection, values: np.ndarray, config: FitConfig, max_agglomerative_rows: int,
-          send_progress: bool = False) -> None:
+def _work(connection, values: np.ndarray | MatrixFile, config: FitConfig, max_agglomerative_rows: int,
+          engine: str = "memory", send_progress: bool = False) -> None:
     os.nice(FIT_WORKER_NICENESS)
 
     def progress(step: str, fraction: float) -> None:
@@ -66,7 +67,7 @@ def _work(connection, values: np.ndarray, config: FitConfig, max_agglomerative_r
 
     try:
         with threadpool_limits(limits=FIT_WORKER_THREADS):
-            bundle = fit_bundle(values, config, max_agglomerative_rows=max_agglomerative_rows,
+            bundle = run_engine(engine, values, config, max_agglomerative_rows=max_agglomerative_rows,
                                 progress=progress if send_progress else None)
         message: tuple[Any, ...] = ("fitted", bundle)
     except ServiceError as exc:
@@ -107,12 +108,14 @@ def _next_answer(receiver, worker, deadline: float, time_limit: float,
             progress(message[1], message[2])
 
 
-def fit_in_worker(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int,
-                  time_limit: float, progress: Callable[[str, float], None] | None = None,
+def fit_in_worker(values: np.ndarray | MatrixFile, config: FitConfig, *, max_agglomerative_rows: int,
+                  time_limit: float, engine: str = "memory", progress: Callable[[str, float], None] | None = None,
                   cancel: threading.Event | None = None) -> Bundle:
-    """``fit_bundle`` in a worker process, stopped after ``time_limit`` seconds. Blocks: call from a thread."""
+    """The ``engine``'s fit (service.engines) in a worker process, stopped after ``time_limit`` seconds. Blocks:
+    call from a thread. ``values``: the matrix, or a ``MatrixFile`` (big inputs: the worker reads the file).
+    ``progress(step, fraction)`` receives the worker's steps; setting ``cancel`` kills the worker."""
     receiver, sender = _CONTEXT.Pipe(duplex=False)
-    worker = _CONTEXT.Process(target=_work, args=(sender, values, config, max_agglomerative_rows,
+    worker = _CONTEXT.Process(target=_work, args=(sender, values, config, max_agglomerative_rows, engine,
                                                   progress is not None),
                               name="segscore-fit", daemon=True)
     worker.start()

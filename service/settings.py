@@ -54,6 +54,15 @@ class Settings(BaseSettings):
 
     max_body_bytes: int = Field(256 * 1024 * 1024, ge=1024)
     max_fit_rows: int = Field(1_000_000, ge=2)
+    # Big inputs (README, "Big inputs"). CSV, gzip CSV and Parquet fit uploads are spooled to a temporary file
+    # in upload_dir (the system's temporary directory when unset) and read in blocks. A fit with engine "auto"
+    # runs in memory up to out_of_core_rows training rows and out of core above; an out-of-core fit may hold up
+    # to max_out_of_core_rows rows (it keeps a few numbers per row, ~250 bytes: 1.2 GB at 5 million rows). A
+    # compressed upload may expand to at most max_decompressed_bytes.
+    out_of_core_rows: int = Field(500_000, ge=1)
+    max_out_of_core_rows: int = Field(5_000_000, ge=2)
+    max_decompressed_bytes: int = Field(16 * 1024 ** 3, ge=1024)
+    upload_dir: Path | None = None
     max_assign_rows: int = Field(100_000, ge=1)
     max_drift_rows: int = Field(1_000_000, ge=1)
     # Agglomerative clustering needs O(n^2) memory; above this many rows it is refused.

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import functools
 import time
+import pathlib
 from typing import Annotated, Any
 
 import anyio
@@ -11,7 +13,6 @@ from fastapi.responses import JSONResponse, Response
 
 from schemas import FitReport, FitRequest, Job, LabelUpdate, LiveUpdate, Segment, SegmentationDetail, SegmentationList
 from service.api.payload import (
-    body_kind,
     check_name,
     large_body_slot,
     read_body,
@@ -25,10 +26,16 @@ from service.api.validation import (
     printable,
 )
 from service.deps import ActorDep, AdminScope, FitScope, ReadScope, SettingsDep, StoreDep
-from service.core.fit import check_fit_inputs
 from service.errors import InvalidInput, RecordProblem
+from service.api.upload import (
+    PARQUET_TYPES,
+    fit_body_kind,
+    spool_upload,
+)
+from service.engines import check_before_fit, resolve_engine
 from service.fitting import fit_in_worker
 from service.inputs.fit_input import QUERY_PARAMETERS, prepare_fit
+from service.inputs.streamed import new_upload_directory, prepare_streamed_fit, remove_upload_directory
 
 router = APIRouter(prefix="/segmentations", tags=["segmentations"])
 
@@ -49,9 +56,17 @@ def _csv_query_parameters_openapi() -> list[dict[str, Any]]:
     return parameters
 
 
-FIT_BODY = {**request_body_openapi(FitRequest, "header row, then one row per record; parameters in the query "
-                                   "string (features=a,b&k=2-10&components=none)"),
-            "parameters": _csv_query_parameters_openapi()}
+def _fit_body_openapi() -> dict[str, Any]:
+    body = request_body_openapi(FitRequest, "header row, then one row per record (gzip-compressed with "
+                                "'Content-Encoding: gzip' or as a .gz file); parameters in the query string "
+                                "(features=a,b&k=2-10&components=none&engine=auto)")
+    body["requestBody"]["content"][PARQUET_TYPES[0]] = {
+        "schema": {"type": "string", "format": "binary",
+                   "description": "a Parquet file, one row per record; parameters in the query string as for CSV"}}
+    return {**body, "parameters": _csv_query_parameters_openapi()}
+
+
+FIT_BODY = _fit_body_openapi()
 
 
 BACKGROUND = "background"
@@ -64,38 +79,56 @@ BACKGROUND_ANSWER = {202: {"model": Job, "description": "?background=true: the r
              responses={**BACKGROUND_ANSWER, **error_responses(400, 401, 403, 413, 415, 422, 500, 503)})
 async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDep, actor: ActorDep,
               background: Annotated[bool, Query(description="true: check the request, answer 202 with a job at "
-                                                "once and fit in the background (JSON and CSV bodies)")] = False,
+                                                "once and fit in the background (any body kind)")] = False,
               ) -> JSONResponse:
     check_name(name)
-    csv = body_kind(request) == "csv"
+    kind = fit_body_kind(request)
     fit_query = {key: value for key, value in request.query_params.items() if key != BACKGROUND}
-    if not csv and fit_query:
+    if kind == "json" and fit_query:
         # A JSON body carries its parameters; a ?k=3 beside it would otherwise be ignored without a word.
         raise InvalidInput([RecordProblem(None, printable(key), "a JSON fit takes its parameters in the body; "
                                           "query parameters are for text/csv bodies")
-                            for key in dict.fromkeys(k for k in request.query_params.keys() if k != BACKGROUND)])
-    async with large_body_slot(request, settings):
-        body = await read_body(request, settings.max_body_bytes)
-        # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
-        values, config, make_live = await anyio.to_thread.run_sync(
-            prepare_fit, body, csv, fit_query, settings)
+                            for key in fit_query])
+    work_dir: pathlib.Path | None = new_upload_directory(settings.upload_dir)
+    try:
+        async with large_body_slot(request, settings):
+            if kind == "json":
+                body = await read_body(request, settings.max_body_bytes)
+                # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
+                values, config, make_live = await anyio.to_thread.run_sync(
+                    prepare_fit, body, False, fit_query, settings)
+                del body
+            else:
+                # Big inputs: CSV (maybe gzip) and Parquet arrive into a file and are read in blocks.
+                upload = await spool_upload(request, settings.max_body_bytes, work_dir)
+                values, config, make_live = await anyio.to_thread.run_sync(functools.partial(
+                    prepare_streamed_fit, upload, kind, fit_query, settings, work_dir=work_dir))
+                upload.unlink()
+        # auto: out of core above out_of_core_rows, and above the memory engine's own limit (max_fit_rows).
+        engine = resolve_engine(config.engine, values.shape[0],
+                                out_of_core_rows=min(settings.out_of_core_rows, settings.max_fit_rows))
 
-    if background:
-        # A bad request never becomes a job: what the worker would refuse (k above the distinct records, a
-        # constant named feature...) is refused here, with the synchronous fit's answer.
-        await anyio.to_thread.run_sync(lambda: check_fit_inputs(
-            values, config, max_agglomerative_rows=settings.max_agglomerative_rows))
-        job = await request.app.state.jobs.submit(name, values, config, make_live=make_live, actor=actor)
-        return JSONResponse(job, status_code=202, headers={"Location": f"/v1/jobs/{job['id']}"})
+        if background:
+            # A bad request never becomes a job: what the worker would refuse (k above the distinct records, a
+            # constant named feature...) is refused here, with the synchronous fit's answer.
+            await anyio.to_thread.run_sync(lambda: check_before_fit(
+                values, config, max_agglomerative_rows=settings.max_agglomerative_rows))
+            job = await request.app.state.jobs.submit(name, values, config, make_live=make_live, actor=actor,
+                                                      engine=engine, work_dir=work_dir)
+            work_dir = None                     # the job owns the directory now and removes it when it ends
+            return JSONResponse(job, status_code=202, headers={"Location": f"/v1/jobs/{job['id']}"})
 
-    def fit_and_save() -> dict[str, Any]:
-        # The fit runs in a worker process (service.fitting); the store is written here, by the server.
-        bundle = fit_in_worker(values, config, max_agglomerative_rows=settings.max_agglomerative_rows,
-                               time_limit=settings.fit_time_limit_seconds)
-        return store.save_version(name, bundle, make_live=make_live, actor=actor)
+        def fit_and_save() -> dict[str, Any]:
+            # The fit runs in a worker process (service.fitting); the store is written here, by the server.
+            bundle = fit_in_worker(values, config, max_agglomerative_rows=settings.max_agglomerative_rows,
+                                   time_limit=settings.fit_time_limit_seconds, engine=engine)
+            return store.save_version(name, bundle, make_live=make_live, actor=actor)
 
-    started = time.perf_counter()
-    report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
+        started = time.perf_counter()
+        report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
+    finally:
+        if work_dir is not None:
+            remove_upload_directory(work_dir)
     request.app.state.metrics.fit_seconds.observe(time.perf_counter() - started)
     request.app.state.metrics.fits.inc()
     return JSONResponse(report, status_code=201)

@@ -38,6 +38,7 @@ class FitConfig:
     make_live: bool | None = None         # echoed in the report's config (the store decides what it means)
     # Default-feature columns left out before the fit, with the reason: ((name, why), ...); in ``warnings``.
     dropped_features: tuple[tuple[str, str], ...] = ()
+    engine: str = "auto"                  # the engine asked for (schemas.fit.FIT_ENGINES or "auto"); echoed
 
     def as_request(self) -> dict[str, Any]:
         """The request as the report echoes it (``config``)."""
@@ -54,6 +55,7 @@ class FitConfig:
             "seed": self.seed,
             "outlier_quantile": self.outlier_quantile,
             "make_live": self.make_live,
+            "engine": self.engine,
         }
 
 

@@ -213,6 +213,17 @@ def calibrate(values: np.ndarray, *, segments: np.ndarray, labels: np.ndarray, r
         distance, residual = in_sample_distance.copy(), in_sample_residual.copy()
         d_scale = segment_medians(distance, segments, k)[segments]
         r_scale = segment_medians(residual, segments, k)[segments]
+    return calibrate_scores(distance, residual, d_scale, r_scale, segments=segments, k=k,
+                            in_sample_distance=in_sample_distance, in_sample_residual=in_sample_residual,
+                            has_residual=has_residual, q=q, held_out=held_out)
+
+
+def calibrate_scores(distance: np.ndarray, residual: np.ndarray, d_scale: np.ndarray, r_scale: np.ndarray, *,
+                     segments: np.ndarray, k: int, in_sample_distance: np.ndarray, in_sample_residual: np.ndarray,
+                     has_residual: bool, q: float, held_out: bool) -> Calibration:
+    """Steps 2-5 of the module docstring, from each row's held-out distance and residual and the scales of its
+    fold (also the out-of-core engine's entry, which computes those in streaming passes)."""
+    n = segments.size
     if not has_residual:
         residual = np.zeros(n)
     score = distance / d_scale

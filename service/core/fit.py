@@ -69,21 +69,25 @@ def unusable_features(values: np.ndarray, features: list[str]) -> dict[str, str]
         if column.size == 0:
             reasons[name] = "every value is missing"
             continue
-        scale = float(np.max(np.abs(column)))
-        if scale > MAX_ABS_VALUE:
-            reasons[name] = f"a value exceeds the limit |x| <= {MAX_ABS_VALUE:g}; its squares would overflow float64"
-            continue
-        spread = float(np.std(column))
-        if 0 < spread < MIN_SPREAD and spread > NEAR_CONSTANT_RTOL * scale:
-            reasons[name] = (f"its spread (std) is below {MIN_SPREAD:g}, too small to compute with in float64; "
-                             "express it in other units")
-            continue
-        if spread <= NEAR_CONSTANT_RTOL * scale:
-            # No value is quoted: error bodies and reports carry no record values.
-            shown = ("constant" if np.ptp(column) == 0
-                     else f"near-constant (std at most {NEAR_CONSTANT_RTOL:g} x its largest |value|)")
-            reasons[name] = f"{shown}: no information to cluster on"
+        why = feature_unusable_because(float(np.max(np.abs(column))), float(np.std(column)), np.ptp(column) == 0)
+        if why is not None:
+            reasons[name] = why
     return reasons
+
+
+def feature_unusable_because(scale: float, spread: float, constant: bool) -> str | None:
+    """Why a feature with observed values cannot be used (see ``unusable_features``), from its largest |value|,
+    its population std and whether all its values are equal; None when it can."""
+    if scale > MAX_ABS_VALUE:
+        return f"a value exceeds the limit |x| <= {MAX_ABS_VALUE:g}; its squares would overflow float64"
+    if 0 < spread < MIN_SPREAD and spread > NEAR_CONSTANT_RTOL * scale:
+        return (f"its spread (std) is below {MIN_SPREAD:g}, too small to compute with in float64; "
+                "express it in other units")
+    if spread <= NEAR_CONSTANT_RTOL * scale:
+        # No value is quoted: error bodies and reports carry no record values.
+        return ("constant" if constant else f"near-constant (std at most {NEAR_CONSTANT_RTOL:g} x its largest "
+                "|value|)") + ": no information to cluster on"
+    return None
 
 
 def distinct_rows_at_least(values: np.ndarray, needed: int) -> int:
@@ -102,7 +106,16 @@ def distinct_rows_at_least(values: np.ndarray, needed: int) -> int:
 # --------------------------------------------------------------------------- checks at the door
 def check_fit_inputs(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int) -> None:
     """Raise InvalidInput for anything that would make the fit meaningless or fail inside sklearn."""
-    n_records, n_features = values.shape
+    check_fit_facts(values.shape, config, max_agglomerative_rows=max_agglomerative_rows,
+                    unusable=lambda: unusable_features(values, list(config.features)),
+                    distinct_at_least=lambda needed: distinct_rows_at_least(values, needed))
+
+
+def check_fit_facts(shape: tuple[int, int], config: FitConfig, *, max_agglomerative_rows: int,
+                    unusable: Callable[[], dict[str, str]], distinct_at_least: Callable[[int], int]) -> None:
+    """``check_fit_inputs`` on facts about the data rather than the data (the out-of-core engine computes them in
+    streaming passes): its shape, the unusable features, and the distinct rows (asked only when needed)."""
+    n_records, n_features = shape
     problems: list[RecordProblem] = []
     if config.scaling not in SCALERS:
         problems.append(RecordProblem(None, "scaling", f"must be one of {list(SCALERS)}, got {config.scaling!r}"))
@@ -119,7 +132,7 @@ def check_fit_inputs(values: np.ndarray, config: FitConfig, *, max_agglomerative
     if problems:
         raise InvalidInput(problems)
 
-    for name, why in unusable_features(values, list(config.features)).items():
+    for name, why in unusable().items():
         problems.append(RecordProblem(None, name, f"feature cannot be used: {why}; remove it from 'features' "
                                       "(without 'features', such columns are dropped and listed in 'warnings')"))
 
@@ -129,7 +142,7 @@ def check_fit_inputs(values: np.ndarray, config: FitConfig, *, max_agglomerative
         problems.append(RecordProblem(
             None, "k", f"k must lie in [1, n_records - 1] = [1, {n_records - 1}]; got max {config.k_max}"))
     if not problems and config.k_max > 1:
-        distinct = distinct_rows_at_least(values, config.k_max)
+        distinct = distinct_at_least(config.k_max)
         if distinct < config.k_max:
             problems.append(RecordProblem(
                 None, "k", f"k (max {config.k_max}) exceeds the {distinct} distinct records (after imputing "

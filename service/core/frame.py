@@ -274,12 +274,12 @@ def _line_of(body: bytes, offset: int) -> int:
     return body.count(b"\n", 0, offset) + 1
 
 
-def _check_csv_text(body: bytes) -> None:
+def _check_csv_text(body: bytes, line_offset: int = 0) -> None:
     """UTF-8 only (lone surrogates included: they are not valid UTF-8); a JSON document is not a CSV."""
     try:
         body.decode("utf-8")
     except UnicodeDecodeError as exc:
-        raise BadBody(f"line {_line_of(body, exc.start)}: the CSV body is not valid UTF-8 "
+        raise BadBody(f"line {_line_of(body, exc.start) + line_offset}: the CSV body is not valid UTF-8 "
                       f"(byte {exc.start}); send UTF-8 text") from None
     if body.lstrip()[:1] in (b"{", b"["):
         raise InvalidInput("the body looks like JSON but was sent as text/csv; send it with "
@@ -298,6 +298,9 @@ def _csv_header(body: bytes) -> list[str]:
             if delimiter in names[0]:
                 raise InvalidInput(f"line 1: the header has one column and contains {shown}; the CSV must be "
                                    "comma-separated (export with ',' as the delimiter)", field="body")
+    if names and all(_is_number(name) for name in names):
+        raise InvalidInput("line 1: every header name is a number: the CSV has no header row? The first line must "
+                           "name the columns", field="body")
     problems = []
     for position, name in enumerate(names, start=1):
         if not name:
@@ -313,7 +316,15 @@ def _csv_header(body: bytes) -> list[str]:
     return names
 
 
-def _check_field_counts(body: bytes, n_fields: int, max_rows: int | None) -> None:
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _check_field_counts(body: bytes, n_fields: int, max_rows: int | None, line_offset: int = 0) -> None:
     """Every non-blank row has exactly as many fields as the header (else pandas would shift or pad columns);
     more than ``max_rows`` data rows is a 413 before pandas builds anything."""
     if b'"' not in body:
@@ -332,7 +343,7 @@ def _check_field_counts(body: bytes, n_fields: int, max_rows: int | None) -> Non
             raise PayloadTooLarge(f"the CSV has {int(np.count_nonzero(~blank)) - 1} rows; the limit is {max_rows}")
         bad = np.flatnonzero((counts != n_fields - 1) & ~blank)
         if bad.size:
-            line = int(bad[0]) + 1
+            line = int(bad[0]) + 1 + line_offset
             raise InvalidInput(f"line {line} has {int(counts[bad[0]]) + 1} fields but the header has {n_fields} "
                                f"({bad.size} such line(s); a trailing comma or a stray delimiter?)", field="body")
         return
@@ -342,24 +353,27 @@ def _check_field_counts(body: bytes, n_fields: int, max_rows: int | None) -> Non
             if max_rows is not None and number > max_rows:
                 raise PayloadTooLarge(f"the CSV has more than {max_rows} rows; the limit is {max_rows}")
             if row and len(row) != n_fields:
-                raise InvalidInput(f"line {reader.line_num} has {len(row)} fields but the header has {n_fields} "
+                raise InvalidInput(f"line {reader.line_num + line_offset} has {len(row)} fields but the header has {n_fields} "
                                    "(a trailing comma or a stray delimiter?)", field="body")
     except csv.Error as exc:
-        raise BadBody(f"line {reader.line_num}: the body is not valid CSV: {exc}") from None
+        raise BadBody(f"line {reader.line_num + line_offset}: the body is not valid CSV: {exc}") from None
 
 
-def read_csv(body: bytes, id_column: str | None = None, *, max_rows: int | None = None) -> pd.DataFrame:
+def read_csv(body: bytes, id_column: str | None = None, *, max_rows: int | None = None,
+             line_offset: int = 0) -> pd.DataFrame:
     """CSV bytes with a header row -> DataFrame; only empty cells are missing.
 
     The ``id_column`` (when given and present) is read as text, so a long numeric id is not turned into a float.
+    ``line_offset``: lines of the file before this body's second line (a block of a streamed file, sent with
+    the header), added to the line numbers of messages.
     """
     if body.startswith(b"\xef\xbb\xbf"):
         body = body[3:]                         # a UTF-8 byte-order mark (spreadsheet exports)
     if not body.strip():
         raise InvalidInput("the CSV body is empty", field="body")
-    _check_csv_text(body)
+    _check_csv_text(body, line_offset)
     names = _csv_header(body)
-    _check_field_counts(body, len(names), max_rows)
+    _check_field_counts(body, len(names), max_rows, line_offset)
     dtype = {id_column: str} if id_column is not None and id_column in names else None
     try:
         frame = pd.read_csv(io.BytesIO(body), keep_default_na=False, na_values=[""], index_col=False, dtype=dtype)

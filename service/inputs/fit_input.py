@@ -52,6 +52,8 @@ def _query_parameters(query: Mapping[str, str]) -> dict[str, Any]:
             params[key] = query[key]
     if "outlier_quantile" in query:
         params["outlier_quantile"] = query["outlier_quantile"]
+    if "engine" in query:
+        params["engine"] = query["engine"]
     if "make_live" in query:
         params["make_live"] = query["make_live"]
     if "components" in query:
@@ -105,6 +107,7 @@ def _fit_config(request_model: FitRequest, features: list[str], settings,
         reference_sample=settings.reference_sample,
         make_live=request_model.make_live,
         dropped_features=dropped,
+        engine=request_model.engine,
     )
 
 

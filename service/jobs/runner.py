@@ -34,6 +34,7 @@ import uuid
 from contextlib import suppress
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
+from pathlib import Path
 from typing import Any
 
 import anyio
@@ -42,7 +43,9 @@ import numpy as np
 from service.core.bundle import FitConfig
 from service.core.fit import STEP_START
 from service.errors import FitCancelled, JobNotRunning, ServiceError, StoreUnavailable
+from service.engines.source import MatrixFile
 from service.fitting import fit_in_worker
+from service.inputs.streamed import remove_upload_directory
 from service.store.base import ACTIVE_JOB_STATES, JOB_FIRST_STEP
 
 log = logging.getLogger("segscore")
@@ -130,15 +133,17 @@ class JobRunner:
             await asyncio.wait(tasks, timeout=SHUTDOWN_WAIT_SECONDS)
 
     # ------------------------------------------------------------------ requests
-    async def submit(self, name: str, values: np.ndarray, config: FitConfig, *, make_live: bool | None,
-                     actor: str) -> dict[str, Any]:
-        """Record a queued job for a checked fit request and start it; return the job."""
+    async def submit(self, name: str, values: np.ndarray | MatrixFile, config: FitConfig, *,
+                     make_live: bool | None, actor: str, engine: str = "memory",
+                     work_dir: Path | None = None) -> dict[str, Any]:
+        """Record a queued job for a checked fit request and start it; return the job. The job owns
+        ``work_dir`` (the upload's matrix file and the engine's scratch files) and removes it when it ends."""
         assert self._limiter is not None, "JobRunner.start was not called"
         job = await anyio.to_thread.run_sync(lambda: self.store.create_job(name, owner=self.owner, actor=actor))
         local = _LocalJob()
         self._local[job["id"]] = local
         local.task = asyncio.get_running_loop().create_task(
-            self._run(job["id"], local, name, values, config, make_live, actor), name=f"segscore-job-{job['id']}")
+            self._run(job["id"], local, name, values, config, make_live, actor, engine, work_dir), name=f"segscore-job-{job['id']}")
         return job
 
     async def cancel(self, job_id: str, *, actor: str) -> dict[str, Any]:
@@ -156,29 +161,32 @@ class JobRunner:
             local.task.cancel()         # a queued job: stop waiting for a fit slot
 
     # ------------------------------------------------------------------ the job itself
-    async def _run(self, job_id: str, local: _LocalJob, name: str, values: np.ndarray, config: FitConfig,
-                   make_live: bool | None, actor: str) -> None:
+    async def _run(self, job_id: str, local: _LocalJob, name: str, values: np.ndarray | MatrixFile,
+                   config: FitConfig, make_live: bool | None, actor: str, engine: str,
+                   work_dir: Path | None) -> None:
         try:
             async with self._limiter:
                 if local.cancel.is_set():
                     return
                 local.started = True
                 await anyio.to_thread.run_sync(self._fit_and_save, job_id, local.cancel, name, values, config,
-                                               make_live, actor)
+                                               make_live, actor, engine)
         except asyncio.CancelledError:
             pass                        # cancelled while queued (its state is already set by the canceller)
         finally:
             self._local.pop(job_id, None)
+            if work_dir is not None:
+                remove_upload_directory(work_dir)
 
-    def _fit_and_save(self, job_id: str, cancel: threading.Event, name: str, values: np.ndarray,
-                      config: FitConfig, make_live: bool | None, actor: str) -> None:
+    def _fit_and_save(self, job_id: str, cancel: threading.Event, name: str, values: np.ndarray | MatrixFile,
+                      config: FitConfig, make_live: bool | None, actor: str, engine: str) -> None:
         settings = self.settings
         started = time.perf_counter()
         try:
             if self.store.job_progress(job_id, JOB_FIRST_STEP, STEP_START[JOB_FIRST_STEP]) != "running":
                 return
             bundle = fit_in_worker(values, config, max_agglomerative_rows=settings.max_agglomerative_rows,
-                                   time_limit=settings.fit_time_limit_seconds,
+                                   time_limit=settings.fit_time_limit_seconds, engine=engine,
                                    progress=_ProgressWriter(self.store, job_id, cancel), cancel=cancel)
             if cancel.is_set() or self.store.job_progress(job_id, "saving", STEP_START["saving"]) != "running":
                 return

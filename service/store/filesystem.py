@@ -184,6 +184,9 @@ def _repair_text(value: Any) -> Any:
 class FilesystemStore:
     """The default store. Safe for threads of one process and for several processes on one disk."""
 
+    # The fit engine that made a version, read from its stored report (SQL of the index's dialect).
+    _REPORT_ENGINE = "json_extract(report, '$.engine')"
+
     def __init__(self, root: Path | str) -> None:
         self.root = Path(root)
         self.files = ContentAddressedFiles(self.root)
@@ -387,9 +390,10 @@ class FilesystemStore:
         result["versions"] = [
             {"version": v["version"], "created_at": v["created_at"], "live": v["version"] == live, "k": v["k"],
              "n_records": v["n_records"], "data_sha256": v["data_sha256"],
-             "created_by": authors.get(v["version"])}
-            for v in self._query("SELECT version, created_at, k, n_records, data_sha256 FROM versions"
-                                 " WHERE name=? ORDER BY version", (name,))
+             "created_by": authors.get(v["version"]), "engine": v["engine"]}
+            for v in self._query("SELECT version, created_at, k, n_records, data_sha256, "
+                                 f"{self._REPORT_ENGINE} AS engine FROM versions WHERE name=? ORDER BY version",
+                                 (name,))
         ]
         result["events"] = self.events(name, limit=MAX_LISTED_EVENTS)
         return result

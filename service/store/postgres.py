@@ -153,6 +153,8 @@ def apply_migrations(connection: psycopg.Connection) -> list[int]:
 class PostgresStore(FilesystemStore):
     """The index in PostgreSQL at ``url``; artifacts under ``artifact_dir`` (shared by every replica)."""
 
+    _REPORT_ENGINE = "(report::jsonb ->> 'engine')"
+
     def __init__(self, url: str, artifact_dir: Path | str, *, pool_size: int = 4, timeout: float = 5.0) -> None:
         self.root = Path(artifact_dir)
         self.url = url

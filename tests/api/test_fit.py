@@ -174,8 +174,9 @@ def test_a_running_fit_does_not_block_other_requests(client, iris, monkeypatch, 
     # answers another request meanwhile: the stage runs off the event loop.
     import service.api.segmentations as route
     import service.inputs.fit_input as fit_input     # body parsing (shared with the CLI)
+    import service.inputs.streamed as streamed       # CSV uploads, read in blocks from a file
 
-    module = route if stage == "fit_in_worker" else fit_input
+    module = route if stage == "fit_in_worker" else streamed if csv else fit_input
 
     started, release = threading.Event(), threading.Event()
     real = getattr(module, stage)

@@ -18,6 +18,7 @@ import pytest
 import schemathesis
 from fastapi.testclient import TestClient
 from hypothesis import HealthCheck, settings
+from hypothesis import strategies as st
 
 from service.app import create_app
 from service.settings import Settings
@@ -33,6 +34,8 @@ STORE = Path(tempfile.mkdtemp(prefix="segscore-fuzz-"))
 # A small record limit keeps generated fits short; everything else is the default configuration.
 APP = create_app(Settings(store_dir=STORE / "store", max_fit_rows=5_000))
 schema = schemathesis.openapi.from_asgi("/openapi.json", APP)
+# Parquet fit uploads: arbitrary bytes (an unreadable file must be a 4xx with a detail, never a 5xx).
+schemathesis.openapi.media_type("application/vnd.apache.parquet", st.binary(max_size=512))
 
 
 @pytest.fixture(scope="module", autouse=True)

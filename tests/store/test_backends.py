@@ -55,6 +55,15 @@ def test_versions_are_numbered_and_the_first_goes_live(store, bundles):
     assert store.version_report("shop", 2)["k"] == 3
 
 
+def test_version_summaries_name_the_fit_engine(store, bundles):
+    import dataclasses
+
+    store.save_version("shop", bundles[0], make_live=None)          # fitted by fit_bundle: no engine recorded
+    streamed = dataclasses.replace(bundles[1], report={**bundles[1].report, "engine": "out_of_core"})
+    store.save_version("shop", streamed, make_live=None)
+    assert [v["engine"] for v in store.get_segmentation("shop")["versions"]] == [None, "out_of_core"]
+
+
 def test_a_loaded_version_assigns_as_the_fitted_bundle_does(store, bundles, iris):
     from service.core.assign import assign, impute
     from service.core.serving import serving_version

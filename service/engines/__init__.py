@@ -1,0 +1,74 @@
+"""Fit engines: how a bundle is fitted from a training matrix (every engine makes the same kind of version).
+
+- ``memory``: ``service.core.fit.fit_bundle`` on the whole matrix in memory (exact; the default below
+  ``out_of_core_rows`` training rows).
+- ``out_of_core``: ``service.engines.out_of_core.fit_out_of_core``, streaming passes over the matrix file.
+
+The names a request may give are ``schemas.fit.FIT_ENGINES`` plus ``auto`` (one list, shared with the request
+model); ``ENGINES`` maps each to its function, and the two are checked against each other at import. Every
+engine is called as ``engine(source, config, *, max_agglomerative_rows, progress)`` with ``source`` a numpy
+matrix or a ``MatrixFile``, and returns a ``Bundle`` whose report's ``engine`` names it.
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+
+from schemas.fit import AUTO_ENGINE, FIT_ENGINES
+from service.core.bundle import Bundle, FitConfig
+from service.core.fit import check_fit_facts, check_fit_inputs, fit_bundle
+from service.engines.out_of_core import Progress, fit_out_of_core
+from service.engines.source import MatrixFile
+
+
+def fit_in_memory(source: np.ndarray | MatrixFile, config: FitConfig, *, max_agglomerative_rows: int = 20_000,
+                  progress: Progress | None = None) -> Bundle:
+    """Today's exact fit on the whole matrix (``fit_bundle`` reports its steps to ``progress``)."""
+    values = source.load() if isinstance(source, MatrixFile) else source
+    bundle = fit_bundle(values, config, max_agglomerative_rows=max_agglomerative_rows, progress=progress)
+    bundle.report["engine"] = "memory"
+    return bundle
+
+
+def _out_of_core(source: np.ndarray | MatrixFile, config: FitConfig, *, max_agglomerative_rows: int = 20_000,
+                 progress: Progress | None = None) -> Bundle:
+    if isinstance(source, MatrixFile):
+        return fit_out_of_core(source, config, max_agglomerative_rows=max_agglomerative_rows, progress=progress)
+    import tempfile
+    from pathlib import Path
+    with tempfile.TemporaryDirectory(prefix="segscore-fit-") as scratch:
+        matrix = MatrixFile.write(Path(scratch) / "values.f64", source)
+        return fit_out_of_core(matrix, config, max_agglomerative_rows=max_agglomerative_rows, progress=progress)
+
+
+Engine = Callable[..., Bundle]
+ENGINES: dict[str, Engine] = {"memory": fit_in_memory, "out_of_core": _out_of_core}
+if tuple(ENGINES) != FIT_ENGINES:
+    raise RuntimeError(f"service.engines.ENGINES {tuple(ENGINES)} must match schemas.fit.FIT_ENGINES {FIT_ENGINES}")
+
+
+def resolve_engine(requested: str, n_rows: int, *, out_of_core_rows: int) -> str:
+    """The engine that runs: the requested one, or for ``auto`` memory up to ``out_of_core_rows`` rows and
+    out_of_core above."""
+    if requested == AUTO_ENGINE:
+        return "out_of_core" if n_rows > out_of_core_rows else "memory"
+    return requested
+
+
+def run_engine(name: str, source: np.ndarray | MatrixFile, config: FitConfig, *, max_agglomerative_rows: int,
+               progress: Progress | None = None) -> Bundle:
+    return ENGINES[name](source, config, max_agglomerative_rows=max_agglomerative_rows, progress=progress)
+
+
+def check_before_fit(source: np.ndarray | MatrixFile, config: FitConfig, *, max_agglomerative_rows: int) -> None:
+    """What a fit would refuse, checked before a background job is queued. A matrix in memory gets every check
+    the fit makes; a matrix file (big inputs) those that need no pass over the data (its shape and the
+    parameters). The rest (unusable features, too few distinct records) then run in the job, whose ``error`` is
+    the detail a synchronous fit answers."""
+    if isinstance(source, MatrixFile):
+        check_fit_facts(source.shape, config, max_agglomerative_rows=max_agglomerative_rows,
+                        unusable=dict, distinct_at_least=lambda needed: needed)
+    else:
+        check_fit_inputs(source, config, max_agglomerative_rows=max_agglomerative_rows)
