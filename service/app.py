@@ -220,6 +220,10 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
     app.state.chart_cache = ChartCache(settings.chart_cache_size)
     for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router):
         app.include_router(router, prefix="/v1")
+    # First in the table: the single-record hot path skips the walk over every other route and FastAPI's
+    # per-request dependency solving (service/api/assign.py, LeanAssignRoute); the FastAPI route stays the
+    # documented one and answers what the lean route hands over.
+    app.router.routes.insert(0, assign.LeanAssignRoute())
     app.include_router(health.router)
     console.install(app)
     if settings.docs_enabled:

@@ -3,10 +3,10 @@ unexpected errors that answers a plain 500 instead of letting the server drop th
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import traceback
 
-import anyio
 import orjson
 
 from service.errors import BodyTimeout
@@ -73,7 +73,9 @@ class BodyReadTimeout(HttpMiddleware):
             if body_done:
                 return await receive()
             try:
-                with anyio.fail_after(self.seconds):
+                # asyncio's own timeout (the server runs on asyncio): a fraction of anyio.fail_after's cost,
+                # which was a tenth of a single-record request.
+                async with asyncio.timeout(self.seconds):
                     message = await receive()
             except TimeoutError:
                 raise BodyTimeout(self.seconds) from None
