@@ -205,6 +205,9 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
         # ReDoc has no such package, so it is off.
         docs_url=None,
         redoc_url=None,
+        # Metrics are Prometheus (service/metrics.py); FastAPI's OpenTelemetry hooks would otherwise ask the
+        # global OTel providers on every request whether they are configured.
+        telemetry={"tracing": False, "metrics": False, "logs": False},
         openapi_url="/openapi.json" if settings.docs_enabled else None,
     )
     app.state.settings = settings

@@ -132,6 +132,8 @@ def too_many_missing(batch: Batch, features: list[str]) -> None:
     A value already reported as bad is NaN in the matrix but not *missing*, and a record already reported
     as a whole (not an object) gets no second item.
     """
+    if not batch.may_have_nan:
+        return
     missing = np.isnan(batch.values).sum(axis=1)
     if batch.problems:
         names = set(features)
