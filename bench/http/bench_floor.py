@@ -108,8 +108,9 @@ def main() -> int:
                 for server in order:
                     print(f"round {round_number + 1}/{args.rounds}: {server.label:8s} {scenario.key} "
                           f"({args.duration:g} s) ...", flush=True)
-                    samples.setdefault((scenario.key, server.label), []).append(
-                        measure(server, body, scenario, args.duration, args.warmup))
+                    run = measure(server, body, scenario, args.duration, args.warmup)
+                    run["cpu_us"] = run["server_cpu_s"] / max(1, run["requests"]) * 1e6
+                    samples.setdefault((scenario.key, server.label), []).append(run)
     finally:
         for server in servers:
             server.stop()
@@ -127,7 +128,7 @@ def main() -> int:
     print(f"{args.rounds} alternating rounds; each run {args.duration:g} s after a {args.warmup:g} s warm-up; "
           "medians over the rounds")
     header = (f"{'scenario':32s} {'server':9s} {'req/s':>9s} {'p50 ms':>8s} {'p99 ms':>8s} {'failed':>6s} "
-              f"{'wrk CPU':>8s} {'srv CPU':>8s}")
+              f"{'wrk CPU':>8s} {'srv CPU':>8s} {'srv us/req':>10s}")
     print(header)
     print("-" * len(header))
     for scenario in SCENARIOS:
@@ -136,8 +137,9 @@ def main() -> int:
             print(f"{scenario.key:32s} {label:9s} {median(scenario, label, 'rps'):9,.0f} "
                   f"{median(scenario, label, 'p50_us') / 1000:8.3f} {median(scenario, label, 'p99_us') / 1000:8.3f} "
                   f"{failed:6d} {median(scenario, label, 'wrk_cpu_share'):7.0%} "
-                  f"{median(scenario, label, 'server_cpu_share'):7.0%}")
-    print("(wrk CPU / srv CPU: CPU time used by wrk / by the server process during the run, as a share of one core)")
+                  f"{median(scenario, label, 'server_cpu_share'):7.0%} {median(scenario, label, 'cpu_us'):10.0f}")
+    print("(wrk CPU / srv CPU: CPU time used by wrk / by the server process during the run, as a share of one core;")
+    print(" srv us/req: server CPU time per answered request, the figure least moved by other load on the machine)")
     print()
     busy, idle = SCENARIOS
     print("-- goals (medians of the same rounds)")
@@ -148,9 +150,13 @@ def main() -> int:
               f"(goal >= {THROUGHPUT_GOAL:.0%}: {'met' if share >= THROUGHPUT_GOAL else 'NOT met'})")
         print(f"{label:9s} p50 at 1 connection: {ratio:5.2f}x the floor's "
               f"(goal <= {LATENCY_GOAL:g}x: {'met' if ratio <= LATENCY_GOAL else 'NOT met'})")
+        cpu_share = median(busy, "floor", "cpu_us") / median(busy, label, "cpu_us")
+        print(f"{label:9s} server CPU per request at 16 connections: floor's / {label}'s = {cpu_share:6.1%}")
         if label != "segscore":
             gain = median(busy, "segscore", "rps") / median(busy, label, "rps")
-            print(f"segscore vs {label}: {gain:5.2f}x the requests/s at 16 connections")
+            cpu_gain = median(busy, label, "cpu_us") / median(busy, "segscore", "cpu_us")
+            print(f"segscore vs {label}: {gain:5.2f}x the requests/s, {cpu_gain:5.2f}x less server CPU per request "
+                  "at 16 connections")
     failed = sum(run["failed"] for runs in samples.values() for run in runs)
     print(f"failed requests (non-2xx, socket errors, timeouts) over all runs: {failed}")
     print(f"total time {time.monotonic() - started:.0f} s; servers stopped")
