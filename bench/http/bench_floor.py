@@ -60,7 +60,8 @@ def service_server(label: str, tree: Path, store: Path) -> Server:
     port = free_port()
     env = {**os.environ, **SERVER_ENV, "PYTHONPATH": str(tree), "SEGSCORE_STORE_DIR": str(store)}
     return Server(label, ["--factory", "service.app:create_app", "--port", str(port), *UVICORN_FLAGS], env,
-                  f"http://127.0.0.1:{port}/v1/segmentations/{NAME}/assign", f"http://127.0.0.1:{port}/healthz")
+                  f"http://127.0.0.1:{port}/v1/segmentations/{NAME}/assign", f"http://127.0.0.1:{port}/healthz",
+                  cwd=tree)      # ``python -m`` puts the working directory first on sys.path
 
 
 def floor_server() -> Server:

@@ -252,21 +252,22 @@ def _assign_direct(compiled: CompiledBundle, values: np.ndarray):
 
 def _project_chunk(compiled: CompiledBundle, chunk: np.ndarray, tail_sq: np.ndarray) -> np.ndarray:
     """(d, rows) clustering coordinates of a chunk, one row per dimension; writes squared residuals to tail_sq."""
-    # (p, rows), contiguous so that every step below runs along whole rows: the centre first (no cancellation).
-    u_t = np.subtract(chunk.T, compiled.centre[:, None])
-    u_t *= compiled.scale[:, None]
-    u_t -= compiled.space_centre[:, None]
+    # Centred and projected in the records' own (row) layout: every pass reads memory in order. (Transposing
+    # the chunk first cost ~30 % more: the subtraction then read it across rows.) Only the small (rows, d)
+    # result is transposed, for the elementwise ranking below.
+    u = np.subtract(chunk, compiled.centre)              # the centre first (no cancellation)
+    u *= compiled.scale
+    u -= compiled.space_centre
     if compiled.axes is None:
         tail_sq[:] = 0.0
-        return u_t
-    z = compiled.axes @ u_t                               # (d, rows)
+        return np.ascontiguousarray(u.T)
+    z = u @ compiled.axes.T                               # (rows, d)
     if compiled.has_residual:
-        u_t -= compiled.axes.T @ z                        # the row minus its reconstruction
-        u_t *= u_t
-        np.add.reduce(u_t, axis=0, out=tail_sq)
+        u -= z @ compiled.axes                            # the row minus its reconstruction
+        np.einsum("ij,ij->i", u, u, out=tail_sq)
     else:
         tail_sq[:] = 0.0
-    return z
+    return np.ascontiguousarray(z.T)
 
 
 def _assign_chunked(compiled: CompiledBundle, values: np.ndarray):
