@@ -126,14 +126,14 @@ def main() -> None:
 
     def fast_single() -> None:
         batch = batch_from_json([record], FEATURES, None)
-        filled, _ = impute(compiled, batch.values)
+        filled = impute(compiled, batch.values)[0] if batch.may_have_nan else batch.values   # as the route does
         assign(compiled, filled)
 
     def fast_single_results() -> None:
         batch = batch_from_json([record], FEATURES, None)
         too_many_missing(batch, FEATURES)
         rows, _ = split_good_rows(batch, False)
-        result, missing = run_assignment(loaded, batch.values)
+        result, missing = run_assignment(loaded, batch.values, may_have_nan=batch.may_have_nan)
         build_results(loaded, {}, batch.ids, rows, result, missing)
 
     row = values[:1].copy()

@@ -43,12 +43,13 @@ def split_good_rows(batch: Batch, skip_bad: bool) -> tuple[np.ndarray, list[dict
     return np.flatnonzero(good), [p.as_dict() for p in batch.problems]
 
 
-def run_assignment(loaded: LoadedVersion, values: np.ndarray,
-                   rows: np.ndarray | None = None) -> tuple[Assignment, np.ndarray | None]:
+def run_assignment(loaded: LoadedVersion, values: np.ndarray, rows: np.ndarray | None = None, *,
+                   may_have_nan: bool = True) -> tuple[Assignment, np.ndarray | None]:
     """Impute and assign; a record whose distances overflow float64 is a 422 (never a null in the answer).
 
-    ``rows``: the input index of each row of ``values`` (for the error items; default 0..n-1)."""
-    filled, missing = impute(loaded.compiled, values)
+    ``rows``: the input index of each row of ``values`` (for the error items; default 0..n-1).
+    ``may_have_nan``: False when the reader saw only plain numbers (``Batch.may_have_nan``): nothing to impute."""
+    filled, missing = impute(loaded.compiled, values) if may_have_nan else (values, None)
     try:
         result = assign(loaded.compiled, filled)
     except (FloatingPointError, RuntimeWarning):
@@ -75,7 +76,7 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
                   result: Assignment, missing: np.ndarray | None) -> list[dict[str, Any]]:
     """Column arrays -> one JSON object per record (plain Python types only)."""
     features = loaded.compiled.features
-    segment_labels = [labels.get(c) for c in range(loaded.compiled.k)]
+    label_of = labels.get
     n = rows.size
     if n == len(ids):
         ids_out = ids
@@ -90,7 +91,7 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
         for i in np.flatnonzero(missing.any(axis=1)).tolist():
             imputed[i] = [features[j] for j in np.flatnonzero(missing[i]).tolist()]
     return [
-        {"id": i, "segment": s, "label": segment_labels[s], "distance": d, "outlier": r > 0,
+        {"id": i, "segment": s, "label": label_of(s), "distance": d, "outlier": r > 0,
          "outlier_reasons": _REASONS[r], "runner_up": u, "margin": m, "residual": e, "imputed": imp}
         for i, s, d, r, u, m, e, imp in zip(ids_out, segments, result.distance.tolist(), reasons, runner_up,
                                             margin, result.residual.tolist(), imputed)
@@ -130,7 +131,7 @@ async def answer_assign(request: Request, name: str, version: int | None, on_err
     values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]
 
     def compute() -> tuple[list[dict[str, Any]], Assignment]:
-        result, missing = run_assignment(loaded, values, rows)
+        result, missing = run_assignment(loaded, values, rows, may_have_nan=batch.may_have_nan)
         return build_results(loaded, labels, batch.ids, rows, result, missing), result
 
     if rows.size <= settings.inline_assign_rows:
