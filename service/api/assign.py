@@ -25,7 +25,7 @@ from service.settings import Settings
 from service.store import BundleStore, LoadedVersion
 
 router = APIRouter(prefix="/segmentations", tags=["assign"])
-ASSIGN_SCOPE = "assign"
+ASSIGN_SCOPE = AssignScope.dependency.required_scope     # the lean route checks the same scope
 
 RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per record")
 _REASONS = ([], ["distance"], ["residual"], ["distance", "residual"])
