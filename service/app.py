@@ -222,6 +222,9 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
         # ReDoc has no such package, so it is off.
         docs_url=None,
         redoc_url=None,
+        # Metrics are Prometheus (service/metrics.py); FastAPI's OpenTelemetry hooks would otherwise ask the
+        # global OTel providers on every request whether they are configured.
+        telemetry={"tracing": False, "metrics": False, "logs": False},
         openapi_url="/openapi.json" if settings.docs_enabled else None,
     )
     app.state.settings = settings
@@ -238,6 +241,10 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
     app.state.chart_cache = ChartCache(settings.chart_cache_size)
     for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router, jobs.router):
         app.include_router(router, prefix="/v1")
+    # First in the table: the single-record hot path skips the walk over every other route and FastAPI's
+    # per-request dependency solving (service/api/assign.py, LeanAssignRoute); the FastAPI route stays the
+    # documented one and answers what the lean route hands over.
+    app.router.routes.insert(0, assign.LeanAssignRoute())
     app.include_router(health.router)
     console.install(app)
     if settings.docs_enabled:

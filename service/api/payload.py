@@ -66,6 +66,12 @@ async def read_body(request: Request, limit: int) -> bytes:
     return body
 
 
+def declared_small(request: Request, settings: Settings) -> bool:
+    """Whether the request announces a body of at most ``large_body_bytes`` (read without a slot)."""
+    declared = request.headers.get("content-length")
+    return declared is not None and declared.isdigit() and int(declared) <= settings.large_body_bytes
+
+
 @asynccontextmanager
 async def large_body_slot(request: Request, settings: Settings) -> AsyncIterator[None]:
     """Hold one of the ``large_body_concurrency`` slots while a large (or unannounced) body is read and parsed.
@@ -74,9 +80,7 @@ async def large_body_slot(request: Request, settings: Settings) -> AsyncIterator
     their parsed forms) are in memory at once. Small bodies pass straight through.
     """
     limiter = getattr(request.app.state, "large_body_limiter", None)
-    declared = request.headers.get("content-length")
-    small = declared is not None and declared.isdigit() and int(declared) <= settings.large_body_bytes
-    if limiter is None or small:
+    if limiter is None or declared_small(request, settings):
         yield
         return
     async with limiter:
@@ -106,6 +110,10 @@ async def read_batch(request: Request, features: list[str], id_column: str | Non
                      max_rows: int) -> Batch:
     """An assign/drift body (JSON or CSV) -> Batch of the version's features."""
     kind = body_kind(request)
+    if declared_small(request, settings):
+        # A small body (the single-record call): read and parsed here, without a slot or a context manager.
+        body = await read_body(request, settings.max_body_bytes)
+        return await off_loop_if_large(body, settings, _parse_batch, kind, body, features, id_column, max_rows)
     async with large_body_slot(request, settings):
         body = await read_body(request, settings.max_body_bytes)
         return await off_loop_if_large(body, settings, _parse_batch, kind, body, features, id_column, max_rows)
@@ -124,6 +132,8 @@ def too_many_missing(batch: Batch, features: list[str]) -> None:
     A value already reported as bad is NaN in the matrix but not *missing*, and a record already reported
     as a whole (not an object) gets no second item.
     """
+    if not batch.may_have_nan:
+        return
     missing = np.isnan(batch.values).sum(axis=1)
     if batch.problems:
         names = set(features)

@@ -29,14 +29,14 @@ def body_model_keys(route: Any) -> list[str]:
 
 
 MAX_VERSION = 2 ** 31 - 1
-_PLAIN_DECIMAL = re.compile(r"[1-9][0-9]{0,9}|0")
+PLAIN_DECIMAL = re.compile(r"[1-9][0-9]{0,9}|0")
 
 
 def plain_decimal(value: Any) -> Any:
     """Only plain decimal digits are a number in a path or query: '1.0', '+1', ' 1' and '1e3' are refused
     (int() and pydantic's lax mode would read them all as numbers)."""
     if isinstance(value, str):
-        if not _PLAIN_DECIMAL.fullmatch(value):
+        if not PLAIN_DECIMAL.fullmatch(value):
             raise ValueError(f"expected a plain decimal integer (digits only); got {printable(value[:40])!r}")
         return int(value)
     return value

@@ -48,6 +48,9 @@ class Batch:
     values: np.ndarray                       # (n_records, n_features), NaN = missing
     ids: list[Any]                           # id_column values, or row indices
     problems: list[RecordProblem] = field(default_factory=list)
+    # False only where the reader knows the matrix holds no NaN (every value a plain number): the route's
+    # missing-value count is then skipped. True is always safe.
+    may_have_nan: bool = True
 
     @property
     def bad_rows(self) -> np.ndarray:
@@ -221,6 +224,17 @@ def _table(rows: list[dict[str, Any]], features: Sequence[str]) -> list[tuple[An
     return [tuple(map(row.get, features)) for row in rows]
 
 
+def _plain_numbers(row: tuple[Any, ...]) -> bool:
+    """Every value an int or float (not a bool, not None) within +-MAX_ABS_VALUE: the same test as the
+    table's, on Python values (cheaper than numpy for one record). NaN and infinities fail the comparison;
+    an int beyond float64's range compares False too. Any failure goes the general way, which names it."""
+    for value in row:
+        kind = type(value)
+        if (kind is not float and kind is not int) or not -MAX_ABS_VALUE <= value <= MAX_ABS_VALUE:
+            return False
+    return True
+
+
 def _matrix_from_table(table: list[tuple[Any, ...]], features: Sequence[str],
                        problems: list[RecordProblem]) -> tuple[np.ndarray, bool]:
     """Rows of JSON values -> (n, p) float64, None -> NaN, and whether a column was redone. Checked as a whole;
@@ -262,12 +276,20 @@ def batch_from_json(
         else:
             problems.append(RecordProblem(i, "", "each record must be a JSON object"))
             rows.append({})
-    values, redone = _matrix_from_table(_table(rows, features), features, problems)
+    table = _table(rows, features)
+    if len(table) == 1 and not problems and _plain_numbers(table[0]):
+        # The single-record call: every value a plain number in range, checked in Python (cheaper than the
+        # table's numpy checks for one row); anything else goes the general way, which names the problem.
+        values, redone, complete = np.array(table, dtype=np.float64), False, True
+    else:
+        values, redone = _matrix_from_table(table, features, problems)
+        complete = False
     if redone and np.isnan(values).any():     # a value is missing: was its key misspelt?
         _near_key_problems(rows, features, id_column, problems)
     ids = _ids([r.get(id_column) for r in rows] if id_column is not None else rows, id_column, problems)
-    problems.sort(key=lambda p: (p.record if p.record is not None else -1))
-    return Batch(values, ids, problems)
+    if problems:
+        problems.sort(key=lambda p: (p.record if p.record is not None else -1))
+    return Batch(values, ids, problems, may_have_nan=not complete)
 
 
 def _line_of(body: bytes, offset: int) -> int:
