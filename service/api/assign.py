@@ -12,7 +12,8 @@ from fastapi.responses import Response
 
 from schemas import AssignResponse
 from schemas.assign import AssignRequest
-from service.api.payload import read_version_batch, request_body_openapi, too_many_missing
+from service.api import arrow_answers
+from service.api.payload import ARROW_STREAM_TYPE, read_version_batch, request_body_openapi, too_many_missing, wants_arrow
 from service.api.validation import StrictQuery, VersionNumber, error_responses
 from service.core.assign import Assignment, assign, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
@@ -22,7 +23,9 @@ from service.store import LoadedVersion
 
 router = APIRouter(prefix="/segmentations", tags=["assign"])
 
-RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per record")
+RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per record", arrow=True,
+                                    answer=AssignResponse)
+VARY_ACCEPT = {"Vary": "Accept"}      # the answer's format follows the request's Accept
 _REASONS = ([], ["distance"], ["residual"], ["distance", "residual"])
 _NO_IMPUTED: list[str] = []
 
@@ -108,6 +111,7 @@ async def assign_records(
     version: Annotated[VersionNumber | None, Query(description="default: the live version")] = None,
     on_error: Annotated[Literal["fail", "skip"], Query(description="skip: answer for the good records")] = "fail",
 ) -> Response:
+    arrow = wants_arrow(request)          # Accept: the answer's format (JSON unless Arrow is asked for)
     loaded, labels, batch = await read_version_batch(request, store, name, version, settings=settings,
                                              max_rows=settings.max_assign_rows, echo_ids=True)
     number, features = loaded.version, list(loaded.compiled.features)
@@ -115,8 +119,11 @@ async def assign_records(
     rows, errors = split_good_rows(batch, on_error == "skip")
     values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]
 
-    def compute() -> tuple[list[dict[str, Any]], Assignment]:
+    def compute() -> tuple[Any, Assignment]:
         result, missing = run_assignment(loaded, values, rows)
+        if arrow:
+            return arrow_answers.assign_answer(name, number, features, labels, loaded.compiled.k, batch.ids, rows,
+                                               result, missing, errors), result
         return build_results(loaded, labels, batch.ids, rows, result, missing), result
 
     if rows.size <= settings.inline_assign_rows:
@@ -124,5 +131,7 @@ async def assign_records(
     else:
         results, assignment = await anyio.to_thread.run_sync(compute)
     count_assigned(request.app.state.metrics, name, number, assignment)
+    if arrow:
+        return Response(results, media_type=ARROW_STREAM_TYPE, headers=VARY_ACCEPT)
     body = {"name": name, "version": number, "results": results, "errors": errors}
-    return Response(orjson.dumps(body), media_type="application/json")
+    return Response(orjson.dumps(body), media_type="application/json", headers=VARY_ACCEPT)
