@@ -124,6 +124,8 @@ def measure(server: Server, body: Path, content_type: str, accept: str, seconds:
     wall = summary["duration_us"] / 1e6
     summary["records_per_s"] = summary["requests"] / wall * N_RECORDS
     summary["server_cpu_share"] = (process_cpu_seconds(server.process.pid) - cpu_before) / wall
+    # Records per CPU-second of the server: less moved than records/s when other processes take the cores.
+    summary["records_per_cpu_s"] = summary["records_per_s"] / max(summary["server_cpu_share"], 1e-9)
     summary["wrk_cpu_share"] = summary["wrk_cpu_s"] / wall
     summary["failed"] = sum(summary[k] for k in ("connect_errors", "read_errors", "write_errors",
                                                   "status_errors", "timeouts"))
@@ -181,21 +183,24 @@ def main() -> int:
     print(f"bodies: JSON {sizes['json']:,} bytes, Arrow {sizes['arrow']:,} bytes; {args.rounds} alternating rounds of "
           f"{args.duration:g} s after {args.warmup:g} s warm-up each")
     header = (f"{'candidate':18s} {'records/s per round':>34s} {'median rec/s':>13s} {'p50 ms':>8s} "
-              f"{'srv CPU':>8s} {'wrk CPU':>8s} {'failed':>6s}")
+              f"{'srv CPU':>8s} {'rec/srv CPU-s':>14s} {'wrk CPU':>8s} {'failed':>6s}")
     print(header)
     print("-" * len(header))
-    medians = {}
+    medians, per_cpu = {}, {}
     for label, results in runs.items():
         rates = [r["records_per_s"] for r in results]
         medians[label] = statistics.median(rates)
+        per_cpu[label] = statistics.median(r["records_per_cpu_s"] for r in results)
         print(f"{label:18s} {' '.join(f'{x:>10,.0f}' for x in rates):>34s} {medians[label]:13,.0f} "
               f"{statistics.median(r['p50_us'] for r in results) / 1000:8.2f} "
               f"{statistics.median(r['server_cpu_share'] for r in results):7.0%} "
+              f"{per_cpu[label]:14,.0f} "
               f"{statistics.median(r['wrk_cpu_share'] for r in results):7.0%} "
               f"{sum(r['failed'] for r in results):6d}")
     print("(srv CPU / wrk CPU: CPU time of the server process / of wrk during the run, as a share of one core)")
     ratio = medians["arrow"] / medians["json"]
     print(f"Arrow / JSON records/s (medians): {ratio:.2f}x  (target >= 5x: {'met' if ratio >= 5 else 'NOT met'})")
+    print(f"Arrow / JSON records per server CPU-second (medians): {per_cpu['arrow'] / per_cpu['json']:.2f}x")
     print(f"Arrow body, JSON answer / JSON: {medians['arrow-in-json-out'] / medians['json']:.2f}x (no target)")
     failed = sum(r["failed"] for results in runs.values() for r in results)
     print(f"failed requests over all runs: {failed}; total time {time.monotonic() - started:.0f} s; server stopped")

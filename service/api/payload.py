@@ -76,8 +76,8 @@ def wants_arrow(request: Request) -> bool:
     wildcard): ``Accept: application/vnd.apache.arrow.stream``. Every other Accept (none, */*, JSON, or a
     type we cannot produce) gets JSON: RFC 9110 section 12.5.1 lets a server disregard Accept rather than
     answer 406, and an answer's Content-Type always says which format it is."""
-    accept = request.headers.get("accept")
-    if not accept or "arrow" not in accept:
+    accept = request.headers.get("accept", "").lower()
+    if "arrow" not in accept:              # the common case, decided without parsing
         return False
     arrow_q, json_q = 0.0, 0.0
     for media_type, q in _accept_ranges(accept):

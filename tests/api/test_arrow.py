@@ -443,6 +443,7 @@ def test_other_content_types_are_415_naming_arrow_and_fit_does_not_take_arrow(wi
     (f"{ARROW};q=0, */*", False),
     ("text/csv", False),                     # a type we cannot produce: JSON (documented), not 406
     (f"text/html, {ARROW};q=0.9", True),
+    ("Application/Vnd.Apache.Arrow.Stream", True),        # media types are case-insensitive (RFC 9110 8.3.1)
 ])
 def test_accept_chooses_the_answer_format(wine_client, wine, accept, arrow_answer):
     # RFC 9110 section 12.5.1: the highest q wins; the server may disregard an Accept it cannot meet.

@@ -11,8 +11,10 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pytest
+from click.testing import CliRunner
 
 from segscore.client import Client, InvalidInput
+from service.cli import main
 from service.client import _arrow
 
 NAME = "wines"
@@ -121,6 +123,25 @@ def test_drift_of_a_large_frame_and_file_goes_as_arrow_with_the_same_report(clie
     for got, want in zip(by_arrow, by_csv):
         strip = {"id", "created_at"}
         assert {k: v for k, v in got.items() if k not in strip} == {k: v for k, v in want.items() if k not in strip}
+
+
+def test_cli_assign_and_drift_of_large_files_use_arrow(clients, recorded, client, wine, tmp_path):
+    _, csv = clients
+    source = tmp_path / "in.csv"
+    big_frame(wine, 6_000, seed=5).to_csv(source, index=False)
+    runner = CliRunner(env={"COLUMNS": "240", "NO_COLOR": "1"})
+    result = runner.invoke(main, ["assign", NAME, str(source), "-o", str(tmp_path / "out.csv")],
+                           obj=lambda url, key: Client(http=client))
+    assert result.exit_code == 0, result.output
+    result = runner.invoke(main, ["drift", NAME, str(source), "--json"], obj=lambda url, key: Client(http=client))
+    assert result.exit_code == 0, result.output
+    assert recorded == [ARROW, ARROW]                     # one 6,000-row assign batch; a 1.2 MB drift file
+    csv.assign_csv(NAME, source, tmp_path / "by_csv.csv", columns=("segment", "label", "distance", "outlier"))
+    got = pd.read_csv(tmp_path / "out.csv", keep_default_na=False, dtype=str)
+    want = pd.read_csv(tmp_path / "by_csv.csv", keep_default_na=False, dtype=str)
+    assert list(got.columns) == list(want.columns)
+    assert got["segment"].tolist() == want["segment"].tolist() and got["outlier"].tolist() == want["outlier"].tolist()
+    np.testing.assert_allclose(got["distance"].astype(float), want["distance"].astype(float), rtol=1e-12, atol=0)
 
 
 def test_small_tables_still_go_as_csv(clients, recorded, wine, tmp_path):
