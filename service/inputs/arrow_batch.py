@@ -11,12 +11,16 @@ any number of record batches of one schema. The rules are those of a CSV body, c
 - a null is a missing value; NaN, infinities and ``|x| > MAX_ABS_VALUE`` are per-record problems naming record
   and field, exactly as in JSON (NaN is never a missing value);
 - the ``id_column``, when present, holds integers or strings (a null id gets the row index, as in JSON);
-- more than ``max_rows`` rows is a 413, counted batch by batch before the table is put together; a body that
-  is not an Arrow stream (garbage, truncated, an Arrow *file*, failing validation) is a 400 saying so.
+- more than ``max_rows`` rows is a 413, counted from the messages' headers before any batch is decoded; a
+  body that is not an Arrow stream (garbage, truncated, an Arrow *file*, failing validation) is a 400 saying so;
+- compressed buffers (the format's optional LZ4/ZSTD body compression) are a 422: their decompressed size is
+  only known once they are decompressed, so a small body could claim gigabytes. Uncompressed, every buffer
+  is a view of the body, and memory stays within the body-size limit.
 """
 
 from __future__ import annotations
 
+import struct
 from typing import Any, Sequence
 
 import numpy as np
@@ -31,23 +35,92 @@ ARROW_STREAM_TYPE = "application/vnd.apache.arrow.stream"
 _FILE_MAGIC = b"ARROW1"
 
 
+class _Flatbuffer:
+    """Just enough of the FlatBuffers layout (https://flatbuffers.dev/internals/) to read a few scalar fields of
+    an Arrow message header (format/Message.fbs) without decoding the message; every read is bounds-checked."""
+
+    def __init__(self, data: bytes) -> None:
+        self.data = data
+
+    def read(self, fmt: str, position: int) -> int:
+        if position < 0 or position + struct.calcsize(fmt) > len(self.data):
+            raise ValueError("a message header points outside itself")
+        return struct.unpack_from(fmt, self.data, position)[0]
+
+    def root(self) -> int:
+        return self.read("<I", 0)
+
+    def field(self, table: int, index: int) -> int | None:
+        """Absolute position of field ``index`` of the table at ``table``, None when it is absent."""
+        vtable = table - self.read("<i", table)
+        if 4 + 2 * index + 2 > self.read("<H", vtable):
+            return None
+        offset = self.read("<H", vtable + 4 + 2 * index)
+        return table + offset if offset else None
+
+    def table_at(self, position: int) -> int:
+        return position + self.read("<I", position)
+
+
+_RECORD_BATCH, _DICTIONARY_BATCH = 3, 2         # MessageHeader union tags (format/Message.fbs)
+
+
+def _batch_header(metadata: bytes) -> tuple[int, bool] | None:
+    """(row count, compressed?) of a record or dictionary batch message; None for other messages."""
+    header = _Flatbuffer(metadata)
+    message = header.root()
+    kind_at, body_at = header.field(message, 1), header.field(message, 2)
+    kind = header.read("<B", kind_at) if kind_at is not None else 0
+    if kind not in (_RECORD_BATCH, _DICTIONARY_BATCH) or body_at is None:
+        return None
+    batch = header.table_at(body_at)
+    if kind == _DICTIONARY_BATCH:                  # DictionaryBatch { id, data: RecordBatch, isDelta }
+        data_at = header.field(batch, 1)
+        if data_at is None:
+            return None
+        batch = header.table_at(data_at)
+    length_at = header.field(batch, 0)             # RecordBatch { length, nodes, buffers, compression, ... }
+    length = header.read("<q", length_at) if length_at is not None else 0
+    return length, header.field(batch, 3) is not None
+
+
+def _check_messages(buffer: pa.Buffer, max_rows: int) -> None:
+    """Rows and compression from the message headers alone (nothing is decoded or decompressed here)."""
+    rows = 0
+    for message in pa.ipc.MessageReader.open_stream(buffer):
+        facts = _batch_header(message.metadata.to_pybytes())
+        if facts is None:
+            continue
+        length, compressed = facts
+        if compressed:
+            raise InvalidInput("compressed Arrow IPC buffers (LZ4 or ZSTD body compression) are not accepted: "
+                               "their size is only known after decompression; send the stream uncompressed "
+                               "(pyarrow: IpcWriteOptions(compression=None), the default)", field="body")
+        if message.type == "record batch":
+            rows += length
+            if rows > max_rows:
+                raise PayloadTooLarge(f"the batch has more than {max_rows} records; the limit is {max_rows}")
+
+
 def read_arrow_stream(body: bytes, max_rows: int) -> pa.Table:
     """The body's record batches as one table (zero-copy views of ``body``), fully validated."""
     if body[:6] == _FILE_MAGIC:
         raise BadBody("the body is an Arrow IPC file (random-access format, starts with 'ARROW1'); send the "
                       f"stream format ({ARROW_STREAM_TYPE}, pyarrow.ipc.new_stream)")
+    buffer = pa.py_buffer(body)
     try:
-        reader = pa.ipc.open_stream(pa.py_buffer(body))
-        batches, rows = [], 0
+        _check_messages(buffer, max_rows)
+        reader = pa.ipc.open_stream(buffer)
+        batches = []
         for batch in reader:
-            rows += batch.num_rows
-            if rows > max_rows:
-                raise PayloadTooLarge(f"the batch has more than {max_rows} records; the limit is {max_rows}")
             # Full validation: offsets and lengths inside the body, valid UTF-8, so a crafted stream cannot
             # make a later step read outside its buffers.
             batch.validate(full=True)
             batches.append(batch)
-        return pa.Table.from_batches(batches, schema=reader.schema)
+        table = pa.Table.from_batches(batches, schema=reader.schema)
+        for field in table.schema:      # names and types must be valid UTF-8 (a UnicodeDecodeError otherwise)
+            _ = (field.name, str(field.type))
+        return table
     except (pa.ArrowException, OSError, ValueError) as exc:
         raise BadBody(f"the body is not a valid Arrow IPC stream: {printable(str(exc))[:200]}") from None
 

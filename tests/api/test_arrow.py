@@ -466,3 +466,47 @@ def test_openapi_describes_arrow_bodies_and_answers(app_client):
         assert "application/json" in operation["responses"]["200"]["content"]
     fit_operation = schema["paths"]["/v1/segmentations/{name}/fit"]["post"]
     assert ARROW not in fit_operation["requestBody"]["content"]
+
+
+def test_compressed_streams_are_422_before_anything_is_decompressed(wine_client, wine):
+    # Arrow's optional body compression (LZ4 frame, ZSTD): the decompressed size is only known afterwards.
+    table = arrow_table(small_table(wine))
+    for codec in ("lz4", "zstd"):
+        sink = pa.BufferOutputStream()
+        with pa.ipc.new_stream(sink, table.schema, options=pa.ipc.IpcWriteOptions(compression=codec)) as writer:
+            writer.write_table(table)
+        response = post(wine_client, "wine", "assign", sink.getvalue().to_pybytes(), ARROW)
+        assert response.status_code == 422, response.text
+        assert "compressed" in response.json()["detail"][0]["message"]
+
+
+def test_mutated_streams_are_refused_with_a_4xx_or_read_never_crash(wine):
+    # Seeded mutations of a valid stream (bytes overwritten, cut, inserted) straight into the decoder: each
+    # ends as a Batch or as a ServiceError whose status is a 4xx (service.app's table), nothing else.
+    from service.app import status_for
+    from service.errors import ServiceError
+    from service.inputs.arrow_batch import batch_from_arrow, read_arrow_stream
+
+    columns = small_table(wine, n=40)
+    body = stream(arrow_table(columns))
+    features = list(wine.feature_names)
+    rng = np.random.default_rng(0)
+    outcomes = {"read": 0, "refused": 0}
+    for _ in range(1500):
+        data = bytearray(body)
+        how = rng.integers(3)
+        at = int(rng.integers(len(data)))
+        if how == 0:
+            for position in rng.integers(0, len(data), int(rng.integers(1, 8))):
+                data[int(position)] = int(rng.integers(256))
+        elif how == 1:
+            del data[at:]
+        else:
+            data[at:at] = bytes(rng.integers(0, 256, int(rng.integers(1, 16)), dtype=np.uint8))
+        try:
+            batch_from_arrow(read_arrow_stream(bytes(data), 5_000), features, "id")
+            outcomes["read"] += 1
+        except ServiceError as error:
+            assert 400 <= status_for(error) < 500, error
+            outcomes["refused"] += 1
+    assert outcomes["refused"] > 100 and sum(outcomes.values()) == 1500
