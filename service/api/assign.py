@@ -13,7 +13,14 @@ from fastapi.responses import Response
 from schemas import AssignResponse
 from schemas.assign import AssignRequest
 from service.api import arrow_answers
-from service.api.payload import ARROW_STREAM_TYPE, read_version_batch, request_body_openapi, too_many_missing, wants_arrow
+from service.api.payload import (
+    ARROW_STREAM_TYPE,
+    VARY_ACCEPT,
+    read_version_batch,
+    request_body_openapi,
+    too_many_missing,
+    wants_arrow,
+)
 from service.api.validation import StrictQuery, VersionNumber, error_responses
 from service.core.assign import Assignment, assign, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
@@ -25,7 +32,6 @@ router = APIRouter(prefix="/segmentations", tags=["assign"])
 
 RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per record", arrow=True,
                                     answer=AssignResponse)
-VARY_ACCEPT = {"Vary": "Accept"}      # the answer's format follows the request's Accept
 _REASONS = ([], ["distance"], ["residual"], ["distance", "residual"])
 _NO_IMPUTED: list[str] = []
 

@@ -14,10 +14,16 @@ from pydantic import BeforeValidator
 
 from schemas import DriftReport, DriftReportList
 from schemas.assign import AssignRequest
-from service.api.assign import run_assignment, split_good_rows
 from service.api import arrow_answers
-from service.api.assign import VARY_ACCEPT
-from service.api.payload import ARROW_STREAM_TYPE, check_name, read_version_batch, request_body_openapi, wants_arrow
+from service.api.assign import run_assignment, split_good_rows
+from service.api.payload import (
+    ARROW_STREAM_TYPE,
+    VARY_ACCEPT,
+    check_name,
+    read_version_batch,
+    request_body_openapi,
+    wants_arrow,
+)
 from service.api.validation import StrictQuery, VersionNumber, error_responses, plain_decimal
 from service.core.drift import DriftRules, compute_drift
 from service.core.frame import MAX_LISTED_PROBLEMS

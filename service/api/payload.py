@@ -23,6 +23,8 @@ from service.errors import (
     RecordProblem,
     UnsupportedMediaType,
 )
+from service.inputs.arrow_batch import ARROW_STREAM_TYPE, batch_from_arrow, read_arrow_stream
+
 # The body checks live in service.inputs (shared with the CLI); re-exported for the routes.
 from service.inputs.checks import (  # noqa: F401
     NAME_PATTERN,
@@ -32,13 +34,13 @@ from service.inputs.checks import (  # noqa: F401
     parse_json,
     records_of,
 )
-from service.inputs.arrow_batch import ARROW_STREAM_TYPE, batch_from_arrow, read_arrow_stream
 from service.settings import Settings
 from service.store import BundleStore, LoadedVersion
 
 CSV_TYPES = ("text/csv", "application/csv")
 JSON_TYPES = ("application/json",)
 BodyKind = Literal["json", "csv", "arrow"]
+VARY_ACCEPT = {"Vary": "Accept"}      # headers of an answer whose format follows the request's Accept
 
 
 def body_kind(request: Request, *, arrow: bool = False) -> BodyKind:

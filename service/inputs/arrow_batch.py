@@ -27,8 +27,20 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from service.core.frame import MAX_ABS_VALUE, Batch, _ids, _too_large_message, did_you_mean
-from service.errors import BadBody, FeatureMismatch, InvalidInput, PayloadTooLarge, RecordProblem
+from service.core.frame import (
+    MAX_ABS_VALUE,
+    Batch,
+    _ids,
+    _too_large_message,
+    did_you_mean,
+)
+from service.errors import (
+    BadBody,
+    FeatureMismatch,
+    InvalidInput,
+    PayloadTooLarge,
+    RecordProblem,
+)
 from service.inputs.checks import printable
 
 ARROW_STREAM_TYPE = "application/vnd.apache.arrow.stream"
