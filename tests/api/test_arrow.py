@@ -510,3 +510,77 @@ def test_mutated_streams_are_refused_with_a_4xx_or_read_never_crash(wine):
             assert 400 <= status_for(error) < 500, error
             outcomes["refused"] += 1
     assert outcomes["refused"] > 100 and sum(outcomes.values()) == 1500
+
+
+# --------------------------------------------------------------------------- large bodies (issue 9's mechanism)
+def two_feature_stream(n: int) -> bytes:
+    return stream(pa.table({"a": pa.array([float(i % 17) for i in range(n)]),
+                            "b": pa.array([float(i % 5) + 0.5 * (i % 3) for i in range(n)])}))
+
+
+def two_feature_fit(client) -> None:
+    records = [{"a": float(i % 17), "b": float(i % 5) + 0.5 * (i % 3)} for i in range(200)]
+    assert client.post("/v1/segmentations/x/fit", json={"records": records, "k": 2}).status_code == 201
+
+
+def test_large_arrow_bodies_are_decoded_in_a_worker_thread(tmp_path, monkeypatch):
+    import sniffio
+
+    import service.api.payload as payload
+
+    where = []
+    real = payload._parse_batch
+
+    def spy(kind, *args):
+        try:
+            where.append((kind, sniffio.current_async_library()))
+        except sniffio.AsyncLibraryNotFoundError:
+            where.append((kind, "worker thread"))
+        return real(kind, *args)
+
+    monkeypatch.setattr(payload, "_parse_batch", spy)
+    with TestClient(create_app(Settings(store_dir=tmp_path / "s", large_body_bytes=1024))) as client:
+        two_feature_fit(client)
+        small, large = two_feature_stream(1), two_feature_stream(300)
+        assert len(small) <= 1024 < len(large)
+        for body in (small, large):
+            assert post(client, "x", "assign", body, ARROW, accept=ARROW).status_code == 200
+    assert where == [("arrow", "asyncio"), ("arrow", "worker thread")]
+
+
+def test_large_arrow_requests_wait_for_a_large_body_slot(tmp_path, monkeypatch):
+    # With large_body_concurrency = 1, a second large Arrow request waits until the first one has been decoded.
+    import threading
+
+    import service.api.payload as payload
+
+    settings = Settings(store_dir=tmp_path / "s", large_body_bytes=1024, large_body_concurrency=1)
+    inside, release, entered = [], threading.Event(), threading.Event()
+    real = payload._parse_batch
+
+    def slow(*args):
+        inside.append(1)
+        entered.set()
+        assert release.wait(30)
+        inside.append(-1)
+        return real(*args)
+
+    with TestClient(create_app(settings)) as client:
+        two_feature_fit(client)
+        monkeypatch.setattr(payload, "_parse_batch", slow)
+        results = []
+        body = two_feature_stream(300)
+
+        def send():
+            results.append(post(client, "x", "assign", body, ARROW, accept=ARROW).status_code)
+
+        threads = [threading.Thread(target=send) for _ in range(2)]
+        threads[0].start()
+        assert entered.wait(30)
+        threads[1].start()
+        threads[1].join(1.0)               # not a timing assertion: the second must not get in while we hold
+        assert inside == [1]
+        release.set()
+        for thread in threads:
+            thread.join(60)
+        assert results == [200, 200] and inside == [1, -1, 1, -1]
