@@ -9,7 +9,8 @@
 A CSV file's cells are text; here they become typed columns only where that cannot change what the server
 would read: a column whose every non-empty cell is a plain number (``NUMBER``) becomes int64, uint64 or
 float64 (Arrow's parser, correctly rounded), a column without any number stays text, an empty cell is a null
-(the CSV form's missing value). A column that mixes numbers with other text (``1.5`` and ``n/a``, ``nan``,
+(the CSV form's missing value). A 422 about a whole column (its Arrow type: an id column of decimals, a
+feature column of text) sends the batch again as CSV. A column that mixes numbers with other text (``1.5`` and ``n/a``, ``nan``,
 `` 2`` with a space) makes the batch go as CSV, so that the server names the record and field exactly as it does
 for CSV. Nothing here quotes a cell value.
 """
@@ -17,6 +18,8 @@ for CSV. Nothing here quotes a cell value.
 from __future__ import annotations
 
 import csv
+from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -33,6 +36,22 @@ ARROW_STREAM_TYPE = "application/vnd.apache.arrow.stream"
 ARROW_MIN_ROWS = 1_000
 ARROW_MIN_FILE_BYTES = 1 << 20
 NUMBER = r"^[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?$"
+
+
+@dataclass(frozen=True)
+class ArrowBatch:
+    """A batch to send as Arrow, with its CSV form (made on demand) for the case the server refuses a column."""
+
+    table: pa.Table
+    csv: Callable[[], bytes]
+
+
+def column_refusal(detail: Any) -> bool:
+    """True for a 422 about whole columns only (no record named): a column's Arrow type, say an id column of
+    floats or a text feature. The batch is then sent again as CSV, which the server reads by its own rules (a
+    CSV id is text; a text cell is a per-record problem), so the answer is exactly the CSV path's."""
+    return isinstance(detail, list) and bool(detail) and all(
+        isinstance(item, dict) and item.get("record") is None for item in detail)
 
 
 def stream_bytes(table: pa.Table) -> bytes:

@@ -25,7 +25,14 @@ import pandas as pd
 import pyarrow as pa
 
 from service.client import _arrow
-from service.client._errors import ApiError, LocalInputError, ServerUnreachable, UnexpectedResponse, api_error
+from service.client._errors import (
+    ApiError,
+    InvalidInput,
+    LocalInputError,
+    ServerUnreachable,
+    UnexpectedResponse,
+    api_error,
+)
 from service.client._files import CHUNK_BYTES, csv_chunks, open_text
 
 DEFAULT_URL = "http://127.0.0.1:8000"
@@ -285,22 +292,29 @@ class Client:
                 raise
         return {"version": run.version, "rows": run.rows, "assigned": run.assigned, "errors": run.errors}
 
-    def _frame_body(self, frame: pd.DataFrame) -> bytes | pa.Table:
+    def _frame_body(self, frame: pd.DataFrame) -> bytes | _arrow.ArrowBatch:
         """A DataFrame batch as an Arrow table when it is large (and Arrow can hold it), else as CSV bytes."""
         if self.arrow and len(frame) >= _arrow.ARROW_MIN_ROWS:
             table = _arrow.table_from_frame(frame)
             if table is not None:
-                return table
+                return _arrow.ArrowBatch(table, lambda: frame.to_csv(index=False).encode("utf-8"))
         return frame.to_csv(index=False).encode("utf-8")
 
-    def _assign_body(self, name: str, body: bytes | pa.Table, version: int | None, on_error: str) -> dict[str, Any]:
+    def _assign_body(self, name: str, body: bytes | _arrow.ArrowBatch, version: int | None,
+                     on_error: str) -> dict[str, Any]:
         """One assign batch: CSV bytes, or an Arrow table (sent and answered as Arrow IPC streams)."""
         params = _scoring_params(version, on_error)
-        if isinstance(body, pa.Table):
-            answer = self._request("POST", self._path(name, "assign"), params=params,
-                                   content=_arrow.stream_bytes(body), content_type=_arrow.ARROW_STREAM_TYPE,
-                                   accept=_arrow.ARROW_STREAM_TYPE)
-            return _arrow.assign_answer(answer) if isinstance(answer, bytes) else answer
+        if isinstance(body, _arrow.ArrowBatch):
+            try:
+                answer = self._request("POST", self._path(name, "assign"), params=params,
+                                       content=_arrow.stream_bytes(body.table), content_type=_arrow.ARROW_STREAM_TYPE,
+                                       accept=_arrow.ARROW_STREAM_TYPE)
+            except InvalidInput as error:
+                if not _arrow.column_refusal(error.detail):
+                    raise
+                body = body.csv()           # the CSV form, whose refusal (if any) names the records
+            else:
+                return _arrow.assign_answer(answer) if isinstance(answer, bytes) else answer
         return self._request("POST", self._path(name, "assign"), params=params, content=body,
                              content_type="text/csv")
 
@@ -312,8 +326,12 @@ class Client:
             return self._request("POST", path, params=params, document={"records": data})
         table = self._large_table(data)
         if table is not None:
-            return self._request("POST", path, params=params, content=_arrow.stream_bytes(table),
-                                 content_type=_arrow.ARROW_STREAM_TYPE)
+            try:
+                return self._request("POST", path, params=params, content=_arrow.stream_bytes(table),
+                                     content_type=_arrow.ARROW_STREAM_TYPE)
+            except InvalidInput as error:
+                if not _arrow.column_refusal(error.detail):
+                    raise
         return self._request("POST", path, params=params, content=_csv_content(data), content_type="text/csv")
 
     def _large_table(self, data: Any) -> pa.Table | None:
@@ -344,7 +362,7 @@ class _AssignRun:
         self.version, self.rows, self.assigned = version, 0, 0
         self.errors: list[dict[str, Any]] = []
 
-    def send(self, batches: Iterator[tuple[bytes | pa.Table, int, Any]]) -> Iterator[tuple[Any, list[dict[str, Any] | None]]]:
+    def send(self, batches: Iterator[tuple[bytes | _arrow.ArrowBatch, int, Any]]) -> Iterator[tuple[Any, list[dict[str, Any] | None]]]:
         for body, n_rows, payload in batches:
             start = self.rows
             try:
@@ -397,16 +415,16 @@ def _shift_records(items: Any, offset: int) -> None:
 
 
 def _csv_batches(reader: Any, header: list[str], source: Path, batch_rows: int,
-                 arrow_min_rows: int | None = None) -> Iterator[tuple[bytes | pa.Table, int, Any]]:
+                 arrow_min_rows: int | None = None) -> Iterator[tuple[bytes | _arrow.ArrowBatch, int, Any]]:
     """Batches of ``batch_rows`` data rows as (CSV text with the header, row count, the rows); a batch of at
     least ``arrow_min_rows`` rows as an Arrow table instead, unless a column mixes numbers and text. Blank
     lines are dropped; a row with another field count than the header is refused, naming its line."""
 
-    def body(rows: list[list[str]]) -> bytes | pa.Table:
+    def body(rows: list[list[str]]) -> bytes | _arrow.ArrowBatch:
         if arrow_min_rows is not None and len(rows) >= arrow_min_rows:
             table = _arrow.table_from_rows(header, rows)
             if table is not None:
-                return table
+                return _arrow.ArrowBatch(table, lambda: _csv_text([header, *rows]))
         return _csv_text([header, *rows])
 
     rows: list[list[str]] = []

@@ -172,3 +172,20 @@ def test_csv_cells_become_typed_columns_only_when_nothing_can_change(cells, expe
         assert table is None
     else:
         assert table.column("c").combine_chunks().equals(expected)
+
+
+def test_a_column_refused_for_its_arrow_type_is_sent_again_as_csv(clients, recorded, wine):
+    # The frame's id column holds decimals: a float64 Arrow column, which is no id type (as a JSON float is
+    # not), while the CSV form's id is the text written, a valid id. The client sends that batch again as CSV.
+    arrow, csv = clients
+    frame = big_frame(wine, 1_200, seed=6)
+    frame["wine_id"] = np.arange(1_200) + 0.5
+    got = arrow.assign(NAME, frame, batch_rows=1_200)
+    assert recorded == [ARROW, "text/csv"]
+    assert_same_columns(got, csv.assign(NAME, frame, batch_rows=1_200))
+    # A feature column of text: the CSV form's refusal names every record (here the first of them).
+    frame["hue"] = "pale"
+    with pytest.raises(InvalidInput) as caught:
+        arrow.drift(NAME, frame)
+    assert recorded[-2:] == [ARROW, "text/csv"]
+    assert (caught.value.detail[0]["record"], caught.value.detail[0]["field"]) == (0, "hue")
