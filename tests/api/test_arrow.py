@@ -584,3 +584,22 @@ def test_large_arrow_requests_wait_for_a_large_body_slot(tmp_path, monkeypatch):
         for thread in threads:
             thread.join(60)
         assert results == [200, 200] and inside == [1, -1, 1, -1]
+
+
+def test_drift_arrow_answer_carries_skipped_records_and_an_all_missing_feature(client):
+    fit_drift(client)
+    x = draw(200, 13)
+    x[:, 3] = np.nan                                 # a feature sent as nulls only (the missing-share test)
+    columns = drift_columns(x)
+    columns["spend"][7] = float("inf")               # one bad record, left out with on_error=skip
+    import json as std_json
+    records = [{k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in r.items()}
+               for r in as_records(columns)]
+    want = post(client, "shoppers", "drift", std_json.dumps({"records": records}).encode(), "application/json",
+                query="?on_error=skip").json()
+    assert want["skipped_records"] == 1 and want["errors"][0]["record"] == 7
+    answered = post(client, "shoppers", "drift", stream(arrow_table(columns)), ARROW, accept=ARROW,
+                    query="?on_error=skip")
+    assert answered.status_code == 200, answered.text
+    row = read_stream(answered.content).to_pylist()[0]
+    assert_arrow_row_holds(without_identity(row), without_identity(want))
