@@ -22,7 +22,7 @@
     │   └── FitCancelled         the fit's job was cancelled; its worker was stopped
     ├── BodyTimeout              the client stopped sending its body
     ├── PayloadTooLarge
-    ├── UnsupportedMediaType     body neither JSON nor CSV
+    ├── UnsupportedMediaType     body neither JSON nor CSV (nor Arrow, where a route takes it)
     ├── InvalidInput             well-formed body, unusable content
     │   ├── InvalidRecords       per-record problems (index and field)
     │   └── FeatureMismatch      columns the version needs are absent
@@ -177,9 +177,14 @@ class PayloadTooLarge(ServiceError):
 class UnsupportedMediaType(ServiceError):
     """The body must be JSON ('Content-Type: application/json') or CSV ('Content-Type: text/csv')."""
 
-    def __init__(self, content_type: str) -> None:
+    def __init__(self, content_type: str, also: tuple[str, ...] = ()) -> None:
+        """``also``: media types the route takes besides JSON and CSV (assign and drift: Arrow)."""
         shown = repr(content_type) if content_type else "none"
-        super().__init__(f"unsupported Content-Type {shown}; send 'application/json' or 'text/csv'")
+        if also:
+            accepted = ", ".join(f"'{t}'" for t in ("application/json", "text/csv", *also))
+            super().__init__(f"unsupported Content-Type {shown}; send one of {accepted}")
+        else:
+            super().__init__(f"unsupported Content-Type {shown}; send 'application/json' or 'text/csv'")
 
 
 @dataclass(frozen=True)

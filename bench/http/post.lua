@@ -1,6 +1,7 @@
 -- wrk script: POST the file named by the first script argument (content type: second argument, default
--- application/json) on every request, and print one machine-readable summary line at the end.
---   wrk -t1 -c16 -d10s --latency -s post.lua http://127.0.0.1:8000/path -- body.json [content-type]
+-- application/json; Accept: third argument, if any) on every request, and print one machine-readable summary
+-- line at the end.
+--   wrk -t1 -c16 -d10s --latency -s post.lua http://127.0.0.1:8000/path -- body.json [content-type [accept]]
 
 function init(args)
    local path = args[1]
@@ -9,6 +10,9 @@ function init(args)
    handle:close()
    wrk.method = "POST"
    wrk.headers["Content-Type"] = args[2] or "application/json"
+   if args[3] then
+      wrk.headers["Accept"] = args[3]
+   end
 end
 
 function done(summary, latency, requests)

@@ -15,8 +15,16 @@ from starlette.routing import Match, Route
 
 from schemas import AssignResponse
 from schemas.assign import AssignRequest
-from service.api.payload import read_version_batch, request_body_openapi, too_many_missing
-from service.api.validation import PLAIN_DECIMAL, MAX_VERSION, StrictQuery, VersionNumber, error_responses
+from service.api import arrow_answers
+from service.api.payload import (
+    ARROW_STREAM_TYPE,
+    VARY_ACCEPT,
+    read_version_batch,
+    request_body_openapi,
+    too_many_missing,
+    wants_arrow,
+)
+from service.api.validation import MAX_VERSION, PLAIN_DECIMAL, StrictQuery, VersionNumber, error_responses
 from service.core.assign import Assignment, assign, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
 from service.deps import AssignScope, SettingsDep, StoreDep, authorize, bearer_key
@@ -27,7 +35,8 @@ from service.store import BundleStore, LoadedVersion
 router = APIRouter(prefix="/segmentations", tags=["assign"])
 ASSIGN_SCOPE = AssignScope.dependency.required_scope     # the lean route checks the same scope
 
-RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per record")
+RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per record", arrow=True,
+                                    answer=AssignResponse)
 _REASONS = ([], ["distance"], ["residual"], ["distance", "residual"])
 _NO_IMPUTED: list[str] = []
 
@@ -122,7 +131,8 @@ async def assign_records(
 async def answer_assign(request: Request, name: str, version: int | None, on_error: str, settings: Settings,
                         store: BundleStore) -> Response:
     """The route's work once the caller is authorized and the query is read: body -> checked batch ->
-    scoring (``run_assignment``) -> counters -> answer (``build_results``)."""
+    scoring (``run_assignment``) -> counters -> answer (``build_results``, or Arrow when Accept asks for it)."""
+    arrow = wants_arrow(request)          # Accept: the answer's format (JSON unless Arrow is asked for)
     loaded, labels, batch = await read_version_batch(request, store, name, version, settings=settings,
                                                      max_rows=settings.max_assign_rows, echo_ids=True)
     features = loaded.compiled.features
@@ -130,8 +140,11 @@ async def answer_assign(request: Request, name: str, version: int | None, on_err
     rows, errors = split_good_rows(batch, on_error == "skip")
     values = batch.values if rows.size == batch.values.shape[0] else batch.values[rows]
 
-    def compute() -> tuple[list[dict[str, Any]], Assignment]:
+    def compute() -> tuple[Any, Assignment]:
         result, missing = run_assignment(loaded, values, rows, may_have_nan=batch.may_have_nan)
+        if arrow:
+            return arrow_answers.assign_answer(name, loaded.version, features, labels, loaded.compiled.k, batch.ids,
+                                               rows, result, missing, errors), result
         return build_results(loaded, labels, batch.ids, rows, result, missing), result
 
     if rows.size <= settings.inline_assign_rows:
@@ -139,8 +152,10 @@ async def answer_assign(request: Request, name: str, version: int | None, on_err
     else:
         results, assignment = await anyio.to_thread.run_sync(compute)
     count_assigned(request.app.state.metrics, name, loaded.version, assignment)
+    if arrow:
+        return Response(results, media_type=ARROW_STREAM_TYPE, headers=VARY_ACCEPT)
     body = {"name": name, "version": loaded.version, "results": results, "errors": errors}
-    return Response(orjson.dumps(body), media_type="application/json")
+    return Response(orjson.dumps(body), media_type="application/json", headers=VARY_ACCEPT)
 
 
 # --------------------------------------------------------------------------- the lean path

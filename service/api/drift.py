@@ -14,8 +14,16 @@ from pydantic import BeforeValidator
 
 from schemas import DriftReport, DriftReportList
 from schemas.assign import AssignRequest
+from service.api import arrow_answers
 from service.api.assign import run_assignment, split_good_rows
-from service.api.payload import check_name, read_version_batch, request_body_openapi
+from service.api.payload import (
+    ARROW_STREAM_TYPE,
+    VARY_ACCEPT,
+    check_name,
+    read_version_batch,
+    request_body_openapi,
+    wants_arrow,
+)
 from service.api.validation import StrictQuery, VersionNumber, error_responses, plain_decimal
 from service.core.drift import DriftRules, compute_drift
 from service.core.frame import MAX_LISTED_PROBLEMS
@@ -29,7 +37,8 @@ router = APIRouter(prefix="/segmentations", tags=["drift"])
 DEFAULT_LIST_LIMIT = 20
 MAX_LIST_LIMIT = 500
 
-DRIFT_BODY = request_body_openapi(AssignRequest, "header row, then one row per record")
+DRIFT_BODY = request_body_openapi(AssignRequest, "header row, then one row per record", arrow=True,
+                                  answer=DriftReport)
 
 
 def drift_rules(settings: Settings) -> DriftRules:
@@ -77,6 +86,7 @@ async def create_drift_report(
 ) -> Response:
     # Ids are not echoed in a drift report, so an id_column need not be present. Missing values are kept
     # (no "too many missing" rule as in assign): a feed sending nulls is what the missing-share test is for.
+    arrow = wants_arrow(request)          # Accept: the answer's format (JSON unless Arrow is asked for)
     loaded, _, batch = await read_version_batch(request, store, name, version, settings=settings,
                                              max_rows=settings.max_drift_rows, echo_ids=False)
     rows, errors = split_good_rows(batch, on_error == "skip")
@@ -89,7 +99,10 @@ async def create_drift_report(
     report = await anyio.to_thread.run_sync(build_and_store, store, loaded, values, drift_rules(settings), errors,
                                             rows)
     request.app.state.metrics.drift_report(report)
-    return Response(orjson.dumps(report), media_type="application/json")
+    if arrow:
+        body = await anyio.to_thread.run_sync(arrow_answers.drift_answer, report)
+        return Response(body, media_type=ARROW_STREAM_TYPE, headers=VARY_ACCEPT)
+    return Response(orjson.dumps(report), media_type="application/json", headers=VARY_ACCEPT)
 
 
 @router.get("/{name}/drift", response_model=DriftReportList, dependencies=[DriftScope, StrictQuery],

@@ -1,4 +1,5 @@
-"""Request bodies -> Python objects or a Batch: media types, size limits, JSON (orjson) or CSV, names in paths.
+"""Request bodies -> Python objects or a Batch: media types, size limits, JSON (orjson), CSV or Arrow (assign
+and drift only), names in paths; and which answer format a request accepts (JSON or Arrow).
 
 Large bodies (over ``large_body_bytes``) are read by at most ``large_body_concurrency`` requests at once and
 parsed in a worker thread, never on the event loop; a JSON body's records are counted on its bytes before it
@@ -22,6 +23,8 @@ from service.errors import (
     RecordProblem,
     UnsupportedMediaType,
 )
+from service.inputs.arrow_batch import ARROW_STREAM_TYPE, batch_from_arrow, read_arrow_stream
+
 # The body checks live in service.inputs (shared with the CLI); re-exported for the routes.
 from service.inputs.checks import (  # noqa: F401
     NAME_PATTERN,
@@ -36,17 +39,55 @@ from service.store import BundleStore, LoadedVersion
 
 CSV_TYPES = ("text/csv", "application/csv")
 JSON_TYPES = ("application/json",)
-BodyKind = Literal["json", "csv"]
+BodyKind = Literal["json", "csv", "arrow"]
+VARY_ACCEPT = {"Vary": "Accept"}      # headers of an answer whose format follows the request's Accept
 
 
-def body_kind(request: Request) -> BodyKind:
-    """'json' or 'csv' from the Content-Type; anything else (text/plain, forms, none) is a 415."""
+def body_kind(request: Request, *, arrow: bool = False) -> BodyKind:
+    """'json' or 'csv' (or, with ``arrow``, 'arrow') from the Content-Type; anything else (text/plain, forms,
+    none) is a 415."""
     media_type = request.headers.get("content-type", "").split(";")[0].strip().lower()
     if media_type in CSV_TYPES:
         return "csv"
     if media_type in JSON_TYPES or (media_type.startswith("application/") and media_type.endswith("+json")):
         return "json"
-    raise UnsupportedMediaType(media_type)
+    if arrow and media_type == ARROW_STREAM_TYPE:
+        return "arrow"
+    raise UnsupportedMediaType(media_type, also=(ARROW_STREAM_TYPE,) if arrow else ())
+
+
+def _accept_ranges(accept: str) -> list[tuple[str, float]]:
+    """An Accept header's media ranges with their q values (RFC 9110 section 12.5.1); a bad q counts as 0."""
+    ranges = []
+    for item in accept.split(","):
+        media_type, *params = item.split(";")
+        q = 1.0
+        for param in params:
+            key, _, value = param.strip().partition("=")
+            if key.strip().lower() == "q":
+                try:
+                    q = float(value)
+                except ValueError:
+                    q = 0.0
+        ranges.append((media_type.strip().lower(), q))
+    return ranges
+
+
+def wants_arrow(request: Request) -> bool:
+    """True when the request's Accept names the Arrow stream type at least as high as JSON (by name or by a
+    wildcard): ``Accept: application/vnd.apache.arrow.stream``. Every other Accept (none, */*, JSON, or a
+    type we cannot produce) gets JSON: RFC 9110 section 12.5.1 lets a server disregard Accept rather than
+    answer 406, and an answer's Content-Type always says which format it is."""
+    accept = request.headers.get("accept", "").lower()
+    if "arrow" not in accept:              # the common case, decided without parsing
+        return False
+    arrow_q, json_q = 0.0, 0.0
+    for media_type, q in _accept_ranges(accept):
+        if media_type == ARROW_STREAM_TYPE:
+            arrow_q = max(arrow_q, q)
+        elif media_type in ("application/json", "application/*", "*/*"):
+            json_q = max(json_q, q)
+    return arrow_q > 0 and arrow_q >= json_q
 
 
 
@@ -96,6 +137,10 @@ async def off_loop_if_large(body: bytes, settings: Settings, function, *args):
 
 # --------------------------------------------------------------------------- JSON
 def _parse_batch(kind: BodyKind, body: bytes, features: list[str], id_column: str | None, max_rows: int) -> Batch:
+    if kind == "arrow":
+        table = read_arrow_stream(body, max_rows)
+        _check_rows(table.num_rows, max_rows)
+        return batch_from_arrow(table, features, id_column)
     if kind == "csv":
         frame = read_csv(body, id_column, max_rows=max_rows)
         _check_rows(len(frame), max_rows)
@@ -108,8 +153,8 @@ def _parse_batch(kind: BodyKind, body: bytes, features: list[str], id_column: st
 
 async def read_batch(request: Request, features: list[str], id_column: str | None, *, settings: Settings,
                      max_rows: int) -> Batch:
-    """An assign/drift body (JSON or CSV) -> Batch of the version's features."""
-    kind = body_kind(request)
+    """An assign/drift body (JSON, CSV or Arrow) -> Batch of the version's features."""
+    kind = body_kind(request, arrow=True)
     if declared_small(request, settings):
         # A small body (the single-record call): read and parsed here, without a slot or a context manager.
         body = await read_body(request, settings.max_body_bytes)
@@ -152,17 +197,25 @@ def too_many_missing(batch: Batch, features: list[str]) -> None:
         batch.problems.sort(key=lambda p: (p.record if p.record is not None else -1))
 
 
-def request_body_openapi(model: type[BaseModel], csv_description: str) -> dict[str, Any]:
-    """``openapi_extra`` for a route that reads its body itself: the JSON model, or CSV text."""
-    return {
-        "requestBody": {
-            "required": True,
-            "content": {
-                "application/json": {"schema": model.model_json_schema(ref_template="#/components/schemas/{model}")},
-                "text/csv": {"schema": {"type": "string", "description": csv_description}},
-            },
-        }
+def request_body_openapi(model: type[BaseModel], csv_description: str, *, arrow: bool = False,
+                         answer: type[BaseModel] | None = None) -> dict[str, Any]:
+    """``openapi_extra`` for a route that reads its body itself: the JSON model, or CSV text; with ``arrow``
+    also an Arrow IPC stream body, and an Arrow answer (of ``answer``'s fields) beside the JSON one."""
+    content: dict[str, Any] = {
+        "application/json": {"schema": model.model_json_schema(ref_template="#/components/schemas/{model}")},
+        "text/csv": {"schema": {"type": "string", "description": csv_description}},
     }
+    extra: dict[str, Any] = {"requestBody": {"required": True, "content": content}}
+    if arrow:
+        content[ARROW_STREAM_TYPE] = {"schema": {
+            "type": "string", "format": "binary",
+            "description": "Arrow IPC stream: one column per feature (integer, floating point or decimal; null = "
+                           "missing), the id column (integers or strings) if the version has one"}}
+        shape = answer.__name__ if answer is not None else "the JSON answer"
+        extra["responses"] = {"200": {"content": {ARROW_STREAM_TYPE: {"schema": {
+            "type": "string", "format": "binary",
+            "description": f"with 'Accept: {ARROW_STREAM_TYPE}': {shape} as an Arrow IPC stream (see docs/API.md)"}}}}}
+    return extra
 
 
 async def read_version_batch(request: Request, store: BundleStore, name: str, version: int | None, *,

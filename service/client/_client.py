@@ -3,7 +3,9 @@
 Every method sends one request (``assign`` and ``assign_csv``: one per batch) and returns the decoded JSON
 answer, or a DataFrame for ``assign``. Errors are the classes of ``service.client._errors``. Tables go over
 the wire as CSV (a DataFrame through ``DataFrame.to_csv``, whose floats round-trip exactly; a file path is
-streamed as it is), lists of records as JSON.
+streamed as it is), lists of records as JSON; large tables as Apache Arrow IPC streams (``_arrow``: assign
+batches of at least 1,000 rows, drift DataFrames of as many rows and CSV files of at least 1 MiB), with the
+assign answer in Arrow too.
 """
 
 from __future__ import annotations
@@ -21,8 +23,18 @@ from urllib.parse import quote
 
 import httpx2
 import pandas as pd
+import pyarrow as pa
 
-from service.client._errors import ApiError, JobFailed, LocalInputError, ServerUnreachable, UnexpectedResponse, api_error
+from service.client import _arrow
+from service.client._errors import (
+    ApiError,
+    InvalidInput,
+    JobFailed,
+    LocalInputError,
+    ServerUnreachable,
+    UnexpectedResponse,
+    api_error,
+)
 from service.client._files import CHUNK_BYTES, csv_chunks, open_text
 
 DEFAULT_URL = "http://127.0.0.1:8000"
@@ -56,12 +68,16 @@ class Client:
     the server, and it is not closed by ``close``). Use as a context manager or call ``close``.
 
     Data arguments (``fit``, ``drift``) take a list of record dicts (sent as JSON), a pandas DataFrame (sent as
-    CSV; the index is not sent) or the path of a CSV file with a header row (streamed as it is).
+    CSV; the index is not sent) or the path of a CSV file with a header row (streamed as it is). Large ones
+    go as Arrow IPC streams (see ``service.client._arrow`` for the sizes); ``arrow=False`` sends CSV always
+    (for a server older than the Arrow format).
     """
 
     def __init__(self, url: str | None = None, *, key: str | None = None,
                  timeout: httpx2.Timeout | float = DEFAULT_TIMEOUT, fit_timeout: httpx2.Timeout | float = FIT_TIMEOUT,
-                 transport: httpx2.BaseTransport | None = None, http: httpx2.Client | None = None) -> None:
+                 transport: httpx2.BaseTransport | None = None, http: httpx2.Client | None = None,
+                 arrow: bool = True) -> None:
+        self.arrow = arrow
         key = key if key is not None else os.environ.get(KEY_VARIABLE)
         self._headers = {"Authorization": f"Bearer {key}"} if key else {}
         if http is not None:
@@ -94,13 +110,16 @@ class Client:
     # ------------------------------------------------------------------ transport
     def _request(self, method: str, path: str, *, params: Mapping[str, Any] | None = None, document: Any = None,
                  content: bytes | Iterator[bytes] | None = None, content_type: str | None = None,
-                 timeout: Any = httpx2.USE_CLIENT_DEFAULT) -> Any:
-        """Send one request; a JSON ``document`` or raw ``content``. Returns the decoded JSON answer."""
+                 timeout: Any = httpx2.USE_CLIENT_DEFAULT, accept: str | None = None) -> Any:
+        """Send one request; a JSON ``document`` or raw ``content``. Returns the decoded JSON answer (the raw
+        bytes of an Arrow answer, which only a request with ``accept`` set to Arrow gets)."""
         headers = dict(self._headers)
         if document is not None:
             content, content_type = _json_body(document), "application/json"
         if content_type:
             headers["Content-Type"] = content_type
+        if accept:
+            headers["Accept"] = accept
         try:
             response = self._http.request(method, path, params=params, content=content, headers=headers,
                                           timeout=timeout)
@@ -112,6 +131,8 @@ class Client:
             except (ValueError, AttributeError):
                 detail = response.text[:500] or response.reason_phrase
             raise api_error(response.status_code, detail, method=method, path=path)
+        if accept == _arrow.ARROW_STREAM_TYPE and response.headers.get("content-type", "") == accept:
+            return response.content
         try:
             return response.json()
         except ValueError:
@@ -274,8 +295,7 @@ class Client:
             raise LocalInputError(f"assign takes a pandas DataFrame; got {type(frame).__name__}")
         columns = _result_columns(columns, [str(c) for c in frame.columns])
         _positive(batch_rows, "batch_rows")
-        batches = ((frame.iloc[start:start + batch_rows].to_csv(index=False).encode("utf-8"),
-                    min(batch_rows, len(frame) - start), None)
+        batches = ((self._frame_body(frame.iloc[start:start + batch_rows]), min(batch_rows, len(frame) - start), None)
                    for start in range(0, len(frame), batch_rows))
         run = _AssignRun(self, name, version, on_error, total=len(frame), progress=progress)
         values: dict[str, list[Any]] = {c: [] for c in columns}
@@ -315,7 +335,9 @@ class Client:
                 with os.fdopen(fd, "w", newline="", encoding="utf-8") as out:
                     writer = csv.writer(out)
                     writer.writerow([*header, *columns])
-                    for rows, results in run.send(_csv_batches(reader, header, source, batch_rows)):
+                    batches = _csv_batches(reader, header, source, batch_rows,
+                                           _arrow.ARROW_MIN_ROWS if self.arrow else None)
+                    for rows, results in run.send(batches):
                         writer.writerows([*row, *(_csv_cell(None if r is None else r[c]) for c in columns)]
                                          for row, r in zip(rows, results))
                 os.replace(temporary, target)
@@ -324,9 +346,31 @@ class Client:
                 raise
         return {"version": run.version, "rows": run.rows, "assigned": run.assigned, "errors": run.errors}
 
-    def _assign_csv_body(self, name: str, body: bytes, version: int | None, on_error: str) -> dict[str, Any]:
-        return self._request("POST", self._path(name, "assign"), params=_scoring_params(version, on_error),
-                             content=body, content_type="text/csv")
+    def _frame_body(self, frame: pd.DataFrame) -> bytes | _arrow.ArrowBatch:
+        """A DataFrame batch as an Arrow table when it is large (and Arrow can hold it), else as CSV bytes."""
+        if self.arrow and len(frame) >= _arrow.ARROW_MIN_ROWS:
+            table = _arrow.table_from_frame(frame)
+            if table is not None:
+                return _arrow.ArrowBatch(table, lambda: frame.to_csv(index=False).encode("utf-8"))
+        return frame.to_csv(index=False).encode("utf-8")
+
+    def _assign_body(self, name: str, body: bytes | _arrow.ArrowBatch, version: int | None,
+                     on_error: str) -> dict[str, Any]:
+        """One assign batch: CSV bytes, or an Arrow table (sent and answered as Arrow IPC streams)."""
+        params = _scoring_params(version, on_error)
+        if isinstance(body, _arrow.ArrowBatch):
+            try:
+                answer = self._request("POST", self._path(name, "assign"), params=params,
+                                       content=_arrow.stream_bytes(body.table), content_type=_arrow.ARROW_STREAM_TYPE,
+                                       accept=_arrow.ARROW_STREAM_TYPE)
+            except InvalidInput as error:
+                if not _arrow.column_refusal(error.detail):
+                    raise
+                body = body.csv()           # the CSV form, whose refusal (if any) names the records
+            else:
+                return _arrow.assign_answer(answer) if isinstance(answer, bytes) else answer
+        return self._request("POST", self._path(name, "assign"), params=params, content=body,
+                             content_type="text/csv")
 
     def drift(self, name: str, data: Any, *, version: int | None = None, on_error: str = "fail") -> dict[str, Any]:
         """Compare a batch with the version's training distribution; the server stores the report and returns it."""
@@ -334,13 +378,33 @@ class Client:
         params = _scoring_params(version, on_error)
         if isinstance(data, list):
             return self._request("POST", path, params=params, document={"records": data})
+        table = self._large_table(data)
+        if table is not None:
+            try:
+                return self._request("POST", path, params=params, content=_arrow.stream_bytes(table),
+                                     content_type=_arrow.ARROW_STREAM_TYPE)
+            except InvalidInput as error:
+                if not _arrow.column_refusal(error.detail):
+                    raise
         return self._request("POST", path, params=params, content=_csv_content(data), content_type="text/csv")
+
+    def _large_table(self, data: Any) -> pa.Table | None:
+        """A large DataFrame or CSV file as an Arrow table; None: send it as CSV."""
+        if not self.arrow:
+            return None
+        if isinstance(data, pd.DataFrame):
+            return _arrow.table_from_frame(data) if len(data) >= _arrow.ARROW_MIN_ROWS else None
+        if isinstance(data, (str, os.PathLike)):
+            path = Path(data)
+            if path.is_file() and os.access(path, os.R_OK) and path.stat().st_size >= _arrow.ARROW_MIN_FILE_BYTES:
+                return _arrow.table_from_file(path)
+        return None
 
 
 class _AssignRun:
     """Sends assign batches one after another; yields each batch's results aligned with its rows.
 
-    A batch is ``(CSV body, row count, payload)``; ``send`` yields ``(payload, results)`` with ``results[i]``
+    A batch is ``(CSV body or Arrow table, row count, payload)``; ``send`` yields ``(payload, results)`` with ``results[i]``
     the result of the batch's row i, or None for a row the server skipped. Afterwards: ``version`` (the one
     every batch used), ``rows``, ``assigned``, and ``errors`` with record numbers counted over all batches.
     """
@@ -352,11 +416,11 @@ class _AssignRun:
         self.version, self.rows, self.assigned = version, 0, 0
         self.errors: list[dict[str, Any]] = []
 
-    def send(self, batches: Iterator[tuple[bytes, int, Any]]) -> Iterator[tuple[Any, list[dict[str, Any] | None]]]:
+    def send(self, batches: Iterator[tuple[bytes | _arrow.ArrowBatch, int, Any]]) -> Iterator[tuple[Any, list[dict[str, Any] | None]]]:
         for body, n_rows, payload in batches:
             start = self.rows
             try:
-                answer = self._client._assign_csv_body(self._name, body, self.version, self._on_error)
+                answer = self._client._assign_body(self._name, body, self.version, self._on_error)
             except ApiError as error:
                 _shift_records(error.detail, start)
                 raise
@@ -404,9 +468,19 @@ def _shift_records(items: Any, offset: int) -> None:
                 item["record"] += offset
 
 
-def _csv_batches(reader: Any, header: list[str], source: Path, batch_rows: int) -> Iterator[tuple[bytes, int, Any]]:
-    """Batches of ``batch_rows`` data rows as (CSV text with the header, row count, the rows). Blank lines
-    are dropped; a row with another field count than the header is refused, naming its line."""
+def _csv_batches(reader: Any, header: list[str], source: Path, batch_rows: int,
+                 arrow_min_rows: int | None = None) -> Iterator[tuple[bytes | _arrow.ArrowBatch, int, Any]]:
+    """Batches of ``batch_rows`` data rows as (CSV text with the header, row count, the rows); a batch of at
+    least ``arrow_min_rows`` rows as an Arrow table instead, unless a column mixes numbers and text. Blank
+    lines are dropped; a row with another field count than the header is refused, naming its line."""
+
+    def body(rows: list[list[str]]) -> bytes | _arrow.ArrowBatch:
+        if arrow_min_rows is not None and len(rows) >= arrow_min_rows:
+            table = _arrow.table_from_rows(header, rows)
+            if table is not None:
+                return _arrow.ArrowBatch(table, lambda: _csv_text([header, *rows]))
+        return _csv_text([header, *rows])
+
     rows: list[list[str]] = []
     for row in reader:
         if not row:
@@ -416,10 +490,10 @@ def _csv_batches(reader: Any, header: list[str], source: Path, batch_rows: int) 
                                   f"{len(header)} (is the delimiter a comma?)")
         rows.append(row)
         if len(rows) == batch_rows:
-            yield _csv_text([header, *rows]), len(rows), rows
+            yield body(rows), len(rows), rows
             rows = []
     if rows:
-        yield _csv_text([header, *rows]), len(rows), rows
+        yield body(rows), len(rows), rows
 
 
 def _csv_text(rows: list[list[str]]) -> bytes:

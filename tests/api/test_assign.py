@@ -493,7 +493,8 @@ def test_openapi_documents_both_body_types_and_the_result(app_client):
     # Reference: the OpenAPI 3 document FastAPI serves; API.md's assign response fields.
     spec = app_client.get("/openapi.json").json()
     operation = spec["paths"]["/v1/segmentations/{name}/assign"]["post"]
-    assert set(operation["requestBody"]["content"]) == {"application/json", "text/csv"}
+    assert set(operation["requestBody"]["content"]) == {"application/json", "text/csv",
+                                                        "application/vnd.apache.arrow.stream"}
     assert {p["name"] for p in operation["parameters"]} >= {"name", "version", "on_error"}
     result = spec["components"]["schemas"]["AssignResult"]
     assert set(result["properties"]) == RESULT_FIELDS

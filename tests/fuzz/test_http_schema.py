@@ -14,6 +14,7 @@ import tempfile
 import zlib
 from pathlib import Path
 
+import pyarrow as pa
 import pytest
 import schemathesis
 from fastapi.testclient import TestClient
@@ -30,6 +31,29 @@ GENERATED: dict[str, int] = {}
 
 # The schema is read from the app at collection time; the app's store is a temporary directory, removed
 # after the module, and the segmentation is fitted before the first case.
+IRIS_FEATURES = ["sepal length (cm)", "sepal width (cm)", "petal length (cm)", "petal width (cm)"]
+
+
+def _arrow_stream(columns: dict[str, list]) -> bytes:
+    table = pa.table({name: pa.array(values, type=pa.float64()) for name, values in columns.items()})
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_stream(sink, table.schema) as writer:
+        writer.write_table(table)
+    return sink.getvalue().to_pybytes()
+
+
+# Arrow IPC stream bodies (assign, drift): raw bytes, or a stream of some of shop's features (missing values,
+# NaN, infinities and huge numbers included), or such a stream cut short.
+_VALUE = st.one_of(st.none(), st.floats(allow_nan=True, allow_infinity=True), st.floats(-10, 10))
+_ARROW_TABLE = st.integers(1, 60).flatmap(lambda n: st.dictionaries(
+    st.sampled_from([*IRIS_FEATURES, "sepal length", "id"]), st.lists(_VALUE, min_size=n, max_size=n),
+    min_size=1, max_size=5))
+schemathesis.openapi.media_type("application/vnd.apache.arrow.stream", st.one_of(
+    st.binary(max_size=2048),
+    _ARROW_TABLE.map(_arrow_stream),
+    st.tuples(_ARROW_TABLE.map(_arrow_stream), st.integers(1, 400)).map(lambda pair: pair[0][:-pair[1]]),
+))
+
 STORE = Path(tempfile.mkdtemp(prefix="segscore-fuzz-"))
 # A small record limit keeps generated fits short; everything else is the default configuration.
 APP = create_app(Settings(store_dir=STORE / "store", max_fit_rows=5_000))
