@@ -124,5 +124,6 @@ async def assign_records(
     else:
         results, assignment = await anyio.to_thread.run_sync(compute)
     count_assigned(request.app.state.metrics, name, number, assignment)
+    request.app.state.live.observe(loaded, values, assignment)      # live drift (service/live): queues only
     body = {"name": name, "version": number, "results": results, "errors": errors}
     return Response(orjson.dumps(body), media_type="application/json")
