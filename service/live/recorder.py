@@ -85,8 +85,10 @@ class LiveRecorder:
     def observe(self, loaded, values: np.ndarray, assignment) -> None:
         """Queue one assigned batch (references only; no work here). ``values``: the checked matrix, NaN =
         missing, one row per assigned record."""
-        self._queue.append((loaded, values, assignment, self.clock()))
-        self._queued_rows += values.shape[0]
+        # Only the four arrays the counts need are held (the rest of the assignment is freed with the answer).
+        self._queue.append((loaded, values, (assignment.segment, assignment.far, assignment.off_plane,
+                                             assignment.residual), self.clock()))
+        self._queued_rows += len(values)
         if self._queued_rows > MAX_QUEUED_ROWS:
             self.tally()
 
@@ -125,8 +127,7 @@ class LiveRecorder:
                 values = batches[0][0] if len(batches) == 1 else np.concatenate([b[0] for b in batches])
                 parts = [b[1] for b in batches]
                 segment, far, off_plane, residual = (
-                    (getattr(parts[0], a) if len(parts) == 1 else np.concatenate([getattr(p, a) for p in parts]))
-                    for a in ("segment", "far", "off_plane", "residual"))
+                    (parts[0][i] if len(parts) == 1 else np.concatenate([p[i] for p in parts])) for i in range(4))
                 counts = tally(layout, values, segment, far, off_plane, residual)
                 with self._flush_lock:
                     held = self._unflushed.get(key)
