@@ -73,7 +73,7 @@ class LiveRecorder:
         self.clock = clock
         self._queue: deque = deque()
         self._queued_rows = 0
-        self._layouts: dict[tuple[str, int], CountLayout] = {}
+        self._layouts: dict[tuple[str, int], tuple[Any, CountLayout]] = {}
         # (name, version, bucket start) -> counts not yet in the store
         self._unflushed: dict[tuple[str, int, int], np.ndarray] = {}
         self._tally_lock = threading.Lock()
@@ -97,11 +97,13 @@ class LiveRecorder:
         return int(moment // self.bucket_seconds) * self.bucket_seconds
 
     def _layout(self, loaded) -> CountLayout:
+        # Kept with the compiled arrays it was built for: a segmentation deleted and fitted again under the same
+        # name and number is another version, with another layout.
         key = (loaded.name, loaded.version)
-        layout = self._layouts.get(key)
-        if layout is None:
-            layout = self._layouts[key] = layout_of(loaded)
-        return layout
+        held = self._layouts.get(key)
+        if held is None or held[0] is not loaded.compiled:
+            held = self._layouts[key] = (loaded.compiled, layout_of(loaded))
+        return held[1]
 
     def tally(self) -> int:
         """Count every queued batch into its bucket and drop its records; return the records counted."""
