@@ -8,7 +8,6 @@ bins. Data: a seeded Gaussian mixture from scikit-learn's ``make_blobs`` (the sa
 from __future__ import annotations
 
 import math
-import re
 import sqlite3
 import struct
 import time
@@ -20,7 +19,8 @@ from fastapi.testclient import TestClient
 from schemas import DriftReport
 from service.app import _refresh_live_gauges, create_app
 from service.settings import Settings
-from tests.api.test_drift import FEATURES, draw, records
+from tests.api.test_drift import draw, records
+from tests.api.test_metrics_families import samples
 from tests.conftest import create_keys
 
 NAME = "shoppers"
@@ -156,6 +156,7 @@ def test_live_drift_needs_the_drift_scope(tmp_path):
 
 
 def test_prometheus_gauges_show_the_live_figures(settings):
+    # /metrics read with the Prometheus client's own text parser (prometheus_client.parser).
     with TestClient(create_app(settings)) as client:
         fit(client)
         x = draw(300, 5)
@@ -163,17 +164,16 @@ def test_prometheus_gauges_show_the_live_figures(settings):
         assign(client, x)
         report = live(client)
         _refresh_live_gauges(client.app)
-        text = client.get("/metrics").text
-        labels = f'segmentation="{NAME}",version="1"'
-        for row in report["features"]:
-            line = re.search(rf'^segscore_live_feature_psi{{feature="{row["name"]}",{labels}}} (\S+)$', text, re.M)
-            assert float(line.group(1)) == pytest.approx(row["psi"], rel=1e-9)
-        assert re.search(rf"^segscore_live_records{{{labels}}} 300.0$", text, re.M)
-        assert re.search(rf"^segscore_live_drift_status{{{labels}}} 2.0$", text, re.M)
-        rate = re.search(rf"^segscore_live_outlier_rate{{{labels}}} (\S+)$", text, re.M)
-        assert float(rate.group(1)) == pytest.approx(report["outliers"]["observed_rate"])
-        assert re.search(rf"^segscore_live_segment_mix_psi{{{labels}}} (\S+)$", text, re.M)
-        assert FEATURES[0] == report["features"][0]["name"] and report["features"][0]["status"] == "alert"
+        seen = samples(client)
+    labels = (("segmentation", NAME), ("version", "1"))
+    for row in report["features"]:
+        key = ("segscore_live_feature_psi", tuple(sorted((*labels, ("feature", row["name"])))))
+        assert seen[key] == pytest.approx(row["psi"], rel=1e-9)
+    assert seen[("segscore_live_records", labels)] == 300
+    assert seen[("segscore_live_outlier_rate", labels)] == pytest.approx(report["outliers"]["observed_rate"])
+    assert seen[("segscore_live_segment_mix_psi", labels)] == pytest.approx(report["segments"]["psi"])
+    assert report["status"] == "alert" and report["features"][0]["status"] == "alert"
+    assert seen[("segscore_live_drift_status", labels)] == 2
 
 
 def test_another_app_sees_the_counts_after_the_periodic_flush(tmp_path):
