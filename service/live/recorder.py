@@ -28,9 +28,9 @@ from service.live.counts import CountLayout, build_layout, tally
 log = logging.getLogger("segscore.live")
 
 TALLY_SECONDS = 0.5
-# Queued records above which ``observe`` tallies at once on the caller's thread (bounds memory when the
-# background thread falls behind).
-MAX_QUEUED_ROWS = 2_000_000
+# Queued batches above which ``observe`` tallies at once on the caller's thread (bounds memory when the
+# background thread falls behind; counting batches, not rows, keeps the check to one len()).
+MAX_QUEUED_BATCHES = 10_000
 RETENTION_EVERY_SECONDS = 3600.0
 
 
@@ -72,7 +72,7 @@ class LiveRecorder:
         self.retention_days = int(retention_days)
         self.clock = clock
         self._queue: deque = deque()
-        self._queued_rows = 0
+        self._enqueue = self._queue.append
         self._layouts: dict[tuple[str, int], tuple[Any, CountLayout]] = {}
         # (name, version, bucket start) -> counts not yet in the store
         self._unflushed: dict[tuple[str, int, int], np.ndarray] = {}
@@ -86,10 +86,9 @@ class LiveRecorder:
         """Queue one assigned batch (references only; no work here). ``values``: the checked matrix, NaN =
         missing, one row per assigned record."""
         # Only the four arrays the counts need are held (the rest of the assignment is freed with the answer).
-        self._queue.append((loaded, values, (assignment.segment, assignment.far, assignment.off_plane,
-                                             assignment.residual), self.clock()))
-        self._queued_rows += len(values)
-        if self._queued_rows > MAX_QUEUED_ROWS:
+        self._enqueue((loaded, values, assignment.segment, assignment.far, assignment.off_plane, assignment.residual,
+                       self.clock()))
+        if len(self._queue) > MAX_QUEUED_BATCHES:
             self.tally()
 
     # ----------------------------------------------------------------- background work
@@ -116,20 +115,20 @@ class LiveRecorder:
                     break
             if not taken:
                 return 0
-            self._queued_rows = max(0, self._queued_rows - sum(item[1].shape[0] for item in taken))
             groups: dict[tuple[str, int, int], list] = defaultdict(list)
             loaded_of = {}
-            for loaded, values, assignment, moment in taken:
-                key = (loaded.name, loaded.version, self.bucket_of(moment))
-                groups[key].append((values, assignment))
+            for item in taken:
+                loaded = item[0]
+                key = (loaded.name, loaded.version, self.bucket_of(item[6]))
+                groups[key].append(item)
                 loaded_of[key] = loaded
             counted = 0
-            for key, batches in groups.items():
+            for key, items in groups.items():
                 layout = self._layout(loaded_of[key])
-                values = batches[0][0] if len(batches) == 1 else np.concatenate([b[0] for b in batches])
-                parts = [b[1] for b in batches]
-                segment, far, off_plane, residual = (
-                    (parts[0][i] if len(parts) == 1 else np.concatenate([p[i] for p in parts])) for i in range(4))
+                # columns 1-5 of the queued items: values, segment, far, off_plane, residual
+                values, segment, far, off_plane, residual = (
+                    (items[0][i] if len(items) == 1 else np.concatenate([item[i] for item in items]))
+                    for i in range(1, 6))
                 counts = tally(layout, values, segment, far, off_plane, residual)
                 with self._flush_lock:
                     held = self._unflushed.get(key)
