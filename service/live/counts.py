@@ -120,35 +120,67 @@ def tally(layout: CountLayout, values: np.ndarray, segment: np.ndarray, far: np.
         The checked records as assign saw them before imputation (NaN = missing).
     segment, far, off_plane, residual : ndarray of shape (n,)
         The assignment (``service.core.assign.Assignment``).
+
+    Few rows: each value's bin, then one ``np.bincount``. Many rows: no per-value bin at all; for each inner
+    edge, the count of values above it in every column at once (a bin's count is the difference of two such
+    counts), which is a few passes of elementwise comparisons instead of a binary search per value.
     """
+    n = values.shape[0]
+    counts = (_tally_by_value if n <= BROADCAST_ROWS else _tally_by_edge)(layout, values)
+    counts[layout.segment_offset:layout.segment_offset + layout.k] = np.bincount(segment, minlength=layout.k)
+    o = layout.outlier_offset
+    counts[0] = n
+    counts[o] = np.count_nonzero(far)
+    counts[o + 1] = np.count_nonzero(off_plane)
+    counts[o + 2] = np.count_nonzero(far | off_plane)
+    if layout.residual_bins:
+        counts[layout.residual_offset:] = np.bincount(np.searchsorted(layout.residual_edges, residual, side="left"),
+                                                      minlength=layout.residual_bins)
+    return counts
+
+
+def _tally_by_value(layout: CountLayout, values: np.ndarray) -> np.ndarray:
+    """Feature counts via each value's bin (a few rows: one broadcast comparison, one bincount)."""
     n = values.shape[0]
     bins = np.empty((n, layout.n_features), dtype=np.int64)
     if layout.quantile_columns.size:
-        if n <= BROADCAST_ROWS:
-            block = values[:, layout.quantile_columns]
-            # Bin i holds (e[i-1], e[i]]: the number of edges strictly below the value (searchsorted 'left').
-            bins[:, layout.quantile_columns] = np.count_nonzero(block[:, :, None] > layout.quantile_edges, axis=2)
-        else:
-            for j, edges in zip(layout.quantile_columns.tolist(), layout.quantile_edge_lists):
-                bins[:, j] = np.searchsorted(edges, values[:, j], side="left")
+        block = values[:, layout.quantile_columns]
+        # Bin i holds (e[i-1], e[i]]: the number of edges strictly below the value (searchsorted 'left').
+        bins[:, layout.quantile_columns] = np.count_nonzero(block[:, :, None] > layout.quantile_edges, axis=2)
     if layout.category_columns.size:
         block = values[:, layout.category_columns]
         match = block[:, :, None] == layout.category_values
-        found = match.any(axis=2)
-        bins[:, layout.category_columns] = np.where(found, match.argmax(axis=2), layout.category_sizes)
+        bins[:, layout.category_columns] = np.where(match.any(axis=2), match.argmax(axis=2), layout.category_sizes)
     slots = bins + layout.feature_offsets
     missing = np.isnan(values)
     if missing.any():
         slots[missing] = np.broadcast_to(layout.feature_offsets + layout.bin_sizes, slots.shape)[missing]
-    parts = [slots.ravel(), segment.astype(np.int64) + layout.segment_offset]
-    if layout.residual_bins:
-        parts.append(np.searchsorted(layout.residual_edges, residual, side="left") + layout.residual_offset)
-    counts = np.bincount(np.concatenate(parts), minlength=layout.n_slots)
-    counts[0] = n
-    o = layout.outlier_offset
-    counts[o] = np.count_nonzero(far)
-    counts[o + 1] = np.count_nonzero(off_plane)
-    counts[o + 2] = np.count_nonzero(far | off_plane)
+    return np.bincount(slots.ravel(), minlength=layout.n_slots)
+
+
+def _tally_by_edge(layout: CountLayout, values: np.ndarray) -> np.ndarray:
+    """Feature counts via counts above each edge, all columns at once (many rows; see ``tally``)."""
+    n = values.shape[0]
+    counts = np.zeros(layout.n_slots, dtype=np.int64)
+    missing = np.count_nonzero(np.isnan(values), axis=0)
+    for j in range(layout.n_features):
+        counts[layout.missing_slot(j)] = missing[j]
+    if layout.quantile_columns.size:
+        block = values if layout.quantile_columns.size == layout.n_features else values[:, layout.quantile_columns]
+        edges = layout.quantile_edges
+        above = np.empty((edges.shape[0], edges.shape[1] + 2), dtype=np.int64)   # [observed, > e_0, ..., 0]
+        above[:, 0] = n - missing[layout.quantile_columns]
+        above[:, -1] = 0
+        for m in range(edges.shape[1]):
+            above[:, m + 1] = np.count_nonzero(block > edges[:, m], axis=0)      # NaN is never above an edge
+        for row, j in enumerate(layout.quantile_columns.tolist()):
+            size = int(layout.bin_sizes[j])                                     # inner edges + 1
+            column = np.append(above[row, :size], 0)
+            counts[layout.feature_slice(j)] = column[:-1] - column[1:]
+    for row, j in enumerate(layout.category_columns.tolist()):
+        categories = layout.category_values[row, :layout.category_sizes[row]]
+        found = np.count_nonzero(values[:, j, None] == categories, axis=0)
+        counts[layout.feature_slice(j)] = np.append(found, n - missing[j] - found.sum())
     return counts
 
 

@@ -36,9 +36,8 @@ def _iso(seconds: float) -> str:
     return datetime.fromtimestamp(seconds, timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
-def window_counts(store, loaded, *, since: int) -> np.ndarray:
+def window_counts(store, loaded, layout, *, since: int) -> np.ndarray:
     """The merged count vector of one version over the buckets starting at or after ``since`` (unix seconds)."""
-    layout = layout_of(loaded)
     counts = np.zeros(layout.n_slots, dtype=np.int64)
     for slot, count in store.live_counts(loaded.name, loaded.version, since=since).items():
         if 0 <= slot < layout.n_slots:
@@ -55,7 +54,7 @@ def live_drift_report(store, loaded, labels: dict[int, str], *, window_text: str
     """
     start = -(-int(now - window_seconds) // bucket_seconds) * bucket_seconds     # first boundary at or after
     layout = layout_of(loaded)
-    counts = read_counts(layout, window_counts(store, loaded, since=start))
+    counts = read_counts(layout, window_counts(store, loaded, layout, since=start))
     if counts.n_records < min_records:
         raise InvalidInput([RecordProblem(None, "window", f"the window {window_text} holds {counts.n_records} "
                                           f"assigned records of '{loaded.name}' version {loaded.version}; a drift "
