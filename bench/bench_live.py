@@ -147,14 +147,14 @@ def over_http(args) -> None:
     records = [dict(zip(FEATURES, map(float, row))) for row in values]
     with tempfile.TemporaryDirectory() as folder:
         store = Path(folder) / "store"
+        # The version is stored before either server starts (neither has served a fit: the same memory state).
+        bundle = fit_bundle(values, FitConfig(features=FEATURES, scaling="standard", components=N_COMPONENTS,
+                                              k_min=N_BLOBS, k_max=N_BLOBS, k_fixed=True, n_init=3, seed=0))
+        FilesystemStore(store).save_version("bench", bundle, make_live=True)
         servers = {}
         try:
             for live in (True, False):
                 servers[live] = start_server(store, live, Path(folder) / f"server-{live}.log")
-            with httpx.Client(base_url=servers[True][1], timeout=600) as client:
-                fitted = client.post("/v1/segmentations/bench/fit", json={
-                    "records": records, "k": N_BLOBS, "components": N_COMPONENTS, "n_init": 3})
-                assert fitted.status_code == 201, fitted.text
             clients = {live: httpx.Client(base_url=base, timeout=120) for live, (_, base) in servers.items()}
             single = {"records": records[:1]}
             thousand = {"records": records[:1000]}
@@ -197,12 +197,14 @@ def main() -> None:
     parser.add_argument("--http-rounds", type=int, default=6)
     parser.add_argument("--http-calls", type=int, default=100)
     parser.add_argument("--no-http", action="store_true")
+    parser.add_argument("--no-in-process", action="store_true")
     args = parser.parse_args()
     gc.freeze()
     gc.set_threshold(Settings().gc_gen0_threshold, *gc.get_threshold()[1:])      # as service.app at start-up
     print("== live drift on vs off ==")
     print(f"machine: {cpu_model()}, {os.cpu_count()} logical CPUs; load average at start {load_average()}")
-    in_process(args)
+    if not args.no_in_process:
+        in_process(args)
     if not args.no_http:
         over_http(args)
     print(f"load average at end {load_average()}")
