@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict
+from pydantic import BaseModel, ConfigDict, Field
 
 from schemas.common import ErrorItem
 
@@ -30,8 +30,8 @@ class MissingShare(_Finite):
 class FeatureDrift(_Finite):
     name: str
     psi: float                        # observed values on the feature's training bins (Jeffreys-smoothed)
-    ks_statistic: float
-    p_value: float                    # two-sample KS against the stored training sample
+    ks_statistic: float | None        # null in a live report (no values: see ``test``)
+    p_value: float                    # two-sample KS against the stored training sample (live: ``test``)
     q_value: float                    # Benjamini-Hochberg over the features' KS p-values
     mean_shift_sd: float | None       # null when the training std is 0 or the batch has no observed value
     missing_share: MissingShare
@@ -39,6 +39,9 @@ class FeatureDrift(_Finite):
     n_observed: int | None = None
     bins: Literal["categories", "quantiles"] | None = None  # by value (<= 20 distinct) or training deciles
     reasons: list[Literal["distribution", "missing_share"]] = []
+    # Live reports only: the test on the binned counts that stands in for KS, and its statistic.
+    test: Literal["chi-square on bins", "monte-carlo exact on bins", "none"] | None = None
+    chi2: float | None = None
 
 
 class SegmentShare(_Finite):
@@ -81,6 +84,7 @@ class OutlierDrift(_Finite):
     rate_ratio: float | None = None   # observed / Jeffreys-smoothed training rate
     ratio_lower_bound: float | None = None  # lower 2.5 % Jeffreys limit of the batch rate / upper 97.5 % of
     #                                          the training rate: the graded effect size
+    observed_by_reason: dict[Literal["distance", "residual"], int] | None = None   # live reports only
 
 
 class ResidualDrift(_Finite):
@@ -90,6 +94,7 @@ class ResidualDrift(_Finite):
     status: Status
     median_ratio: float | None = None
     available: bool = True            # false without a PCA residual (then p 1, stable)
+    test: Literal["mann-whitney on bins", "none"] | None = None   # live reports only
 
 
 class DriftRules(_Finite):
@@ -106,6 +111,26 @@ class DriftRules(_Finite):
     psi_floor: float | None = None    # reports written before the smoothing used a fixed floor
 
 
+class ChangedTest(BaseModel):
+    item: str
+    batch_test: str
+    live_test: str
+
+
+class LiveWindow(_Finite):
+    """What a live report covers: the records assigned in whole time buckets from ``from`` to ``to``."""
+
+    model_config = ConfigDict(allow_inf_nan=False, populate_by_name=True)
+
+    window: str                       # as asked, e.g. "1h"
+    window_seconds: int
+    from_: str = Field(alias="from")  # start of the first bucket counted (ISO-8601 UTC)
+    to: str
+    bucket_seconds: int
+    n_records: int
+    tests_changed: list[ChangedTest]  # which tests differ from a batch report, because only counts exist
+
+
 class DriftReport(_Finite):
     id: str
     name: str
@@ -120,6 +145,7 @@ class DriftReport(_Finite):
     rules: DriftRules | None = None   # the thresholds this report was graded with
     skipped_records: int = 0          # bad records left out with ?on_error=skip
     errors: list[ErrorItem] = []      # the first of them (at most 200)
+    live: LiveWindow | None = None    # live reports only (GET .../drift/live)
 
 
 class DriftReportList(BaseModel):

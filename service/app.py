@@ -6,6 +6,7 @@ import asyncio
 import gc
 import logging
 import os
+import time
 from contextlib import asynccontextmanager, suppress
 from datetime import datetime, timedelta, timezone
 
@@ -42,6 +43,8 @@ from service.errors import (
     UnsupportedMediaType,
 )
 from service.jobs import JobRunner
+from service.live import open_live
+from service.live.gauges import live_figures
 from service.metrics import Metrics, MetricsMiddleware
 from service.middleware import BodyReadTimeout, ErrorBoundary, RequestIdMiddleware
 from service.settings import Settings, get_settings
@@ -151,6 +154,25 @@ async def _maintenance(app: FastAPI, wake: asyncio.Event) -> None:
         wake.clear()
 
 
+def _refresh_live_gauges(app: FastAPI) -> None:
+    settings: Settings = app.state.settings
+    app.state.live.flush()       # this replica's latest counts first
+    figures = live_figures(app.state.store, window_seconds=settings.live_metrics_window_seconds,
+                           bucket_seconds=settings.live_bucket_seconds, now=time.time(),
+                           rules=drift.drift_rules(settings), min_records=settings.drift_min_rows)
+    app.state.metrics.live_figures(figures)
+
+
+async def _live_gauges(app: FastAPI) -> None:
+    """Background loop: every live_metrics_seconds, the live Prometheus gauges from the merged counts."""
+    while True:
+        try:
+            await anyio.to_thread.run_sync(_refresh_live_gauges, app)
+        except Exception as exc:  # a store that is briefly unreadable must not end the loop
+            log.warning("live drift gauges not refreshed: %s", type(exc).__name__)
+        await asyncio.sleep(app.state.settings.live_metrics_seconds)
+
+
 def create_app(settings: Settings | None = None, store: BundleStore | None = None) -> FastAPI:
     """The application. ``store``: an open store (its caller closes it); default ``open_store(settings)``,
     which the app closes when it shuts down."""
@@ -180,6 +202,8 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
         loop, wake = asyncio.get_running_loop(), asyncio.Event()
         app.state.store.watch(lambda: loop.call_soon_threadsafe(wake.set))
         maintenance = loop.create_task(_maintenance(app, wake))
+        app.state.live.start()
+        gauges = loop.create_task(_live_gauges(app)) if app.state.live.enabled else None
         keyring.refreshed_in_background = True
         app.state.fit_limiter = anyio.CapacityLimiter(settings.fit_concurrency)
         # Background fits share the fit slots with synchronous ones; jobs of a killed server are failed here.
@@ -202,6 +226,11 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
             maintenance.cancel()
             with suppress(asyncio.CancelledError):
                 await maintenance
+            if gauges is not None:
+                gauges.cancel()
+                with suppress(asyncio.CancelledError):
+                    await gauges
+            await anyio.to_thread.run_sync(app.state.live.stop)     # flushes what is left
             if owns_store:
                 await anyio.to_thread.run_sync(app.state.store.close)
             metrics.process_exit()
@@ -238,6 +267,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
     app.state.metrics = metrics
     app.state.jobs = JobRunner(app.state.store, settings, metrics)
     metrics.track_bundles_loaded(lambda: app.state.store.loaded_count())
+    app.state.live = open_live(settings, app.state.store)
     app.state.chart_cache = ChartCache(settings.chart_cache_size)
     for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router, jobs.router):
         app.include_router(router, prefix="/v1")

@@ -7,6 +7,7 @@
     │   └── ScopeDenied          key lacks the scope
     ├── NotFound
     │   ├── SegmentationNotFound
+    │   ├── LiveDriftOff         live drift switched off (SEGSCORE_LIVE_DRIFT=false)
     │   ├── VersionNotFound
     │   ├── SegmentNotFound
     │   └── KeyNotFound          no API key of that name (keys revoke)
@@ -77,6 +78,13 @@ class SegmentationNotFound(NotFound):
 
     def __init__(self, name: str) -> None:
         super().__init__(f"segmentation '{name}' does not exist")
+
+
+class LiveDriftOff(NotFound):
+    """Live drift is switched off on this server, so there are no live counts to report on."""
+
+    def __init__(self) -> None:
+        super().__init__("live drift is off on this server (SEGSCORE_LIVE_DRIFT=false): no live counts are kept")
 
 
 class VersionNotFound(NotFound):

@@ -65,6 +65,21 @@ class Metrics:
         self._assigned_series: dict[tuple[str, int, int], Any] = {}
         self._outlier_series: dict[str, Any] = {}
 
+        # Live drift (service/live/), over the last live_metrics_window_seconds of the merged (all-replica)
+        # counts, per segmentation and live version; refreshed every live_metrics_seconds.
+        live_labels = ["segmentation", "version"]
+        self.live_records = Gauge("segscore_live_records", "Records assigned in the live window",
+                                  live_labels, registry=self.registry, multiprocess_mode="mostrecent")
+        self.live_feature_psi = Gauge("segscore_live_feature_psi", "Live PSI of a feature on its training bins",
+                                      [*live_labels, "feature"], registry=self.registry, multiprocess_mode="mostrecent")
+        self.live_segment_psi = Gauge("segscore_live_segment_mix_psi", "Live PSI of the segment mix",
+                                      live_labels, registry=self.registry, multiprocess_mode="mostrecent")
+        self.live_outlier_rate = Gauge("segscore_live_outlier_rate", "Share of live records flagged as outliers",
+                                       live_labels, registry=self.registry, multiprocess_mode="mostrecent")
+        self.live_status = Gauge("segscore_live_drift_status", "Status of the live drift report over the window "
+                                 "(0 stable, 1 watch, 2 alert; absent under the minimum record count)",
+                                 live_labels, registry=self.registry, multiprocess_mode="mostrecent")
+
     DRIFT_STATUS_NUMBER = {"stable": 0, "watch": 1, "alert": 2}
 
     def request_series(self, method: str, route: str, status: int) -> tuple[Any, Any]:
@@ -90,6 +105,26 @@ class Metrics:
             if series is None:
                 series = self._outlier_series[name] = self.outliers.labels(name)
             series.inc(flagged)
+
+    def live_figures(self, figures: list[dict]) -> None:
+        """Replace every live gauge by ``figures``: one dict per (segmentation, live version) with ``n_records``,
+        ``feature_psi`` {feature: psi}, ``segment_psi``, ``outlier_rate`` and ``status`` (None: not enough
+        records)."""
+        gauges = (self.live_records, self.live_feature_psi, self.live_segment_psi, self.live_outlier_rate,
+                  self.live_status)
+        for gauge in gauges:
+            gauge.clear()
+        for item in figures:
+            labels = (item["name"], str(item["version"]))
+            self.live_records.labels(*labels).set(item["n_records"])
+            if not item["n_records"]:
+                continue
+            for feature, value in item["feature_psi"].items():
+                self.live_feature_psi.labels(*labels, feature).set(value)
+            self.live_segment_psi.labels(*labels).set(item["segment_psi"])
+            self.live_outlier_rate.labels(*labels).set(item["outlier_rate"])
+            if item["status"] is not None:
+                self.live_status.labels(*labels).set(self.DRIFT_STATUS_NUMBER[item["status"]])
 
     def drift_report(self, report: dict) -> None:
         self.drift_reports.labels(report["status"]).inc()

@@ -98,6 +98,17 @@ class Settings(BaseSettings):
     drift_outlier_rate_watch_ratio: float = Field(1.5, gt=1)
     drift_residual_median_watch_ratio: float = Field(1.2, gt=1)
 
+    # Live drift (service/live/): counts of what assign sees, per version and time bucket, flushed to the store
+    # (where replicas' counts add up) every live_flush_seconds; buckets older than live_retention_days are
+    # deleted. Prometheus gauges of the live figures over live_metrics_window_seconds are refreshed every
+    # live_metrics_seconds. Every replica must use the same live_bucket_seconds.
+    live_drift: bool = True
+    live_bucket_seconds: int = Field(300, ge=1, le=86_400)
+    live_flush_seconds: float = Field(2.0, gt=0, le=300)
+    live_retention_days: int = Field(30, ge=1)
+    live_metrics_window_seconds: int = Field(3600, ge=1)
+    live_metrics_seconds: float = Field(10.0, gt=0)
+
     # Cyclic-GC generation-0 threshold set at start-up (Python's default is 700); 0 leaves the GC alone.
     gc_gen0_threshold: int = Field(50_000, ge=0)
 

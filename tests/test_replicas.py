@@ -90,6 +90,35 @@ def test_concurrent_fits_through_both_replicas_get_distinct_versions(replicas, i
     assert sorted(numbers) == list(range(1, 9))
 
 
+def test_live_drift_merges_both_replicas_counts_once(replicas, wine):
+    # Two real server processes on one schema: records assigned through A (one batch) and B (one by one and a
+    # batch) reach the store by each replica's periodic flush; the live report counts each record once and
+    # finds the shares of the batch report of the same records (reference: POST .../drift).
+    _, (a, b) = replicas
+    records = records_from(wine)
+    assert a.post("/v1/segmentations/watched/fit", json={"records": records, "k": 3}).status_code == 201
+    probes = []                                   # B's assigns of records[0] while waiting: counted too
+
+    def served_by_b() -> bool:
+        probes.append(b.post("/v1/segmentations/watched/assign", json={"records": records[:1]}).status_code)
+        return probes[-1] == 200
+
+    wait_until(served_by_b, "version 1 of 'watched' on replica B")
+    probe = probes.count(200)
+    answers = [a.post("/v1/segmentations/watched/assign", json={"records": records[:80]}).status_code]
+    answers += [b.post("/v1/segmentations/watched/assign", json={"records": [r]}).status_code for r in records[80:100]]
+    answers.append(b.post("/v1/segmentations/watched/assign", json={"records": records[100:]}).status_code)
+    assert set(answers) == {200}
+    seen = wait_until(lambda: (r := a.get("/v1/segmentations/watched/drift/live?window=1h")).status_code == 200
+                      and r.json()["n_records"] >= len(records) + probe and r.json(), "B's counts on A")
+    batch = a.post("/v1/segmentations/watched/drift", json={"records": records + records[:1] * probe}).json()
+    assert seen["n_records"] == batch["n_records"]
+    assert seen["segments"]["observed_count"] == batch["segments"]["observed_count"]
+    for got, want in zip(seen["features"], batch["features"]):
+        assert got["psi"] == pytest.approx(want["psi"], rel=1e-12, abs=1e-15)
+    assert seen["outliers"]["observed_count"] == batch["outliers"]["observed_count"]
+
+
 def test_a_key_made_with_the_cli_works_on_both_replicas(replicas):
     arguments, clients = replicas
     segscore = Path(sys.executable).with_name("segscore")

@@ -152,6 +152,7 @@ async def answer_assign(request: Request, name: str, version: int | None, on_err
     else:
         results, assignment = await anyio.to_thread.run_sync(compute)
     count_assigned(request.app.state.metrics, name, loaded.version, assignment)
+    request.app.state.live.observe(loaded, values, assignment)      # live drift (service/live): queues only
     if arrow:
         return Response(results, media_type=ARROW_STREAM_TYPE, headers=VARY_ACCEPT)
     body = {"name": name, "version": loaded.version, "results": results, "errors": errors}

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import time
 import uuid
 from datetime import datetime, timezone
 from typing import Annotated, Any, Literal
@@ -28,7 +29,8 @@ from service.api.validation import StrictQuery, VersionNumber, error_responses, 
 from service.core.drift import DriftRules, compute_drift
 from service.core.frame import MAX_LISTED_PROBLEMS
 from service.deps import DriftScope, SettingsDep, StoreDep
-from service.errors import InvalidInput, RecordProblem
+from service.errors import InvalidInput, LiveDriftOff, RecordProblem
+from service.live.window import live_drift_report, parse_window
 from service.settings import Settings
 from service.store import BundleStore, LoadedVersion
 
@@ -123,3 +125,43 @@ async def list_drift_reports(
 
     reports = await anyio.to_thread.run_sync(read)
     return Response(orjson.dumps({"reports": reports}), media_type="application/json")
+
+
+
+@router.get("/{name}/drift/live", response_model=DriftReport, dependencies=[DriftScope, StrictQuery],
+            summary="Drift of the records assigned in a recent time window (from live counts, every replica)",
+            responses=error_responses(401, 403, 404, 409, 422, 503))
+async def live_drift(
+    name: str,
+    request: Request,
+    settings: SettingsDep,
+    store: StoreDep,
+    window: Annotated[str, Query(description="how far back: a whole number and s, m, h or d (e.g. 30m, 1h)")] = "1h",
+    version: Annotated[VersionNumber | None, Query(description="default: the live version")] = None,
+    store_report: Annotated[bool, Query(alias="store", description="true: keep it in the drift history")] = False,
+) -> Response:
+    # The same shape and status rules as a batch report, over whole time buckets of the merged counts of every
+    # replica (this one's latest counts are flushed first); the report's ``live`` says which tests differ.
+    check_name(name)
+    live = request.app.state.live
+    if not live.enabled:
+        raise LiveDriftOff()
+    seconds = parse_window(window, max_seconds=settings.live_retention_days * 86_400)
+    loaded, labels = await store.serving(name, version)
+
+    def build() -> dict[str, Any]:
+        live.flush()
+        body = live_drift_report(store, loaded, labels, window_text=window, window_seconds=seconds,
+                                 bucket_seconds=settings.live_bucket_seconds, now=time.time(),
+                                 rules=drift_rules(settings), min_records=settings.drift_min_rows)
+        report = {"id": uuid.uuid4().hex, "name": loaded.name, "version": loaded.version, "created_at": _now(),
+                  **body, "skipped_records": 0, "errors": []}
+        DriftReport.model_validate(report)
+        if store_report:
+            store.save_drift_report(report)
+        return report
+
+    report = await anyio.to_thread.run_sync(build)
+    if store_report:
+        request.app.state.metrics.drift_report(report)
+    return Response(orjson.dumps(report), media_type="application/json")

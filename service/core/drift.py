@@ -333,9 +333,16 @@ def segment_drift(train_counts: np.ndarray, segments: np.ndarray, rules: DriftRu
     the mix and the segments.
     """
     train = np.asarray(train_counts, dtype=np.int64)
+    return segment_drift_of_counts(train, np.bincount(segments, minlength=train.size), rules, labels)
+
+
+def segment_drift_of_counts(train_counts: np.ndarray, counts: np.ndarray, rules: DriftRules,
+                            labels: dict[int, str] | None = None) -> dict[str, Any]:
+    """``segment_drift`` from the batch's counts per segment (what a live window keeps)."""
+    train = np.asarray(train_counts, dtype=np.int64)
+    counts = np.asarray(counts, dtype=np.int64)
     k = train.size
-    n, n_train = segments.size, int(train.sum())
-    counts = np.bincount(segments, minlength=k)
+    n, n_train = int(counts.sum()), int(train.sum())
     chi2, p_value, method = _pearson_2xk(np.vstack([train, counts]))
     value_psi = psi(train, counts)
     mix_status = grade(p_value < rules.alpha, value_psi, rules.psi_watch, rules.psi_alert)
@@ -388,8 +395,13 @@ def outlier_drift(baseline_count: int, baseline_total: int, flagged: np.ndarray,
     can flag fresh records at twice the held-out figure; 12 flags where 5 are expected happen), and with the
     point ratio 5 of 600 null batches alerted (measured: ``make calibrate``).
     """
-    n = flagged.size
-    count = int(np.count_nonzero(flagged))
+    return outlier_drift_of_counts(baseline_count, baseline_total, int(np.count_nonzero(flagged)), flagged.size,
+                                   rules)
+
+
+def outlier_drift_of_counts(baseline_count: int, baseline_total: int, count: int, n: int,
+                            rules: DriftRules) -> dict[str, Any]:
+    """``outlier_drift`` from the batch's flagged count ``count`` of ``n`` records (what a live window keeps)."""
     observed_rate = count / n
     table = [[count, n - count], [baseline_count, baseline_total - baseline_count]]
     p_value = 1.0 if count == 0 else _p(stats.fisher_exact(table, alternative="greater").pvalue)

@@ -246,6 +246,15 @@ class ServingCache:
     def prune_drift_reports(self, older_than: str, **actor: str) -> int:
         return self.backend.prune_drift_reports(older_than, **actor)
 
+    def add_live_counts(self, rows: list[tuple[str, int, int, int, int, int]]) -> None:
+        self.backend.add_live_counts(rows)
+
+    def live_counts(self, name: str, version: int, *, since: int) -> dict[int, int]:
+        return self.backend.live_counts(name, version, since=since)
+
+    def prune_live_counts(self, older_than: int, **actor: str) -> int:
+        return self.backend.prune_live_counts(older_than, **actor)
+
     def create_key(self, name: str, scopes: list[str], **actor: str) -> str:
         return self.backend.create_key(name, scopes, **actor)
 

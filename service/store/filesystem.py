@@ -150,7 +150,22 @@ CREATE TABLE IF NOT EXISTS jobs (
 );
 CREATE INDEX IF NOT EXISTS jobs_by_segmentation ON jobs (segmentation, seq);
 CREATE INDEX IF NOT EXISTS jobs_active ON jobs (state, heartbeat_at);
+CREATE TABLE IF NOT EXISTS live_counts (
+    name TEXT NOT NULL,
+    version INTEGER NOT NULL,
+    bucket_start INTEGER NOT NULL,     -- unix seconds, a multiple of bucket_seconds
+    bucket_seconds INTEGER NOT NULL,
+    slot INTEGER NOT NULL,             -- a counter of the version's layout (service/live/counts.py)
+    count INTEGER NOT NULL,            -- records; never a record value
+    PRIMARY KEY (name, version, bucket_start, bucket_seconds, slot)
+);
+CREATE INDEX IF NOT EXISTS live_counts_by_time ON live_counts (bucket_start);
 """
+
+# Adds a replica's counts to the stored ones (both backends): buckets merge by addition.
+LIVE_COUNTS_UPSERT = ("INSERT INTO live_counts (name, version, bucket_start, bucket_seconds, slot, count)"
+                      " VALUES (?, ?, ?, ?, ?, ?) ON CONFLICT (name, version, bucket_start, bucket_seconds, slot)"
+                      " DO UPDATE SET count = live_counts.count + excluded.count")
 
 # The actor of writes made from the shell (``segscore store-fit``, ``segscore keys ...``).
 CLI_ACTOR = "cli"
@@ -699,6 +714,7 @@ class FilesystemStore:
                                "deleting it (or delete the whole segmentation)")
             reports = db.execute("DELETE FROM drift_reports WHERE name=? AND version=?", (name, version)).rowcount
             db.execute("DELETE FROM labels WHERE name=? AND version=?", (name, version))
+            db.execute("DELETE FROM live_counts WHERE name=? AND version=?", (name, version))
             db.execute("DELETE FROM versions WHERE name=? AND version=?", (name, version))
             db.execute("UPDATE segmentations SET updated_at=? WHERE name=?", (utc_now(), name))
             self._record_event(db, actor, "delete_version", name, version, {"drift_reports": reports})
@@ -716,6 +732,7 @@ class FilesystemStore:
                                                  (name,))]
             reports = db.execute("DELETE FROM drift_reports WHERE name=?", (name,)).rowcount
             db.execute("DELETE FROM labels WHERE name=?", (name,))
+            db.execute("DELETE FROM live_counts WHERE name=?", (name,))
             db.execute("DELETE FROM versions WHERE name=?", (name,))
             db.execute("DELETE FROM segmentations WHERE name=?", (name,))
             self._record_event(db, actor, "delete_segmentation", name, None,
@@ -730,6 +747,28 @@ class FilesystemStore:
             if gone:
                 self._record_event(db, actor, "prune_drift_reports", None, None,
                                    {"deleted": gone, "older_than": older_than})
+        return gone
+
+    # ----------------------------------------------------------------- live drift counts
+    def add_live_counts(self, rows: list[tuple[str, int, int, int, int, int]]) -> None:
+        """Add ``(name, version, bucket_start, bucket_seconds, slot, count)`` rows to the stored counts, in one
+        transaction (all or none). No event: this runs every few seconds per replica."""
+        with self._writing("live drift counts") as db:
+            db.executemany(LIVE_COUNTS_UPSERT, rows)
+
+    def live_counts(self, name: str, version: int, *, since: int) -> dict[int, int]:
+        """Slot -> count summed over the buckets of ``name`` ``version`` that start at or after ``since``."""
+        rows = self._query("SELECT slot, SUM(count) AS total FROM live_counts WHERE name=? AND version=?"
+                           " AND bucket_start>=? GROUP BY slot", (name, version, since))
+        return {int(r["slot"]): int(r["total"]) for r in rows}
+
+    def prune_live_counts(self, older_than: int, *, actor: str = "server") -> int:
+        """Delete the live-count buckets that start before ``older_than`` (unix seconds); return rows deleted."""
+        with self._writing("the live-count retention") as db:
+            gone = db.execute("DELETE FROM live_counts WHERE bucket_start < ?", (older_than,)).rowcount
+            if gone:
+                self._record_event(db, actor, "prune_live_counts", None, None,
+                                   {"deleted_rows": gone, "older_than": older_than})
         return gone
 
     # ----------------------------------------------------------------- API keys

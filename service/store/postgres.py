@@ -34,7 +34,7 @@ from psycopg_pool import ConnectionPool, PoolTimeout
 
 from service.core.bundle import Bundle
 from service.errors import JobNotRunning, StoreUnavailable
-from service.store.filesystem import CLI_ACTOR, SERVING_SUFFIX, FilesystemStore, utc_now
+from service.store.filesystem import CLI_ACTOR, LIVE_COUNTS_UPSERT, SERVING_SUFFIX, FilesystemStore, utc_now
 from service.store.objects import ContentAddressedFiles
 
 log = logging.getLogger("segscore.store")
@@ -234,6 +234,16 @@ class PostgresStore(FilesystemStore):
 
         self._listener = threading.Thread(target=run, name="segscore-store-listener", daemon=True)
         self._listener.start()
+
+    def add_live_counts(self, rows: list[tuple[str, int, int, int, int, int]]) -> None:
+        """One transaction of upserts that add (replicas merge by addition), sent in one batch and without the
+        change notification: live counts do not alter what is served, so other replicas need not wake."""
+        try:
+            with self._pool.connection() as connection:
+                with connection.cursor() as cursor:
+                    cursor.executemany(_placeholders(LIVE_COUNTS_UPSERT), rows)
+        except _DB_ERRORS as exc:
+            raise _unavailable("live drift counts could not be written", exc) from None
 
     # ----------------------------------------------------------------- artifacts (content-addressed)
     _ROW_LOCK = " FOR UPDATE"      # a job's row stays locked until the transaction that reads it ends
