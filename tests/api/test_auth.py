@@ -95,6 +95,8 @@ def _examples(iris, job_id: str = "0" * 32) -> dict[tuple[str, str], tuple[str, 
         ("POST", "/v1/segmentations/{name}/assign"): (f"{base}/assign", {"records": records_from(iris)[:3]}, 200),
         ("POST", "/v1/segmentations/{name}/drift"): (f"{base}/drift", {"records": records_from(iris)}, 200),
         ("GET", "/v1/segmentations/{name}/drift"): (f"{base}/drift", None, 200),
+        # The template store's live window holds fewer records than a report needs: the route's own 422.
+        ("GET", "/v1/segmentations/{name}/drift/live"): (f"{base}/drift/live", None, 422),
         ("GET", "/v1/segmentations/{name}/versions/{v}/compare/{w}"): (f"{base}/versions/1/compare/2", None, 200),
         # The chart routes also take the console's session cookie (ChartReadScope); here the Bearer header.
         ("GET", "/v1/segmentations/{name}/versions/{version}/charts/{chart}.png"):
