@@ -29,7 +29,9 @@ from service.errors import (
     BadBody,
     BodyTimeout,
     BundleCorrupt,
+    ClusterUnavailable,
     Conflict,
+    FitCancelled,
     FitTimeLimit,
     FitWorkerDied,
     InvalidInput,
@@ -38,6 +40,7 @@ from service.errors import (
     PayloadTooLarge,
     ScopeDenied,
     ServiceError,
+    SourceForbidden,
     StoreUnavailable,
     UnsupportedMediaType,
 )
@@ -54,9 +57,11 @@ STATUS_BY_ERROR: dict[type[ServiceError], int] = {
     MissingKey: 401,
     ScopeDenied: 403,
     AuthError: 401,
+    SourceForbidden: 403,  # a fit source outside SEGSCORE_SOURCE_PREFIXES: never read
     NotFound: 404,
     BodyTimeout: 408,
     Conflict: 409,
+    FitCancelled: 409,     # the fit was cancelled while it ran (the job layer reports it)
     PayloadTooLarge: 413,
     UnsupportedMediaType: 415,
     InvalidInput: 422,
@@ -64,6 +69,7 @@ STATUS_BY_ERROR: dict[type[ServiceError], int] = {
     FitTimeLimit: 504,     # the server's own worker did not answer in time (documented in the README)
     FitWorkerDied: 503,    # a resource failure of the server (killed, out of memory): retry later
     StoreUnavailable: 503,
+    ClusterUnavailable: 503,   # the Dask scheduler is unreachable or was lost: retry later
     ServiceError: 500,
 }
 

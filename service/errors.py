@@ -23,6 +23,9 @@
     │   └── FeatureMismatch      columns the version needs are absent
     ├── FitTimeLimit             a fit ran past SEGSCORE_FIT_TIME_LIMIT_SECONDS; its worker was stopped
     ├── FitWorkerDied            the worker process of a fit ended without an answer (killed, out of memory)
+    ├── SourceForbidden          a fit's data source lies outside SEGSCORE_SOURCE_PREFIXES (or none is set)
+    ├── FitCancelled             the fit was cancelled; its cluster work was stopped and nothing was written
+    ├── ClusterUnavailable       the Dask scheduler is unreachable or was lost during a fit
     ├── BundleCorrupt            stored artifact missing, fails its SHA-256 check, or unreadable
     └── StoreUnavailable
 """
@@ -202,6 +205,26 @@ class FitWorkerDied(ServiceError):
                else f"exited with code {exitcode}")
         super().__init__(f"the fit worker process {how} (for instance out of memory) before answering; "
                          "nothing was written; the fit can be retried")
+
+
+class SourceForbidden(ServiceError):
+    """The fit's data source is not allowed; nothing was read."""
+
+    def __init__(self, reason: str) -> None:
+        super().__init__(f"the source is refused ({reason}); nothing was read. Sources must lie under one of the "
+                         "prefixes of the setting SEGSCORE_SOURCE_PREFIXES")
+
+
+class FitCancelled(ServiceError):
+    """The fit was cancelled; its work on the cluster was stopped and nothing was written."""
+
+
+class ClusterUnavailable(ServiceError):
+    """The Dask cluster cannot run the fit; nothing was written."""
+
+    def __init__(self, address: str | None, why: str) -> None:
+        super().__init__(f"the Dask scheduler {address or '(SEGSCORE_DASK_SCHEDULER)'} {why}; the fit stopped and "
+                         "nothing was written; check the cluster and retry")
 
 
 class StoreUnavailable(ServiceError):
