@@ -37,6 +37,12 @@ class FitRequest(BaseModel):
     seed: int = Field(0, ge=0, le=2**32 - 1)
     outlier_quantile: float = Field(0.99, ge=0.5, lt=1.0)
     make_live: bool | None = None
+    engine: Literal["auto", "memory", "dask"] = Field(
+        "auto", description="where the fit runs: memory (this server), dask (the cluster at SEGSCORE_DASK_SCHEDULER); "
+        "auto: dask for a source, or above SEGSCORE_DASK_AUTO_ROWS rows when a scheduler is set, else memory")
+    source: str | None = Field(None, min_length=1, max_length=2048, description=(
+        "instead of records: a Parquet dataset or CSV files (path or fsspec URL) that the Dask workers read; only "
+        "under SEGSCORE_SOURCE_PREFIXES (403 otherwise)"))
 
     @field_validator("components", "k", mode="before")
     @classmethod
@@ -121,6 +127,8 @@ class FitReport(BaseModel):
     data_sha256: str
     bundle_sha256: str
     library_versions: dict[str, str]
+    engine: str | None = Field(None, description="where the fit ran (dask; absent for fits on this server)")
+    engine_details: dict[str, Any] | None = Field(None, description="the Dask engine: workers, partitions, methods")
     warnings: list[FitWarning] = Field(default_factory=list, description=(
         "what the caller should know about a valid fit: default features dropped (all missing or constant), "
         "empty or tiny segments, fewer distinct clusters than k, k at the edge of the searched range; [] if none"))

@@ -27,7 +27,7 @@ from service.api.validation import (
 from service.deps import ActorDep, AdminScope, FitScope, ReadScope, SettingsDep, StoreDep
 from service.errors import InvalidInput, RecordProblem
 from service.fitting import fit_in_worker
-from service.inputs.fit_input import QUERY_PARAMETERS, prepare_fit
+from service.inputs.fit_input import QUERY_PARAMETERS, prepare_fit_request
 
 router = APIRouter(prefix="/segmentations", tags=["segmentations"])
 
@@ -67,14 +67,21 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
     async with large_body_slot(request, settings):
         body = await read_body(request, settings.max_body_bytes)
         # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
-        values, config, make_live = await anyio.to_thread.run_sync(
-            prepare_fit, body, csv, request.query_params, settings)
+        plan = await anyio.to_thread.run_sync(prepare_fit_request, body, csv, request.query_params, settings)
 
     def fit_and_save() -> dict[str, Any]:
-        # The fit runs in a worker process (service.fitting); the store is written here, by the server.
-        bundle = fit_in_worker(values, config, max_agglomerative_rows=settings.max_agglomerative_rows,
-                               time_limit=settings.fit_time_limit_seconds)
-        return store.save_version(name, bundle, make_live=make_live, actor=actor)
+        # The store is written here, by the server, after the fit returned: a failed fit writes nothing.
+        if plan.engine == "dask":
+            # On the cluster: this thread only waits and combines aggregates (the data stays on the workers).
+            # When background jobs exist, this call moves into the job, with the job's progress callback and a
+            # CancelHook the job's cancel calls (README, "Fitting on a Dask cluster").
+            from service.engines.dask_engine import run_dask_fit
+            bundle = run_dask_fit(plan.values, plan.config, source=plan.source, settings=settings)
+        else:
+            # In a worker process (service.fitting).
+            bundle = fit_in_worker(plan.values, plan.config, max_agglomerative_rows=settings.max_agglomerative_rows,
+                                   time_limit=settings.fit_time_limit_seconds)
+        return store.save_version(name, bundle, make_live=plan.make_live, actor=actor)
 
     started = time.perf_counter()
     report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)

@@ -383,6 +383,9 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
         "data_sha256": data_sha256(values),
         "library_versions": library_versions(),
         "warnings": fit_warnings,
+        # Where the fit ran (service.engines.dask_engine writes "dask" and its cluster's details).
+        "engine": "memory",
+        "engine_details": None,
     }
     return Bundle(
         features=list(config.features),

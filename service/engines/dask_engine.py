@@ -881,3 +881,58 @@ def _profiles(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centro
 def _finite(value: float) -> float | None:
     value = float(value)
     return value if np.isfinite(value) else None
+
+
+# --------------------------------------------------------------------------- running a fit from the service
+def run_dask_fit(values: np.ndarray | None, config: FitConfig, *, source: DataSource | None, settings: Any,
+                 progress: Progress | None = None, cancel: CancelHook | None = None) -> Bundle:
+    """A fit on the cluster at ``settings.dask_scheduler``: connect, spill uploaded ``values`` to Parquet under
+    ``settings.dask_spill_dir`` (when no ``source``), fit, clean up. Blocks: call it from a thread.
+
+    The fit is cancelled after ``settings.fit_time_limit_seconds`` (``FitTimeLimit``). The caller saves the
+    bundle; a failure here has written no version.
+    """
+    from distributed import Client
+
+    from service.engines.sources import spill_records
+    from service.errors import FitTimeLimit
+
+    hook = cancel or CancelHook()
+    address = settings.dask_scheduler
+    if not address:
+        raise InvalidInput("engine 'dask' needs a Dask scheduler; the server has none (setting "
+                           "SEGSCORE_DASK_SCHEDULER)", field="engine")
+    if source is None:
+        spill_dir = settings.dask_spill_dir or (settings.store_dir / "dask-spill")
+        source = spill_records(values, list(config.features), spill_dir)
+    timed_out = threading.Event()
+
+    def stop_at_limit() -> None:
+        timed_out.set()
+        hook.cancel()
+
+    timer = threading.Timer(settings.fit_time_limit_seconds, stop_at_limit)
+    timer.daemon = True
+    try:
+        try:
+            client = Client(address, timeout="10s", set_as_default=False)
+        except (OSError, TimeoutError) as exc:
+            raise ClusterUnavailable(address, f"cannot be reached ({type(exc).__name__})") from exc
+        timer.start()
+        try:
+            return fit_on_dask(source, config, client=client, progress=progress, cancel=hook)
+        except FitCancelled:
+            if timed_out.is_set():
+                raise FitTimeLimit(settings.fit_time_limit_seconds) from None
+            raise
+        finally:
+            timer.cancel()
+            try:
+                client.close(timeout=10)
+            except Exception:  # noqa: BLE001 - a lost scheduler: nothing left to close
+                pass
+    finally:
+        if source.spilled is not None:
+            import shutil
+
+            shutil.rmtree(source.spilled, ignore_errors=True)
