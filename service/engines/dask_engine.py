@@ -143,17 +143,15 @@ class _Cluster:
             self.hook._release(futures)
 
     def _wait(self, futures: list[Any]) -> list[Any]:
-        from distributed import wait
-
         lost_since = None
+        pause = 0.005
         while True:
             if self.hook.cancelled:
                 raise FitCancelled()
-            try:
-                wait(futures, timeout=WAIT_SECONDS)
+            if all(future.done() for future in futures):
                 break
-            except TimeoutError:
-                pass
+            time.sleep(pause)
+            pause = min(pause * 2, WAIT_SECONDS)
             if self.client.status != "running":
                 lost_since = lost_since or time.monotonic()
                 if time.monotonic() - lost_since > SCHEDULER_GRACE_SECONDS:
