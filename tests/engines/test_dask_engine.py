@@ -54,6 +54,12 @@ def blobs():
     return values, truth
 
 
+@pytest.fixture(scope="module")
+def in_memory(blobs):
+    """The in-memory fit (service.core.fit) of the same data and config, fitted once for the module."""
+    return fit_bundle(blobs[0], config())
+
+
 def config(**overrides) -> FitConfig:
     base = dict(features=FEATURES, k_min=2, k_max=6, seed=0, silhouette_sample=2000, reference_sample=500)
     return FitConfig(**{**base, **overrides})
@@ -63,11 +69,10 @@ def labels_of(bundle, values):
     return assign(compile_bundle(bundle), values).segment
 
 
-def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(dask_client, blobs, tmp_path):
+def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(dask_client, blobs, in_memory, tmp_path):
     values, _ = blobs
     source = spill_records(values, FEATURES, tmp_path)
     on_cluster = fit_on_dask(source, config(), client=dask_client)
-    in_memory = fit_bundle(values, config())
 
     assert on_cluster.report["engine"] == "dask" and on_cluster.report["engine_details"]["workers"] == 2
     assert on_cluster.k == in_memory.k
@@ -205,18 +210,17 @@ def test_lost_scheduler_fails_with_a_clear_error(blobs, tmp_path):
         local.close()
 
 
-def test_a_worker_killed_mid_fit_is_replaced_and_the_fit_completes(dask_client, blobs, tmp_path):
+def test_a_worker_killed_mid_fit_is_replaced_and_the_fit_completes(dask_client, blobs, in_memory, tmp_path):
     """Last in the module: it kills one of the shared cluster's worker processes (its nanny restarts it)."""
     values, _ = blobs
-    killed = threading.Event()
+    killed: list[int] = []
 
     def progress(step: str, fraction: float) -> None:
-        if step == "kmeans" and not killed.is_set():
-            killed.set()
-            pids = dask_client.run(os.getpid)
-            os.kill(sorted(pids.values())[0], signal.SIGKILL)
+        if step == "kmeans" and not killed:
+            # Mid-fit: the data is persisted on both workers; one of them (and its blocks) disappears.
+            killed.append(sorted(dask_client.run(os.getpid).values())[0])
+            os.kill(killed[0], signal.SIGKILL)
 
     bundle = fit_on_dask(spill_records(values, FEATURES, tmp_path), config(), client=dask_client, progress=progress)
-    assert killed.is_set()
-    in_memory = fit_bundle(values, config())
+    assert len(killed) == 1 and killed[0] not in dask_client.run(os.getpid).values()
     assert adjusted_rand_score(labels_of(in_memory, values), labels_of(bundle, values)) >= 0.95
