@@ -75,6 +75,7 @@ KMEANS_PARALLEL_ROUNDS = 5          # Bahmani et al. 2012 find 5 rounds enough i
 KMEANS_PARALLEL_MAX_ROUNDS = 20     # more rounds only while fewer distinct candidates than k_max were drawn
 MAX_ITER = 300                      # scikit-learn's KMeans defaults
 TOL = 1e-4
+MAX_BLOCK_ROWS = 200_000            # rows per block kept on a worker (a larger partition is sliced)
 WAIT_SECONDS = 0.25                 # how often a waiting fit looks at its cancel hook and the scheduler
 SCHEDULER_GRACE_SECONDS = 10.0      # a scheduler gone this long fails the fit
 
@@ -352,15 +353,13 @@ def fit_on_dask(source: DataSource, config: FitConfig, *, client: Any, progress:
     report_progress = progress or (lambda step, fraction: None)
     report_progress("reading", STAGES["reading"])
     lazy, features = _open(source, config)
-    persisted = client.persist(lazy)
-    hook._hold(client, [f for d in persisted for f in _futures_of(client, d)])
+    held: list[Any] = []            # the futures of the data persisted on the workers
     try:
-        return _fit(persisted, features, config, client, hook, report_progress, source)
+        return _fit(lazy, features, config, client, hook, report_progress, source, held)
     finally:
-        futures = [f for d in persisted for f in _futures_of(client, d)]
-        hook._release(futures)
+        hook._release(held)
         try:
-            client.cancel(futures)      # free the workers' copies of the data
+            client.cancel(held)         # free the workers' copies of the data
         except Exception:  # noqa: BLE001 - a lost scheduler has freed them already
             pass
 
@@ -371,8 +370,21 @@ def _futures_of(client: Any, delayed: Any) -> list[Any]:
     return futures_of(delayed)
 
 
+def _rows(block: np.ndarray, start: int, stop: int) -> np.ndarray:
+    return block[start:stop]
+
+
+def _persist(client: Any, hook: CancelHook, blocks: list[Any], held: list[Any]) -> list[Any]:
+    """Keep ``blocks`` in the workers' memory (a lost worker's blocks are recomputed from their source)."""
+    persisted = client.persist(blocks)
+    futures = [f for d in persisted for f in _futures_of(client, d)]
+    held.extend(futures)
+    hook._hold(client, futures)
+    return persisted
+
+
 def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any, hook: CancelHook,
-         progress: Progress, source: DataSource) -> Bundle:
+         progress: Progress, source: DataSource, held: list[Any]) -> Bundle:
     import dask
     import dask.array as da
 
@@ -384,11 +396,19 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
         # Raised on a worker while reading: a cell that is not a number, a file gone since the request.
         raise InvalidInput(f"the workers could not read the features as numbers ({type(exc).__name__}: "
                            f"{str(exc)[:200]})", field="source") from exc
-    offsets = np.concatenate([[0], np.cumsum(lengths)])[:-1]
-    keep_blocks = [i for i, n in enumerate(lengths) if n > 0]
-    blocks = [blocks[i] for i in keep_blocks]
-    wheres = [Where(i, int(offsets[b])) for i, b in enumerate(keep_blocks)]
-    lengths = [lengths[b] for b in keep_blocks]
+    # Blocks of at most MAX_BLOCK_ROWS rows (a large file is sliced), so every worker gets a share; empty
+    # partitions are left out.
+    pieces, piece_lengths = [], []
+    for block, rows in zip(blocks, lengths):
+        bounds = np.linspace(0, rows, max(1, math.ceil(rows / MAX_BLOCK_ROWS)) + 1).astype(int)
+        for start, stop in zip(bounds[:-1], bounds[1:]):
+            if stop > start:
+                pieces.append(block if bounds.size == 2 else dask.delayed(_rows, pure=True)(block, start, stop))
+                piece_lengths.append(int(stop - start))
+    blocks = _persist(client, hook, pieces, held)
+    lengths = piece_lengths
+    offsets = np.concatenate([[0], np.cumsum(lengths)])[:-1].astype(int)
+    wheres = [Where(i, int(offsets[i])) for i in range(len(blocks))]
     cluster = _Cluster(client, hook, blocks, wheres)
     n = int(sum(lengths))
     p = len(features)
@@ -412,9 +432,12 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
                                  dropped_features=config.dropped_features + dropped)
     if len(keep) < p:
         # Refit on the kept columns: re-run the statistics on the narrower blocks.
-        blocks = [dask.delayed(_columns, pure=True)(b, keep) for b in blocks]
-        blocks = client.persist(blocks)
-        hook._hold(client, [f for d in blocks for f in _futures_of(client, d)])
+        narrower = _persist(client, hook, [dask.delayed(_columns, pure=True)(b, keep) for b in blocks], held)
+        wide = held[:len(blocks)]
+        del held[:len(blocks)]
+        hook._release(wide)
+        del wide                        # the full-width copies can go (lineage keeps them recomputable)
+        blocks = narrower
         cluster = _Cluster(client, hook, blocks, wheres)
         parts = cluster.blocks_map(ops.column_moments)
         observed, sums = observed[keep], sums[keep]

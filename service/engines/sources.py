@@ -94,13 +94,15 @@ def _check_local(path: str, prefixes: Sequence[str]) -> DataSource:
     head, tail = os.path.split(path)
     if _GLOB.search(head):
         raise SourceForbidden("wildcards are allowed in the last path segment only")
-    real_head = os.path.realpath(head)
-    if not any(_inside(real_head, root) for root in roots):
-        raise SourceForbidden("it is not under any allowed prefix")
     if _GLOB.search(tail):
+        real_head = os.path.realpath(head)
+        if not any(_inside(real_head, root) for root in roots):
+            raise SourceForbidden("it is not under any allowed prefix")
         named = sorted(glob.glob(os.path.join(glob.escape(real_head), tail)))
     else:
-        named = [os.path.join(real_head, tail)]
+        if not any(_inside(os.path.realpath(path), root) for root in roots):
+            raise SourceForbidden("it is not under any allowed prefix (symbolic links resolved)")
+        named = [path]
     files: list[str] = []
     for item in named:
         real = os.path.realpath(item)
