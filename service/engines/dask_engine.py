@@ -40,6 +40,7 @@ from functools import partial
 from typing import Any, Callable
 
 import numpy as np
+import sklearn
 from sklearn.cluster import KMeans
 from sklearn.decomposition import PCA
 from sklearn.impute import SimpleImputer
@@ -76,6 +77,7 @@ KMEANS_PARALLEL_MAX_ROUNDS = 20     # more rounds only while fewer distinct cand
 MAX_ITER = 300                      # scikit-learn's KMeans defaults
 TOL = 1e-4
 MAX_BLOCK_ROWS = 200_000            # rows per block kept on a worker (a larger partition is sliced)
+SILHOUETTE_WORKING_MIB = 64          # scikit-learn's chunk size for the silhouette's pairwise distances
 WAIT_SECONDS = 0.25                 # how often a waiting fit looks at its cancel hook and the scheduler
 SCHEDULER_GRACE_SECONDS = 10.0      # a scheduler gone this long fails the fit
 
@@ -526,10 +528,13 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
     sample_size = min(n, config.silhouette_sample)
     sample_rows = np.sort(np.random.default_rng(config.seed).choice(n, size=sample_size, replace=False))
     sample_space, _ = steps.space(cluster.rows(sample_rows))
-    for row in curve:
-        labels = ops.sq_distances(sample_space, centres[row["k"]]).argmin(axis=1)
-        if 2 <= np.unique(labels).size <= sample_space.shape[0] - 1:
-            row["silhouette"] = float(silhouette_score(sample_space, labels))
+    # scikit-learn computes the sample's pairwise distances in chunks of ``working_memory`` MiB (1 GiB by
+    # default): a smaller chunk keeps this process's peak low at the same result.
+    with sklearn.config_context(working_memory=SILHOUETTE_WORKING_MIB):
+        for row in curve:
+            labels = ops.sq_distances(sample_space, centres[row["k"]]).argmin(axis=1)
+            if 2 <= np.unique(labels).size <= sample_space.shape[0] - 1:
+                row["silhouette"] = float(silhouette_score(sample_space, labels))
     distortions = [row["distortion"] for row in curve]
     if config.k_fixed:
         chosen, method = config.k_min, "fixed"
@@ -715,17 +720,23 @@ def _fold_models(statistics: list[dict[str, np.ndarray]], steps: Steps, config: 
     return fold_steps, fold_centroids
 
 
-def _segment_scales(cluster: _Cluster, producer: Callable, counts: np.ndarray, k: int, offset: int) -> np.ndarray:
-    """(N_FOLDS, k) ``segment_medians`` of each fold's in-sample scores (groups laid out by
-    ``fold_in_sample_scores``; ``offset`` 0 for distances, k + 1 for residuals)."""
+def _segment_scales(cluster: _Cluster, producer: Callable, counts: np.ndarray, k: int, offsets: tuple[int, ...]
+                    ) -> list[np.ndarray]:
+    """(N_FOLDS, k) ``segment_medians`` of each fold's in-sample scores, per offset (groups laid out by
+    ``fold_in_sample_scores``: offset 0 for distances, k + 1 for residuals), in one selection."""
     groups = {}
-    for f in range(N_FOLDS):
-        base = f * 2 * (k + 1) + offset
-        groups[base + k] = int(counts[f].sum())
-        for c in range(k):
-            if counts[f, c] >= MIN_MEDIAN_ROWS:
-                groups[base + c] = int(counts[f, c])
+    for offset in offsets:
+        for f in range(N_FOLDS):
+            base = f * 2 * (k + 1) + offset
+            groups[base + k] = int(counts[f].sum())
+            for c in range(k):
+                if counts[f, c] >= MIN_MEDIAN_ROWS:
+                    groups[base + c] = int(counts[f, c])
     found = cluster.medians(producer, groups)
+    return [_scales_at(found, k, offset) for offset in offsets]
+
+
+def _scales_at(found: dict[int, float], k: int, offset: int) -> np.ndarray:
     out = np.empty((N_FOLDS, k))
     for f in range(N_FOLDS):
         base = f * 2 * (k + 1) + offset
@@ -771,8 +782,8 @@ def _calibrate(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centr
     train_rows = member_rows.sum(axis=0) - member_rows                                    # (folds, k) training part
     in_sample = partial(ops.fold_in_sample_scores, final=steps, centroids=centroids, fold_steps=fold_steps,
                         fold_centroids=fold_centroids, seed=seed)
-    d_scale = _segment_scales(cluster, in_sample, train_rows, k, 0)
-    r_scale = _segment_scales(cluster, in_sample, train_rows, k, k + 1) if has_residual else None
+    scales = _segment_scales(cluster, in_sample, train_rows, k, (0, k + 1) if has_residual else (0,))
+    d_scale, r_scale = scales[0], (scales[1] if has_residual else None)
     held = partial(ops.held_out_scores, final=steps, centroids=centroids, fold_steps=fold_steps,
                    fold_centroids=fold_centroids, d_scale=d_scale, r_scale=r_scale, seed=seed)
     own_rows = min_own_rows(q)
@@ -789,7 +800,8 @@ def _calibrate(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centr
         if not borrowed[c] and sizes[c] >= 2:
             queries += [(c, conformal_rank(int(sizes[c]))), (c, loo_rank(int(sizes[c])))]
     if has_residual:
-        queries.append((k, conformal_rank(n)))
+        # The pooled conformal quantile, then np.median's two middle order statistics, of held-out residuals.
+        queries += [(k, conformal_rank(n)), (k, (n - 1) // 2), (k, n // 2)]
     picked = cluster.select(held, queries)
     pooled, pooled_loo = picked[0], picked[1]
     multipliers = np.full(k, pooled)
@@ -800,8 +812,8 @@ def _calibrate(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centr
             multipliers[c], limits[c] = picked[at], picked[at + 1]
             at += 2
     pooled_residual = float(picked[at]) if has_residual else 0.0
+    residual_median = float((picked[at + 1] + picked[at + 2]) / 2) if has_residual else 0.0
     flagged = np.asarray(sum(cluster.blocks_map(ops.scores_above, held, np.arange(k), limits)), dtype=np.int64)
-    residual_median = (cluster.medians(held, {k: n})[k] if has_residual else 0.0)
 
     final_groups = {2 * k: n, 2 * k + 1: n}
     for c in range(k):
