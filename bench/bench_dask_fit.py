@@ -7,7 +7,7 @@ PCA(0.9), k-means k = 4..8 (n_init 3), 5-fold held-out thresholds: the Dask engi
 Layout per run: this process starts a ``distributed.LocalCluster`` (the scheduler lives here) with W worker
 processes (1 thread each), and a fresh child process plays the server: it connects a Client, calls
 ``fit_on_dask`` and reports its wall time, its peak RSS before the fit (after imports and connecting) and
-after it (``ru_maxrss``). Each worker's peak RSS is read from /proc/<pid>/status (VmHWM) before the cluster
+after it (VmHWM of /proc/self/status; ``ru_maxrss`` would carry the parent's peak across fork and exec). Each worker's peak RSS is read from /proc/<pid>/status (VmHWM) before the cluster
 closes (the workers are fresh per run). The server's growth must stay flat as N grows: the data never passes
 through it.
 
@@ -66,8 +66,6 @@ def peak_kib(pid: int) -> int:
 
 def server(address: str, dataset: str) -> None:
     """The child: connect, fit, print one JSON line."""
-    import resource
-
     from distributed import Client
 
     from service.core.bundle import FitConfig
@@ -77,11 +75,11 @@ def server(address: str, dataset: str) -> None:
     client = Client(address, set_as_default=False)
     source = check_source(dataset, (dataset,))
     config = FitConfig(features=FEATURES, k_min=4, k_max=8, n_init=3, seed=0)
-    before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    before = peak_kib(os.getpid())
     started = time.perf_counter()
     bundle = fit_on_dask(source, config, client=client)
     wall = time.perf_counter() - started
-    after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    after = peak_kib(os.getpid())
     client.close()
     print(json.dumps({"wall": wall, "server_before_kib": before, "server_peak_kib": after, "k": bundle.k,
                       "components": bundle.report["components"]}))

@@ -77,6 +77,7 @@ KMEANS_PARALLEL_MAX_ROUNDS = 20     # more rounds only while fewer distinct cand
 MAX_ITER = 300                      # scikit-learn's KMeans defaults
 TOL = 1e-4
 MAX_BLOCK_ROWS = 200_000            # rows per block kept on a worker (a larger partition is sliced)
+MIN_BLOCK_ROWS = 10_000             # ... and no smaller than this when slicing to spread the rows
 SILHOUETTE_WORKING_MIB = 64          # scikit-learn's chunk size for the silhouette's pairwise distances
 WAIT_SECONDS = 0.25                 # how often a waiting fit looks at its cancel hook and the scheduler
 SCHEDULER_GRACE_SECONDS = 10.0      # a scheduler gone this long fails the fit
@@ -400,9 +401,12 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
                            f"{str(exc)[:200]})", field="source") from exc
     # Blocks of at most MAX_BLOCK_ROWS rows (a large file is sliced), so every worker gets a share; empty
     # partitions are left out.
+    workers = len(client.scheduler_info().get("workers", {}))
+    # Two blocks per worker at least (when the data allows MIN_BLOCK_ROWS each), so every worker gets a share.
+    block_rows = max(MIN_BLOCK_ROWS, min(MAX_BLOCK_ROWS, math.ceil(sum(lengths) / max(2 * workers, 1))))
     pieces, piece_lengths = [], []
     for block, rows in zip(blocks, lengths):
-        bounds = np.linspace(0, rows, max(1, math.ceil(rows / MAX_BLOCK_ROWS)) + 1).astype(int)
+        bounds = np.linspace(0, rows, max(1, math.ceil(rows / block_rows)) + 1).astype(int)
         for start, stop in zip(bounds[:-1], bounds[1:]):
             if stop > start:
                 pieces.append(block if bounds.size == 2 else dask.delayed(_rows, pure=True)(block, start, stop))
@@ -414,7 +418,6 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
     cluster = _Cluster(client, hook, blocks, wheres)
     n = int(sum(lengths))
     p = len(features)
-    workers = len(client.scheduler_info().get("workers", {}))
 
     # ---- column statistics and checks
     progress("statistics", STAGES["statistics"])
