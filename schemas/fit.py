@@ -8,7 +8,7 @@ Record = dict[str, Any]
 
 # The fit engines, in one place (service/engines maps each to its function): how the bundle is fitted, never
 # what a version holds. "auto" picks memory up to the out_of_core_rows setting and out_of_core above.
-FIT_ENGINES = ("memory", "out_of_core")
+FIT_ENGINES = ("memory", "out_of_core", "dask")
 AUTO_ENGINE = "auto"
 EngineChoice = Literal[(AUTO_ENGINE, *FIT_ENGINES)]  # type: ignore[valid-type]
 
@@ -45,7 +45,12 @@ class FitRequest(BaseModel):
     make_live: bool | None = None
     engine: EngineChoice = Field(AUTO_ENGINE, description=(  # type: ignore[valid-type]
         "memory: the whole matrix in memory (exact); out_of_core: streaming passes over the upload (big inputs; "
-        "k-means only); auto: memory up to the out_of_core_rows setting, out_of_core above"))
+        "k-means only); dask: on the cluster at SEGSCORE_DASK_SCHEDULER; auto: dask for a source or above "
+        "SEGSCORE_DASK_AUTO_ROWS rows when a scheduler is set, else memory up to the out_of_core_rows setting "
+        "and out_of_core above"))
+    source: str | None = Field(None, min_length=1, max_length=2048, description=(
+        "instead of records: a Parquet dataset or CSV files (path or fsspec URL) that the Dask workers read; only "
+        "under SEGSCORE_SOURCE_PREFIXES (403 otherwise)"))
 
     @field_validator("components", "k", mode="before")
     @classmethod
@@ -130,7 +135,9 @@ class FitReport(BaseModel):
     data_sha256: str
     bundle_sha256: str
     library_versions: dict[str, str]
-    engine: str | None = Field(None, description="the fit engine that ran (memory, out_of_core); None before engines")
+    engine: str | None = Field(None, description="the fit engine that ran (memory, out_of_core, dask); None before "
+                               "engines")
+    engine_details: dict[str, Any] | None = Field(None, description="the Dask engine: workers, partitions, methods")
     warnings: list[FitWarning] = Field(default_factory=list, description=(
         "what the caller should know about a valid fit: default features dropped (all missing or constant), "
         "empty or tiny segments, fewer distinct clusters than k, k at the edge of the searched range; [] if none"))

@@ -30,6 +30,7 @@ from service.errors import (
     BadBody,
     BodyTimeout,
     BundleCorrupt,
+    ClusterUnavailable,
     Conflict,
     FitTimeLimit,
     FitWorkerDied,
@@ -39,6 +40,7 @@ from service.errors import (
     PayloadTooLarge,
     ScopeDenied,
     ServiceError,
+    SourceForbidden,
     StoreUnavailable,
     UnsupportedMediaType,
 )
@@ -58,6 +60,7 @@ STATUS_BY_ERROR: dict[type[ServiceError], int] = {
     MissingKey: 401,
     ScopeDenied: 403,
     AuthError: 401,
+    SourceForbidden: 403,  # a fit source outside SEGSCORE_SOURCE_PREFIXES: never read
     NotFound: 404,
     BodyTimeout: 408,
     Conflict: 409,
@@ -68,6 +71,7 @@ STATUS_BY_ERROR: dict[type[ServiceError], int] = {
     FitTimeLimit: 504,     # the server's own worker did not answer in time (documented in the README)
     FitWorkerDied: 503,    # a resource failure of the server (killed, out of memory): retry later
     StoreUnavailable: 503,
+    ClusterUnavailable: 503,   # the Dask scheduler is unreachable or was lost: retry later
     ServiceError: 500,
 }
 

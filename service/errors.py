@@ -20,7 +20,7 @@
     │   ├── JobFinished          a finished job cannot be cancelled
     │   ├── JobReportNotReady    a job that is not done has no report
     │   ├── JobNotRunning        the job was cancelled or failed while its fit ran: its version is not written
-    │   └── FitCancelled         the fit's job was cancelled; its worker was stopped
+    │   └── FitCancelled         the fit's job was cancelled; its worker (or its cluster work) was stopped
     ├── BodyTimeout              the client stopped sending its body
     ├── PayloadTooLarge
     ├── UnsupportedMediaType     body neither JSON nor CSV (nor Arrow, where a route takes it)
@@ -29,6 +29,8 @@
     │   └── FeatureMismatch      columns the version needs are absent
     ├── FitTimeLimit             a fit ran past SEGSCORE_FIT_TIME_LIMIT_SECONDS; its worker was stopped
     ├── FitWorkerDied            the worker process of a fit ended without an answer (killed, out of memory)
+    ├── SourceForbidden          a fit's data source lies outside SEGSCORE_SOURCE_PREFIXES (or none is set)
+    ├── ClusterUnavailable       the Dask scheduler is unreachable or was lost during a fit
     ├── BundleCorrupt            stored artifact missing, fails its SHA-256 check, or unreadable
     └── StoreUnavailable
 """
@@ -254,7 +256,24 @@ class FitWorkerDied(ServiceError):
 
 
 class FitCancelled(Conflict):
-    """The fit's job was cancelled; its worker was stopped and nothing was written."""
+    """The fit's job was cancelled; its worker (or its work on the Dask cluster) was stopped and nothing was
+    written."""
+
+
+class SourceForbidden(ServiceError):
+    """The fit's data source is not allowed; nothing was read."""
+
+    def __init__(self, reason: str) -> None:
+        super().__init__(f"the source is refused ({reason}); nothing was read. Sources must lie under one of the "
+                         "prefixes of the setting SEGSCORE_SOURCE_PREFIXES")
+
+
+class ClusterUnavailable(ServiceError):
+    """The Dask cluster cannot run the fit; nothing was written."""
+
+    def __init__(self, address: str | None, why: str) -> None:
+        super().__init__(f"the Dask scheduler {address or '(SEGSCORE_DASK_SCHEDULER)'} {why}; the fit stopped and "
+                         "nothing was written; check the cluster and retry")
 
 
 class StoreUnavailable(ServiceError):

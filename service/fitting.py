@@ -32,7 +32,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from service.core.bundle import Bundle, FitConfig
-from service.engines import run_engine
+from service.engines import CLUSTER_ENGINE, run_engine
 from service.engines.source import MatrixFile
 from service.errors import FitCancelled, FitTimeLimit, FitWorkerDied, ServiceError
 
@@ -137,3 +137,39 @@ def fit_in_worker(values: np.ndarray | MatrixFile, config: FitConfig, *, max_agg
         raise _rebuild(*message[1:])
     log.error("the fit worker failed:\n%s", message[1])
     raise RuntimeError("the fit worker failed; see the server log")
+
+
+# The cluster engine's steps, named as a job's steps are (``service.core.fit.STEP_START``).
+_CLUSTER_STEPS = {"statistics": "scaling", "pca": "reducing", "kmeans": "clustering", "selection": "clustering",
+                  "calibration": "profiling", "profiles": "profiling", "reference": "profiling"}
+
+
+def run_fit(values: np.ndarray | MatrixFile | None, config: FitConfig, *, engine: str, source: Any, settings: Any,
+            progress: Callable[[str, float], None] | None = None, cancel: threading.Event | None = None) -> Bundle:
+    """One fit, where its engine runs: ``dask`` in this thread (it only waits for the cluster, whose workers hold
+    the data), every other engine in a fit worker process (``fit_in_worker``). Blocks: call from a thread.
+    ``values`` is None when the workers read ``source``; setting ``cancel`` stops either kind."""
+    if engine != CLUSTER_ENGINE:
+        return fit_in_worker(values, config, max_agglomerative_rows=settings.max_agglomerative_rows,
+                             time_limit=settings.fit_time_limit_seconds, engine=engine, progress=progress,
+                             cancel=cancel)
+    from service.engines.dask_engine import CancelHook, run_dask_fit     # dask is imported only when used
+
+    hook, finished = CancelHook(), threading.Event()
+
+    def relay_cancel() -> None:
+        while cancel is not None and not finished.wait(CANCEL_POLL_SECONDS):
+            if cancel.is_set():
+                hook.cancel()
+                return
+
+    def cluster_progress(step: str, fraction: float) -> None:
+        if progress is not None:
+            progress(_CLUSTER_STEPS.get(step, step), fraction)
+
+    threading.Thread(target=relay_cancel, name="segscore-dask-cancel", daemon=True).start()
+    try:
+        matrix = values.load() if isinstance(values, MatrixFile) else values
+        return run_dask_fit(matrix, config, source=source, settings=settings, progress=cluster_progress, cancel=hook)
+    finally:
+        finished.set()

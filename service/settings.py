@@ -4,10 +4,10 @@ from __future__ import annotations
 
 from functools import lru_cache
 from pathlib import Path
-from typing import Literal
+from typing import Annotated, Literal
 
-from pydantic import Field, model_validator
-from pydantic_settings import BaseSettings, SettingsConfigDict
+from pydantic import Field, field_validator, model_validator
+from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
 # The scopes an API key can carry; "admin" implies every scope, including those of routes added later.
 SCOPES = ("read", "fit", "assign", "drift", "admin")
@@ -87,6 +87,18 @@ class Settings(BaseSettings):
     # heartbeat is older (its server was killed or restarted) is marked failed by any server of the store.
     job_lease_seconds: float = Field(30.0, gt=0)
 
+    # Fits on a Dask cluster (service/engines/dask_engine.py; README "Fitting on a Dask cluster").
+    # The scheduler's address, e.g. tcp://host:8786; unset: no Dask engine.
+    dask_scheduler: str | None = None
+    # engine "auto" picks the Dask engine above this many training rows, when a scheduler is set.
+    dask_auto_rows: int = Field(5_000_000, ge=2)
+    # Where uploaded records are spilled as Parquet before a Dask fit: storage every worker can read under the
+    # same path (default: <store_dir>/dask-spill, right for a cluster on this machine).
+    dask_spill_dir: Path | None = None
+    # Data locations a fit's ``source`` may name (fsspec URLs or paths, e.g. file:///lake/customers/ or
+    # s3://bucket/segments/), comma-separated. Empty (the default): every ``source`` is refused with 403.
+    source_prefixes: Annotated[tuple[str, ...], NoDecode] = ()
+
     drift_min_rows: int = Field(50, ge=2)
     drift_alpha: float = Field(0.01, gt=0, lt=0.5)
     drift_psi_watch: float = Field(0.10, gt=0)
@@ -116,6 +128,13 @@ class Settings(BaseSettings):
     access_log: bool = False
     log_level: str = "info"
     log_format: Literal["text", "json"] = "text"    # json: one JSON object a line
+
+    @field_validator("source_prefixes", mode="before")
+    @classmethod
+    def _comma_separated(cls, value):
+        if isinstance(value, str):
+            return tuple(part.strip() for part in value.split(",") if part.strip())
+        return value
 
     @model_validator(mode="after")
     def _database_url_for_postgres(self) -> "Settings":

@@ -64,3 +64,27 @@ def test_compose_runs_two_replicas_on_one_index_and_one_artifact_volume():
         Settings(**{k[9:].lower(): v for k, v in environment.items()})
     assert len({r["ports"][0].split(":")[0] for r in replicas}) == 2
     assert set(compose["volumes"]) >= {"artifacts", "index"}
+
+
+def test_compose_offers_a_dask_scheduler_and_two_workers_behind_a_profile():
+    compose = yaml.safe_load((DOCKER / "compose.yaml").read_text())
+    services = compose["services"]
+    dask = {name: s for name, s in services.items() if name.startswith("dask-")}
+    assert set(dask) == {"dask-scheduler", "dask-worker-a", "dask-worker-b"}
+    replica = services["replica-a"]
+    for service in dask.values():
+        # Optional (a profile) and built from the replicas' image, so the package versions match.
+        assert service["profiles"] == ["dask"] and service["build"] == replica["build"]
+    scheduler_port = dask["dask-scheduler"]["command"][dask["dask-scheduler"]["command"].index("--port") + 1]
+    address = f"tcp://dask-scheduler:{scheduler_port}"
+    assert replica["environment"]["SEGSCORE_DASK_SCHEDULER"] == address
+    for name in ("dask-worker-a", "dask-worker-b"):
+        worker = dask[name]
+        assert worker["command"][:3] == ["dask", "worker", address]
+        assert worker["depends_on"]["dask-scheduler"]["condition"] == "service_healthy"
+        # Uploaded records are spilled under the store dir: the workers mount the same volume there, and the
+        # allowed source prefix's volume at the same path as the replicas.
+        assert f"artifacts:{replica['environment']['SEGSCORE_STORE_DIR']}" in worker["volumes"]
+        lake = replica["environment"]["SEGSCORE_SOURCE_PREFIXES"].removeprefix("file://").rstrip("/")
+        assert any(v.split(":")[1] == lake for v in worker["volumes"])
+        assert any(v.split(":")[1] == lake for v in replica["volumes"])

@@ -33,8 +33,8 @@ from service.api.upload import (
     spool_upload,
 )
 from service.engines import check_before_fit, resolve_engine
-from service.fitting import fit_in_worker
-from service.inputs.fit_input import QUERY_PARAMETERS, prepare_fit
+from service.fitting import run_fit
+from service.inputs.fit_input import QUERY_PARAMETERS, prepare_fit_request
 from service.inputs.streamed import new_upload_directory, prepare_streamed_fit, remove_upload_directory
 
 router = APIRouter(prefix="/segmentations", tags=["segmentations"])
@@ -95,8 +95,10 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
             if kind == "json":
                 body = await read_body(request, settings.max_body_bytes)
                 # Parsing and checking a big body is CPU work too: like the fit, it runs off the event loop.
-                values, config, make_live = await anyio.to_thread.run_sync(
-                    prepare_fit, body, False, fit_query, settings)
+                # A JSON body holds records or names a ``source`` the Dask workers read (checked: 403).
+                plan = await anyio.to_thread.run_sync(prepare_fit_request, body, False, fit_query, settings)
+                values, config, make_live, engine, source = (plan.values, plan.config, plan.make_live, plan.engine,
+                                                             plan.source)
                 del body
             else:
                 # Big inputs: CSV (maybe gzip) and Parquet arrive into a file and are read in blocks.
@@ -104,24 +106,22 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
                 values, config, make_live = await anyio.to_thread.run_sync(functools.partial(
                     prepare_streamed_fit, upload, kind, fit_query, settings, work_dir=work_dir))
                 upload.unlink()
-        # auto: out of core above out_of_core_rows, and above the memory engine's own limit (max_fit_rows).
-        engine = resolve_engine(config.engine, values.shape[0],
-                                out_of_core_rows=min(settings.out_of_core_rows, settings.max_fit_rows))
+                engine, source = resolve_engine(config.engine, values.shape[0], settings), None
 
         if background:
             # A bad request never becomes a job: what the worker would refuse (k above the distinct records, a
             # constant named feature...) is refused here, with the synchronous fit's answer.
-            await anyio.to_thread.run_sync(lambda: check_before_fit(
-                values, config, max_agglomerative_rows=settings.max_agglomerative_rows))
+            if values is not None:
+                await anyio.to_thread.run_sync(lambda: check_before_fit(
+                    values, config, max_agglomerative_rows=settings.max_agglomerative_rows))
             job = await request.app.state.jobs.submit(name, values, config, make_live=make_live, actor=actor,
-                                                      engine=engine, work_dir=work_dir)
+                                                      engine=engine, work_dir=work_dir, source=source)
             work_dir = None                     # the job owns the directory now and removes it when it ends
             return JSONResponse(job, status_code=202, headers={"Location": f"/v1/jobs/{job['id']}"})
 
         def fit_and_save() -> dict[str, Any]:
-            # The fit runs in a worker process (service.fitting); the store is written here, by the server.
-            bundle = fit_in_worker(values, config, max_agglomerative_rows=settings.max_agglomerative_rows,
-                                   time_limit=settings.fit_time_limit_seconds, engine=engine)
+            # The store is written here, by the server, after the fit returned: a failed fit writes nothing.
+            bundle = run_fit(values, config, engine=engine, source=source, settings=settings)
             return store.save_version(name, bundle, make_live=make_live, actor=actor)
 
         started = time.perf_counter()

@@ -420,6 +420,9 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
         "data_sha256": data_sha256(values),
         "library_versions": library_versions(),
         "warnings": fit_warnings,
+        # Where the fit ran (service.engines.dask_engine writes "dask" and its cluster's details).
+        "engine": "memory",
+        "engine_details": None,
     }
     return Bundle(
         features=list(config.features),
@@ -445,6 +448,14 @@ def _fit_warnings(config: FitConfig, labels: np.ndarray, nearest: np.ndarray, k:
     ``labels`` are the clusterer's own (how many distinct clusters it found); ``nearest`` is the assign rule,
     which the report's segment sizes, the thresholds and the drift baseline use, so empty and tiny segments are
     judged by the same counts the report shows."""
+    return fit_warnings_from_counts(config, np.bincount(labels, minlength=k), np.bincount(nearest, minlength=k),
+                                    k, n_records)
+
+
+def fit_warnings_from_counts(config: FitConfig, clusterer_sizes: np.ndarray, sizes: np.ndarray, k: int,
+                             n_records: int) -> list[dict[str, Any]]:
+    """``_fit_warnings`` from the two per-segment counts (the clusterer's, the assign rule's): what an engine
+    that never holds every row's label (service.engines.dask_engine) can give."""
     found: list[dict[str, Any]] = []
 
     def warn(kind: str, field: str | None, message: str) -> None:
@@ -452,11 +463,11 @@ def _fit_warnings(config: FitConfig, labels: np.ndarray, nearest: np.ndarray, k:
 
     for name, why in config.dropped_features:
         warn("dropped_feature", name, f"dropped from the default features: {why}")
-    distinct = int(np.count_nonzero(np.bincount(labels, minlength=k)))
+    distinct = int(np.count_nonzero(clusterer_sizes))
     if distinct < k:
         warn("fewer_clusters", "k", f"the clusterer found {distinct} distinct clusters, fewer than k = {k}")
     tiny = max(TINY_SEGMENT_SIZE, TINY_SEGMENT_SHARE * n_records)
-    for segment, size in enumerate(np.bincount(nearest, minlength=k).tolist()):
+    for segment, size in enumerate(np.asarray(sizes).tolist()):
         if size == 0:
             warn("empty_segment", f"segments.{segment}", f"segment {segment} has no training records")
         elif size < tiny:

@@ -3,6 +3,7 @@ matrix and the fit config. Shared by the fit route and ``segscore fit`` so both 
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Any, Mapping
 
 import numpy as np
@@ -20,6 +21,8 @@ from service.core.frame import (
     pairs_one_edit_apart,
     read_csv,
 )
+from service.engines import resolve_engine
+from service.engines.sources import DataSource, check_source
 from service.errors import InvalidInput, PayloadTooLarge, RecordProblem
 from service.inputs.checks import (
     check_json_rows,
@@ -42,7 +45,7 @@ def _query_parameters(query: Mapping[str, str]) -> dict[str, Any]:
         # silently replaced by its default.
         raise InvalidInput([unknown_query_problem(key, QUERY_PARAMETERS) for key in unknown])
     params: dict[str, Any] = {}
-    for key in ("id_column", "scaling", "method", "linkage", "selection"):
+    for key in ("id_column", "scaling", "method", "linkage", "selection", "engine", "source"):
         if key in query:
             params[key] = query[key]
     if "features" in query:
@@ -228,19 +231,61 @@ def training_inputs(params: FitRequest, settings, *, frame: pd.DataFrame | None 
     return values, _fit_config(params, features, settings, dropped)
 
 
+@dataclass(frozen=True)
+class FitPlan:
+    """A checked fit request: what to fit on, how, and on which engine."""
+
+    values: np.ndarray | None      # the training matrix; None when the workers read ``source``
+    config: FitConfig              # features empty: the source's numeric columns (the engine resolves them)
+    make_live: bool | None
+    engine: str                    # one of schemas.fit.FIT_ENGINES (``auto`` resolved)
+    source: DataSource | None      # checked against SEGSCORE_SOURCE_PREFIXES
+
+
+def prepare_fit_request(body: bytes, csv: bool, query: Mapping[str, str], settings) -> FitPlan:
+    """A fit body (JSON with records or a ``source``, or CSV with parameters in the query) -> a FitPlan.
+
+    A ``source`` is checked against SEGSCORE_SOURCE_PREFIXES first (403, nothing read)."""
+    if not csv:
+        check_json_rows(body, settings.max_fit_rows, allowance=settings.max_features + 2)
+        document = parse_json(body)
+        if isinstance(document, dict) and document.get("source") is not None:
+            params = validate_model(FitRequest, document)
+            if params.records:
+                raise InvalidInput("send records or name a source, not both", field="source")
+            source = check_source(params.source, settings.source_prefixes)
+            engine = resolve_engine(params.engine, None, settings)
+            features = list(params.features or [])
+            if len(features) > settings.max_features:
+                raise InvalidInput(f"{len(features)} features; at most {settings.max_features} per fit (setting "
+                                   "SEGSCORE_MAX_FEATURES)", field="features")
+            return FitPlan(None, _fit_config(params, features, settings), params.make_live, engine, source)
+    elif query.get("source"):
+        raise InvalidInput("a source is named in a JSON body (a CSV body carries the records)", field="source")
+    values, config, make_live, requested = _prepare(body, csv, query, settings, None if csv else document)
+    return FitPlan(values, config, make_live, resolve_engine(requested, values.shape[0], settings), None)
+
+
 def prepare_fit(body: bytes, csv: bool, query: Mapping[str, str], settings) -> tuple[Any, FitConfig, bool | None]:
     """A fit body (JSON, or CSV with parameters in the query) -> (training matrix, config, make_live)."""
+    values, config, make_live, _ = _prepare(body, csv, query, settings)
+    return values, config, make_live
+
+
+def _prepare(body: bytes, csv: bool, query: Mapping[str, str], settings, document: Any = None
+             ) -> tuple[Any, FitConfig, bool | None, str]:
     if csv:
         params = validate_model(FitRequest, _query_parameters(query))
         frame = read_csv(body, params.id_column, max_rows=settings.max_fit_rows)
         values, config = training_inputs(params, settings, frame=frame)
     else:
         # Records are counted on the bytes first: a body of millions of tiny records never becomes objects.
-        check_json_rows(body, settings.max_fit_rows, allowance=settings.max_features + 2)
-        document = parse_json(body)
+        if document is None:
+            check_json_rows(body, settings.max_fit_rows, allowance=settings.max_features + 2)
+            document = parse_json(body)
         records = records_of(document, allowed_keys=FIT_BODY_KEYS)
         params = validate_model(FitRequest, {k: v for k, v in document.items() if k != "records"})
         values, config = training_inputs(params, settings, records=records)
-    return values, config, params.make_live
+    return values, config, params.make_live, params.engine
 
 

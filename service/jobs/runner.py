@@ -44,7 +44,7 @@ from service.core.bundle import FitConfig
 from service.core.fit import STEP_START
 from service.errors import FitCancelled, JobNotRunning, ServiceError, StoreUnavailable
 from service.engines.source import MatrixFile
-from service.fitting import fit_in_worker
+from service.fitting import run_fit
 from service.inputs.streamed import remove_upload_directory
 from service.store.base import ACTIVE_JOB_STATES, JOB_FIRST_STEP
 
@@ -135,7 +135,7 @@ class JobRunner:
     # ------------------------------------------------------------------ requests
     async def submit(self, name: str, values: np.ndarray | MatrixFile, config: FitConfig, *,
                      make_live: bool | None, actor: str, engine: str = "memory",
-                     work_dir: Path | None = None) -> dict[str, Any]:
+                     work_dir: Path | None = None, source: Any = None) -> dict[str, Any]:
         """Record a queued job for a checked fit request and start it; return the job. The job owns
         ``work_dir`` (the upload's matrix file and the engine's scratch files) and removes it when it ends."""
         assert self._limiter is not None, "JobRunner.start was not called"
@@ -143,7 +143,7 @@ class JobRunner:
         local = _LocalJob()
         self._local[job["id"]] = local
         local.task = asyncio.get_running_loop().create_task(
-            self._run(job["id"], local, name, values, config, make_live, actor, engine, work_dir), name=f"segscore-job-{job['id']}")
+            self._run(job["id"], local, name, values, config, make_live, actor, engine, work_dir, source), name=f"segscore-job-{job['id']}")
         return job
 
     async def cancel(self, job_id: str, *, actor: str) -> dict[str, Any]:
@@ -163,14 +163,14 @@ class JobRunner:
     # ------------------------------------------------------------------ the job itself
     async def _run(self, job_id: str, local: _LocalJob, name: str, values: np.ndarray | MatrixFile,
                    config: FitConfig, make_live: bool | None, actor: str, engine: str,
-                   work_dir: Path | None) -> None:
+                   work_dir: Path | None, source: Any) -> None:
         try:
             async with self._limiter:
                 if local.cancel.is_set():
                     return
                 local.started = True
                 await anyio.to_thread.run_sync(self._fit_and_save, job_id, local.cancel, name, values, config,
-                                               make_live, actor, engine)
+                                               make_live, actor, engine, source)
         except asyncio.CancelledError:
             pass                        # cancelled while queued (its state is already set by the canceller)
         finally:
@@ -179,15 +179,14 @@ class JobRunner:
                 remove_upload_directory(work_dir)
 
     def _fit_and_save(self, job_id: str, cancel: threading.Event, name: str, values: np.ndarray | MatrixFile,
-                      config: FitConfig, make_live: bool | None, actor: str, engine: str) -> None:
+                      config: FitConfig, make_live: bool | None, actor: str, engine: str, source: Any) -> None:
         settings = self.settings
         started = time.perf_counter()
         try:
             if self.store.job_progress(job_id, JOB_FIRST_STEP, STEP_START[JOB_FIRST_STEP]) != "running":
                 return
-            bundle = fit_in_worker(values, config, max_agglomerative_rows=settings.max_agglomerative_rows,
-                                   time_limit=settings.fit_time_limit_seconds, engine=engine,
-                                   progress=_ProgressWriter(self.store, job_id, cancel), cancel=cancel)
+            bundle = run_fit(values, config, engine=engine, source=source, settings=settings,
+                             progress=_ProgressWriter(self.store, job_id, cancel), cancel=cancel)
             if cancel.is_set() or self.store.job_progress(job_id, "saving", STEP_START["saving"]) != "running":
                 return
             # Writes the version only if the job still runs, and marks it done, in one transaction.

@@ -1,0 +1,276 @@
+"""The Dask engine on a real local cluster (two worker processes, loopback only): it agrees with the in-memory
+fit and with scikit-learn / pandas on the same data, it can be cancelled, and it survives a killed worker.
+
+The cluster is module-scoped (started once); every wait is bounded."""
+
+from __future__ import annotations
+
+import os
+import signal
+import threading
+import time
+
+import numpy as np
+import pandas as pd
+import pytest
+from fastapi.testclient import TestClient
+from sklearn.datasets import make_blobs
+from sklearn.decomposition import PCA
+from sklearn.metrics import adjusted_rand_score
+from sklearn.preprocessing import StandardScaler
+
+from service.app import create_app
+from service.core.assign import assign, compile_bundle
+from service.core.bundle import FitConfig
+from service.core.fit import fit_bundle
+from service.engines.dask_engine import CancelHook, fit_on_dask
+from service.engines.sources import spill_records
+from service.errors import ClusterUnavailable, FitCancelled
+from service.settings import Settings
+
+distributed = pytest.importorskip("distributed")
+
+FEATURES = [f"f{j}" for j in range(6)]
+WAIT = 120.0     # seconds any single wait in these tests may take at most
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                  dashboard_address=":0", memory_limit="1GiB") as local:
+        yield local
+
+
+@pytest.fixture(scope="module")
+def dask_client(cluster):
+    with distributed.Client(cluster, set_as_default=False) as client:
+        yield client
+
+
+@pytest.fixture(scope="module")
+def blobs():
+    """make_blobs (scikit-learn's generator, known truth: 4 centres) with a few missing values."""
+    values, truth = make_blobs(n_samples=4000, n_features=6, centers=4, cluster_std=1.5, random_state=7)
+    return values, truth
+
+
+@pytest.fixture(scope="module")
+def in_memory(blobs):
+    """The in-memory fit (service.core.fit) of the same data and config, fitted once for the module."""
+    return fit_bundle(blobs[0], config())
+
+
+def config(**overrides) -> FitConfig:
+    base = dict(features=FEATURES, k_min=2, k_max=6, seed=0, silhouette_sample=2000, reference_sample=500)
+    return FitConfig(**{**base, **overrides})
+
+
+def labels_of(bundle, values):
+    return assign(compile_bundle(bundle), values).segment
+
+
+def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(dask_client, blobs, in_memory, tmp_path):
+    values, _ = blobs
+    source = spill_records(values, FEATURES, tmp_path)
+    on_cluster = fit_on_dask(source, config(), client=dask_client)
+
+    assert on_cluster.report["engine"] == "dask" and on_cluster.report["engine_details"]["workers"] == 2
+    assert on_cluster.k == in_memory.k
+    # Adjusted Rand index (scikit-learn) of the two versions' assignments of the training rows.
+    assert adjusted_rand_score(labels_of(in_memory, values), labels_of(on_cluster, values)) >= 0.95
+    # PCA explained-variance ratios: scikit-learn's PCA (full SVD) on the same standardised data.
+    reference = PCA(n_components=0.9, svd_solver="full").fit(StandardScaler().fit_transform(values))
+    assert np.allclose(on_cluster.report["explained_variance_ratio"], reference.explained_variance_ratio_,
+                       rtol=0, atol=1e-6)
+    # Profiles: pandas group-by means (and population stds, medians) over the version's own segments.
+    segments = labels_of(on_cluster, values)
+    grouped = pd.DataFrame(values, columns=FEATURES).groupby(segments)
+    for segment in on_cluster.report["segments"]:
+        for name in FEATURES:
+            profile = segment["profile"][name]
+            assert profile["mean"] == pytest.approx(grouped.mean().at[segment["id"], name], rel=0, abs=1e-9)
+            assert profile["std"] == pytest.approx(grouped.std(ddof=0).at[segment["id"], name], rel=0, abs=1e-9)
+            assert profile["median"] == grouped.median().at[segment["id"], name]
+        assert segment["size"] == int(np.sum(segments == segment["id"]))
+    # The drift reference: the same seeded training sample and decile edges as the in-memory fit (numpy).
+    assert np.array_equal(on_cluster.reference.sample, in_memory.reference.sample)
+    for ours, theirs in zip(on_cluster.reference.bin_edges, in_memory.reference.bin_edges):
+        assert np.allclose(ours, theirs, rtol=0, atol=1e-12)
+
+
+def test_medians_and_robust_quartiles_are_exact_with_missing_values_and_ties(dask_client, tmp_path):
+    """Integer-valued columns (many ties) with missing values: numpy's nanmedian and percentile are the truth."""
+    rng = np.random.default_rng(3)
+    values = rng.integers(0, 40, size=(3000, 3)).astype(float) + rng.normal(0, 1, (3000, 1)).round(0) * [1, 0, 0]
+    values[rng.random(values.shape) < 0.05] = np.nan
+    features = ["a", "b", "c"]
+    bundle = fit_on_dask(spill_records(values, features, tmp_path), config(features=features, scaling="robust",
+                                                                          k_min=2, k_max=3), client=dask_client)
+    medians = np.nanmedian(values, axis=0)
+    assert np.array_equal(bundle.imputer.statistics_, medians)
+    imputed = np.where(np.isnan(values), medians, values)
+    low, centre, high = np.percentile(imputed, [25, 50, 75], axis=0)
+    assert np.array_equal(bundle.scaler.center_, centre)
+    assert np.array_equal(bundle.scaler.scale_, high - low)
+
+
+def test_cancel_stops_the_fit_and_releases_its_work_on_the_cluster(dask_client, blobs, tmp_path):
+    values, _ = blobs
+    hook = CancelHook()
+    reached = threading.Event()
+    outcome: dict[str, BaseException | None] = {}
+
+    def progress(step: str, fraction: float) -> None:
+        if step == "kmeans":
+            reached.set()
+
+    def run() -> None:
+        try:
+            fit_on_dask(spill_records(values, FEATURES, tmp_path), config(), client=dask_client, progress=progress,
+                        cancel=hook)
+            outcome["error"] = None
+        except BaseException as exc:  # noqa: BLE001 - inspected below
+            outcome["error"] = exc
+
+    thread = threading.Thread(target=run)
+    thread.start()
+    assert reached.wait(WAIT)
+    hook.cancel()
+    thread.join(WAIT)
+    assert not thread.is_alive()
+    assert isinstance(outcome["error"], FitCancelled)
+    # Nothing of the fit stays on the scheduler (its persisted data and pending tasks were released).
+    deadline = time.monotonic() + 30
+    while dask_client.run_on_scheduler(lambda dask_scheduler: len(dask_scheduler.tasks)) and time.monotonic() < deadline:
+        time.sleep(0.2)
+    assert dask_client.run_on_scheduler(lambda dask_scheduler: len(dask_scheduler.tasks)) == 0
+
+
+def test_a_fit_request_with_engine_dask_stores_an_ordinary_version(cluster, blobs, tmp_path):
+    values, _ = blobs
+    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address)
+    records = [dict(zip(FEATURES, map(float, row))) for row in values[:1000]]
+    with TestClient(create_app(settings)) as client:
+        response = client.post("/v1/segmentations/lake/fit", json={"records": records, "engine": "dask", "k": 3})
+        assert response.status_code == 201, response.text
+        report = response.json()
+        assert report["engine"] == "dask" and report["engine_details"]["workers"] == 2
+        assert client.get("/v1/segmentations/lake/versions/1").json() == report
+        assigned = client.post("/v1/segmentations/lake/assign", json={"records": records[:5]})
+        assert assigned.status_code == 200
+    # The spilled upload was removed after the fit.
+    assert list((tmp_path / "store" / "dask-spill").iterdir()) == []
+
+
+def cluster_tasks(cluster) -> int:
+    return len(cluster.scheduler.tasks)
+
+
+def _until_finished(client, job_url: str, seconds: float = 180) -> dict:
+    deadline = time.monotonic() + seconds
+    while (job := client.get(job_url).json())["state"] in ("queued", "running") and time.monotonic() < deadline:
+        time.sleep(0.1)
+    return job
+
+
+def test_a_background_dask_fit_is_a_job_with_steps_and_gives_an_ordinary_version(cluster, blobs, tmp_path):
+    values, _ = blobs
+    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address)
+    records = [dict(zip(FEATURES, map(float, row))) for row in values[:1000]]
+    with TestClient(create_app(settings)) as client:
+        started = client.post("/v1/segmentations/lake/fit?background=true",
+                              json={"records": records, "engine": "dask", "k": 3})
+        assert started.status_code == 202, started.text
+        job = _until_finished(client, started.headers["location"])
+        assert job["state"] == "done" and job["progress"] == 1.0, job
+        report = client.get(f"/v1/segmentations/lake/versions/{job['version']}").json()
+        assert report["engine"] == "dask"
+
+
+def test_cancelling_a_background_dask_fit_stops_it_and_writes_no_version(cluster, blobs, tmp_path):
+    values, _ = blobs
+    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address)
+    records = [dict(zip(FEATURES, map(float, row))) for row in values]
+    with TestClient(create_app(settings)) as client:
+        started = client.post("/v1/segmentations/lake/fit?background=true",
+                              json={"records": records, "engine": "dask", "k": {"min": 2, "max": 8}})
+        assert started.status_code == 202, started.text
+        job_url = started.headers["location"]
+        deadline = time.monotonic() + 60
+        while client.get(job_url).json()["state"] == "queued" and time.monotonic() < deadline:
+            time.sleep(0.02)
+        # Seven values of k over every blob row take the cluster seconds: the cancel arrives while it works.
+        cancelled = client.delete(job_url)
+        assert cancelled.status_code == 200, cancelled.text
+        job = _until_finished(client, job_url)
+        assert job["state"] == "cancelled" and job["version"] is None
+        assert client.get("/v1/segmentations/lake").status_code == 404
+        # The cluster let go of the fit's work.
+        deadline = time.monotonic() + 30
+        while cluster_tasks(cluster) and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert cluster_tasks(cluster) == 0
+
+
+def test_a_fit_request_naming_a_source_under_an_allowed_prefix_is_read_by_the_workers(cluster, blobs, tmp_path):
+    values, _ = blobs
+    lake = tmp_path / "lake"
+    lake.mkdir()
+    pd.DataFrame(values, columns=FEATURES).assign(customer=[f"c{i}" for i in range(len(values))]).to_parquet(
+        lake / "customers.parquet")
+    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address,
+                        source_prefixes=(f"file://{lake}/",))
+    with TestClient(create_app(settings)) as client:
+        response = client.post("/v1/segmentations/lake/fit",
+                               json={"source": f"file://{lake}/customers.parquet", "k": 4, "id_column": "customer"})
+        assert response.status_code == 201, response.text
+        assert response.json()["features"] == FEATURES and response.json()["n_records"] == len(values)
+
+
+def test_lost_scheduler_fails_with_a_clear_error(blobs, tmp_path):
+    values, _ = blobs
+    local = distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                     dashboard_address=":0")
+    client = distributed.Client(local, set_as_default=False)
+    reached = threading.Event()
+    outcome: dict[str, BaseException | None] = {}
+
+    def progress(step: str, fraction: float) -> None:
+        if step == "kmeans":
+            reached.set()
+
+    def run() -> None:
+        try:
+            fit_on_dask(spill_records(values, FEATURES, tmp_path), config(), client=client, progress=progress)
+            outcome["error"] = None
+        except BaseException as exc:  # noqa: BLE001 - inspected below
+            outcome["error"] = exc
+
+    thread = threading.Thread(target=run)
+    thread.start()
+    try:
+        assert reached.wait(WAIT)
+        local.close()
+        thread.join(WAIT)
+        assert not thread.is_alive()
+        assert isinstance(outcome["error"], ClusterUnavailable), repr(outcome["error"])
+        assert "scheduler" in str(outcome["error"].detail) and "nothing was written" in outcome["error"].detail
+    finally:
+        client.close(timeout=5)
+        local.close()
+
+
+def test_a_worker_killed_mid_fit_is_replaced_and_the_fit_completes(dask_client, blobs, in_memory, tmp_path):
+    """Last in the module: it kills one of the shared cluster's worker processes (its nanny restarts it)."""
+    values, _ = blobs
+    killed: list[int] = []
+
+    def progress(step: str, fraction: float) -> None:
+        if step == "kmeans" and not killed:
+            # Mid-fit: the data is persisted on both workers; one of them (and its blocks) disappears.
+            killed.append(sorted(dask_client.run(os.getpid).values())[0])
+            os.kill(killed[0], signal.SIGKILL)
+
+    bundle = fit_on_dask(spill_records(values, FEATURES, tmp_path), config(), client=dask_client, progress=progress)
+    assert len(killed) == 1 and killed[0] not in dask_client.run(os.getpid).values()
+    assert adjusted_rand_score(labels_of(in_memory, values), labels_of(bundle, values)) >= 0.95
