@@ -32,7 +32,7 @@ from service.api.upload import (
     fit_body_kind,
     spool_upload,
 )
-from service.engines import check_before_fit, resolve_engine
+from service.engines import CLUSTER_ENGINE, check_before_fit, resolve_engine
 from service.fitting import run_fit
 from service.inputs.fit_input import QUERY_PARAMETERS, prepare_fit_request
 from service.inputs.streamed import new_upload_directory, prepare_streamed_fit, remove_upload_directory
@@ -108,7 +108,8 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
                 upload.unlink()
                 engine, source = resolve_engine(config.engine, values.shape[0], settings), None
 
-        if background:
+        if background or engine == CLUSTER_ENGINE:
+            # A fit on the cluster always runs as a job (it may take long; its progress is worth following).
             # A bad request never becomes a job: what the worker would refuse (k above the distinct records, a
             # constant named feature...) is refused here, with the synchronous fit's answer.
             if values is not None:

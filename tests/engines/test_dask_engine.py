@@ -146,22 +146,6 @@ def test_cancel_stops_the_fit_and_releases_its_work_on_the_cluster(dask_client, 
     assert dask_client.run_on_scheduler(lambda dask_scheduler: len(dask_scheduler.tasks)) == 0
 
 
-def test_a_fit_request_with_engine_dask_stores_an_ordinary_version(cluster, blobs, tmp_path):
-    values, _ = blobs
-    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address)
-    records = [dict(zip(FEATURES, map(float, row))) for row in values[:1000]]
-    with TestClient(create_app(settings)) as client:
-        response = client.post("/v1/segmentations/lake/fit", json={"records": records, "engine": "dask", "k": 3})
-        assert response.status_code == 201, response.text
-        report = response.json()
-        assert report["engine"] == "dask" and report["engine_details"]["workers"] == 2
-        assert client.get("/v1/segmentations/lake/versions/1").json() == report
-        assigned = client.post("/v1/segmentations/lake/assign", json={"records": records[:5]})
-        assert assigned.status_code == 200
-    # The spilled upload was removed after the fit.
-    assert list((tmp_path / "store" / "dask-spill").iterdir()) == []
-
-
 def cluster_tasks(cluster) -> int:
     return len(cluster.scheduler.tasks)
 
@@ -171,6 +155,25 @@ def _until_finished(client, job_url: str, seconds: float = 180) -> dict:
     while (job := client.get(job_url).json())["state"] in ("queued", "running") and time.monotonic() < deadline:
         time.sleep(0.1)
     return job
+
+
+def test_a_fit_request_with_engine_dask_stores_an_ordinary_version(cluster, blobs, tmp_path):
+    values, _ = blobs
+    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address)
+    records = [dict(zip(FEATURES, map(float, row))) for row in values[:1000]]
+    with TestClient(create_app(settings)) as client:
+        # A fit on the cluster always runs as a background job, asked for or not.
+        response = client.post("/v1/segmentations/lake/fit", json={"records": records, "engine": "dask", "k": 3})
+        assert response.status_code == 202, response.text
+        job = _until_finished(client, response.headers["location"])
+        assert job["state"] == "done", job
+        report = client.get(f"/v1/jobs/{job['id']}/report").json()
+        assert report["engine"] == "dask" and report["engine_details"]["workers"] == 2
+        assert client.get("/v1/segmentations/lake/versions/1").json() == report
+        assigned = client.post("/v1/segmentations/lake/assign", json={"records": records[:5]})
+        assert assigned.status_code == 200
+    # The spilled upload was removed after the fit.
+    assert list((tmp_path / "store" / "dask-spill").iterdir()) == []
 
 
 def test_a_background_dask_fit_is_a_job_with_steps_and_gives_an_ordinary_version(cluster, blobs, tmp_path):
@@ -223,8 +226,11 @@ def test_a_fit_request_naming_a_source_under_an_allowed_prefix_is_read_by_the_wo
     with TestClient(create_app(settings)) as client:
         response = client.post("/v1/segmentations/lake/fit",
                                json={"source": f"file://{lake}/customers.parquet", "k": 4, "id_column": "customer"})
-        assert response.status_code == 201, response.text
-        assert response.json()["features"] == FEATURES and response.json()["n_records"] == len(values)
+        assert response.status_code == 202, response.text
+        job = _until_finished(client, response.headers["location"])
+        assert job["state"] == "done", job
+        report = client.get(f"/v1/jobs/{job['id']}/report").json()
+        assert report["features"] == FEATURES and report["n_records"] == len(values)
 
 
 def test_lost_scheduler_fails_with_a_clear_error(blobs, tmp_path):
