@@ -311,6 +311,22 @@ def _no_progress(step: str, fraction: float) -> None:
     return None
 
 
+def choose_k(curve: list[dict[str, Any]], config: FitConfig) -> tuple[int, str]:
+    """The k a fit keeps from its curve (rows with ``k``, ``distortion``, ``silhouette``), and how it was chosen:
+    the fixed k, the elbow of the distortion curve, or the best silhouette (the smaller k on a tie). Every
+    engine chooses by this one rule."""
+    if config.k_fixed:
+        return config.k_min, "fixed"
+    if config.selection == "elbow":
+        return elbow_k([row["k"] for row in curve], [row["distortion"] for row in curve]), "elbow"
+    scored = [(row["silhouette"], -row["k"]) for row in curve if row["silhouette"] is not None]
+    if not scored:
+        raise InvalidInput(
+            f"the silhouette is undefined for every k in [{config.k_min}, {config.k_max}] (each clustering, or its "
+            "seeded sample, has a single segment); use selection 'elbow' or another k range", field="selection")
+    return -max(scored)[1], "silhouette"
+
+
 def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows: int = 20_000,
                progress: Progress | None = None) -> Bundle:
     """Fit the whole bundle on ``values`` (n_records, n_features), NaN = missing.
@@ -349,18 +365,7 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
         curve.append({"k": k, "distortion": inertia / n_records, "inertia": inertia,
                       "silhouette": _silhouette(space, labels, config)})
         fitted[k] = (model, labels, centroids)
-    distortions = [row["distortion"] for row in curve]
-    if config.k_fixed:
-        chosen, method = config.k_min, "fixed"
-    elif config.selection == "elbow":
-        chosen, method = elbow_k(ks, distortions), "elbow"
-    else:
-        scored = [(row["silhouette"], -row["k"]) for row in curve if row["silhouette"] is not None]
-        if not scored:
-            raise InvalidInput(
-                f"the silhouette is undefined for every k in [{config.k_min}, {config.k_max}] (each clustering, or its "
-                "seeded sample, has a single segment); use selection 'elbow' or another k range", field="selection")
-        chosen, method = -max(scored)[1], "silhouette"
+    chosen, method = choose_k(curve, config)
     clusterer, labels, centroids = fitted[chosen]
     del fitted
     report_step("profiling", STEP_START["profiling"])
@@ -401,7 +406,7 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
         "components": None if pca is None else int(pca.n_components_),
         "explained_variance_ratio": [] if pca is None else [float(v) for v in pca.explained_variance_ratio_],
         "k": chosen,
-        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, distortions),
+        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, [row["distortion"] for row in curve]),
                       "curve": curve},
         "distortion": inertia / n_records,
         "inertia": inertia,

@@ -30,9 +30,7 @@ def fit_in_memory(source: np.ndarray | MatrixFile, config: FitConfig, *, max_agg
                   progress: Progress | None = None) -> Bundle:
     """Today's exact fit on the whole matrix (``fit_bundle`` reports its steps to ``progress``)."""
     values = source.load() if isinstance(source, MatrixFile) else source
-    bundle = fit_bundle(values, config, max_agglomerative_rows=max_agglomerative_rows, progress=progress)
-    bundle.report["engine"] = "memory"
-    return bundle
+    return fit_bundle(values, config, max_agglomerative_rows=max_agglomerative_rows, progress=progress)
 
 
 def _out_of_core(source: np.ndarray | MatrixFile, config: FitConfig, *, max_agglomerative_rows: int = 20_000,

@@ -57,7 +57,7 @@ from service.core.fit import (
     MIN_SPREAD,
     NEAR_CONSTANT_RTOL,
     SCALERS,
-    elbow_k,
+    choose_k,
     fit_warnings_from_counts,
     jackson_mudholkar_limit,
     kneedle_k,
@@ -538,18 +538,7 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
             labels = ops.sq_distances(sample_space, centres[row["k"]]).argmin(axis=1)
             if 2 <= np.unique(labels).size <= sample_space.shape[0] - 1:
                 row["silhouette"] = float(silhouette_score(sample_space, labels))
-    distortions = [row["distortion"] for row in curve]
-    if config.k_fixed:
-        chosen, method = config.k_min, "fixed"
-    elif config.selection == "elbow":
-        chosen, method = elbow_k(ks, distortions), "elbow"
-    else:
-        scored = [(row["silhouette"], -row["k"]) for row in curve if row["silhouette"] is not None]
-        if not scored:
-            raise InvalidInput(
-                f"the silhouette is undefined for every k in [{config.k_min}, {config.k_max}] (each clustering, or its "
-                "seeded sample, has a single segment); use selection 'elbow' or another k range", field="selection")
-        chosen, method = -max(scored)[1], "silhouette"
+    chosen, method = choose_k(curve, config)
     centroids = centres[chosen]
     k = chosen
     sizes = np.asarray(sizes_by_k[chosen], dtype=np.int64)
@@ -608,7 +597,7 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
         "components": None if pca is None else int(pca.n_components_),
         "explained_variance_ratio": [] if pca is None else [float(v) for v in pca.explained_variance_ratio_],
         "k": chosen,
-        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, distortions), "curve": curve},
+        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, [row["distortion"] for row in curve]), "curve": curve},
         "distortion": inertia / n,
         "inertia": inertia,
         "segments": segments,

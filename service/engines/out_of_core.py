@@ -53,7 +53,7 @@ from service.core.fit import (
     _nearest,
     _silhouette,
     check_fit_facts,
-    elbow_k,
+    choose_k,
     feature_unusable_because,
     jackson_mudholkar_limit,
     kneedle_k,
@@ -214,18 +214,7 @@ def fit_out_of_core(source: MatrixFile, config: FitConfig, *, max_agglomerative_
                 silhouette = _silhouette(silhouette_sample, labels, config)
             curve.append({"k": k, "distortion": inertia / n, "inertia": inertia, "silhouette": silhouette})
             fitted[k] = (model, centres)
-        distortions = [row["distortion"] for row in curve]
-        if config.k_fixed:
-            chosen, method = config.k_min, "fixed"
-        elif config.selection == "elbow":
-            chosen, method = elbow_k(ks, distortions), "elbow"
-        else:
-            scored = [(row["silhouette"], -row["k"]) for row in curve if row["silhouette"] is not None]
-            if not scored:
-                raise InvalidInput(
-                    f"the silhouette is undefined for every k in [{config.k_min}, {config.k_max}] (each clustering's "
-                    "seeded sample has a single segment); use selection 'elbow' or another k range", field="selection")
-            chosen, method = -max(scored)[1], "silhouette"
+        chosen, method = choose_k(curve, config)
         clusterer, centroids = fitted[chosen]
         del fitted
 
@@ -267,7 +256,7 @@ def fit_out_of_core(source: MatrixFile, config: FitConfig, *, max_agglomerative_
         "components": None if pca is None else d,
         "explained_variance_ratio": [] if pca is None else [float(v) for v in pca.explained_variance_ratio_],
         "k": chosen,
-        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, distortions), "curve": curve},
+        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, [row["distortion"] for row in curve]), "curve": curve},
         "distortion": inertia / n,
         "inertia": inertia,
         "segments": segments,
@@ -282,6 +271,7 @@ def fit_out_of_core(source: MatrixFile, config: FitConfig, *, max_agglomerative_
         "library_versions": library_versions(),
         "warnings": _fit_warnings(config, labels, nearest, chosen, n),
         "engine": "out_of_core",
+        "engine_details": None,
     }
     return Bundle(features=features, config=config, imputer=imputer, scaler=scaler, pca=pca, clusterer=clusterer,
                   centroids=np.ascontiguousarray(centroids, dtype=np.float64),

@@ -13,8 +13,9 @@ from sklearn.metrics import adjusted_rand_score
 from schemas.fit import FIT_ENGINES
 from service.core.assign import assign, compile_bundle, impute
 from service.core.bundle import FitConfig
-from service.engines import ENGINES, order_stats, resolve_engine, run_engine
+from service.engines import CLUSTER_ENGINE, ENGINES, order_stats, resolve_engine, run_engine
 from service.engines import source as source_module
+from service.settings import Settings
 from service.engines.out_of_core import fit_out_of_core
 from service.engines.source import MatrixFile
 from service.errors import InvalidInput
@@ -41,10 +42,15 @@ def _blobs(n=6000, p=6, centers=4, seed=3, missing_every=0):
 
 
 def test_engine_names_are_listed_once():
-    assert tuple(ENGINES) == FIT_ENGINES
-    assert resolve_engine("auto", 10, out_of_core_rows=10) == "memory"
-    assert resolve_engine("auto", 11, out_of_core_rows=10) == "out_of_core"
-    assert resolve_engine("memory", 10 ** 9, out_of_core_rows=10) == "memory"
+    assert (*ENGINES, CLUSTER_ENGINE) == FIT_ENGINES
+    settings = Settings(out_of_core_rows=10, max_fit_rows=100)
+    assert resolve_engine("auto", 10, settings) == "memory"
+    assert resolve_engine("auto", 11, settings) == "out_of_core"
+    assert resolve_engine("memory", 10 ** 9, settings) == "memory"
+    # auto goes to the cluster above dask_auto_rows only when a scheduler is set
+    with_cluster = Settings(out_of_core_rows=10, dask_scheduler="tcp://127.0.0.1:1", dask_auto_rows=50)
+    assert resolve_engine("auto", 51, with_cluster) == CLUSTER_ENGINE
+    assert resolve_engine("auto", 50, with_cluster) == "out_of_core"
 
 
 @pytest.mark.parametrize("scaling, components, missing_every", [("standard", 0.9, 0), ("robust", 3, 53)],
