@@ -9,6 +9,8 @@ server makes under TMPDIR), so the tests know that both workers served. Deadline
 
 from __future__ import annotations
 
+import shutil
+import tempfile
 import subprocess
 import sys
 import time
@@ -68,14 +70,18 @@ def until_both_workers(tmp_dir: Path, base: str, send, sample_name: str, what: s
 @pytest.fixture
 def two_workers(tmp_path):
     store_dir = tmp_path / "store"
-    tmp_dir = tmp_path / "tmp"
-    tmp_dir.mkdir()
-    with segscore_server(tmp_path, "--workers", "2", "--store", str(store_dir),
-                         settings_env={"TMPDIR": str(tmp_dir)}) as base:
-        assert len(list(tmp_dir.glob("segscore-metrics-*"))) == 1
-        yield base, store_dir, tmp_dir
-    # The server removes its metrics directory when it stops.
-    assert list(tmp_dir.glob("segscore-metrics-*")) == []
+    # A short TMPDIR of the test's own: the fit workers' forkserver puts a Unix socket under it, and a socket's
+    # path may not exceed 107 bytes (pytest's tmp_path, under a long test name, can).
+    tmp_dir = Path(tempfile.mkdtemp(prefix="ssw-", dir="/tmp"))
+    try:
+        with segscore_server(tmp_path, "--workers", "2", "--store", str(store_dir),
+                             settings_env={"TMPDIR": str(tmp_dir)}) as base:
+            assert len(list(tmp_dir.glob("segscore-metrics-*"))) == 1
+            yield base, store_dir, tmp_dir
+        # The server removes its metrics directory when it stops.
+        assert list(tmp_dir.glob("segscore-metrics-*")) == []
+    finally:
+        shutil.rmtree(tmp_dir, ignore_errors=True)
 
 
 def test_metrics_add_up_across_two_workers(two_workers, iris):

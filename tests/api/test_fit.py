@@ -168,7 +168,7 @@ def test_make_live_false_on_first_version_leaves_nothing_live(client, iris):
 
 
 # --------------------------------------------------------------------------- fits run off the event loop
-@pytest.mark.parametrize("stage, csv", [("fit_in_worker", False), ("parse_json", False), ("read_csv", True)])
+@pytest.mark.parametrize("stage, csv", [("run_fit", False), ("parse_json", False), ("read_csv", True)])
 def test_a_running_fit_does_not_block_other_requests(client, iris, monkeypatch, stage, csv):
     # Hold the fit inside one CPU-heavy stage (parsing the body, or fitting) and check that the app still
     # answers another request meanwhile: the stage runs off the event loop.
@@ -176,7 +176,7 @@ def test_a_running_fit_does_not_block_other_requests(client, iris, monkeypatch, 
     import service.inputs.fit_input as fit_input     # body parsing (shared with the CLI)
     import service.inputs.streamed as streamed       # CSV uploads, read in blocks from a file
 
-    module = route if stage == "fit_in_worker" else streamed if csv else fit_input
+    module = route if stage == "run_fit" else streamed if csv else fit_input
 
     started, release = threading.Event(), threading.Event()
     real = getattr(module, stage)

@@ -58,10 +58,10 @@ def test_versions_are_numbered_and_the_first_goes_live(store, bundles):
 def test_version_summaries_name_the_fit_engine(store, bundles):
     import dataclasses
 
-    store.save_version("shop", bundles[0], make_live=None)          # fitted by fit_bundle: no engine recorded
+    store.save_version("shop", bundles[0], make_live=None)          # fitted by fit_bundle: the memory engine
     streamed = dataclasses.replace(bundles[1], report={**bundles[1].report, "engine": "out_of_core"})
     store.save_version("shop", streamed, make_live=None)
-    assert [v["engine"] for v in store.get_segmentation("shop")["versions"]] == [None, "out_of_core"]
+    assert [v["engine"] for v in store.get_segmentation("shop")["versions"]] == ["memory", "out_of_core"]
 
 
 def test_a_loaded_version_assigns_as_the_fitted_bundle_does(store, bundles, iris):
