@@ -158,6 +158,18 @@ async def _maintenance(app: FastAPI, wake: asyncio.Event) -> None:
         wake.clear()
 
 
+async def _stop_task(task: asyncio.Task) -> None:
+    """Cancel a background loop and wait for it to end. Cancelled again until it does: on Python 3.11,
+    ``asyncio.wait_for`` drops a cancellation that arrives as its awaited event is set (the store watcher sets
+    ``wake`` at any moment, for instance on the notification of the jobs a stopping server marks failed), and
+    the loop would then run on, holding up the shutdown for ever."""
+    while not task.done():
+        task.cancel()
+        await asyncio.wait({task}, timeout=1.0)
+    with suppress(asyncio.CancelledError):
+        task.result()
+
+
 def _refresh_live_gauges(app: FastAPI) -> None:
     settings: Settings = app.state.settings
     app.state.live.flush()       # this replica's latest counts first
@@ -227,13 +239,9 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
         finally:
             keyring.refreshed_in_background = False
             await app.state.jobs.stop()
-            maintenance.cancel()
-            with suppress(asyncio.CancelledError):
-                await maintenance
+            await _stop_task(maintenance)
             if gauges is not None:
-                gauges.cancel()
-                with suppress(asyncio.CancelledError):
-                    await gauges
+                await _stop_task(gauges)
             await anyio.to_thread.run_sync(app.state.live.stop)     # flushes what is left
             if owns_store:
                 await anyio.to_thread.run_sync(app.state.store.close)
