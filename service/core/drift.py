@@ -264,9 +264,15 @@ def feature_drift(reference: ReferenceProfile, features: Sequence[str], values: 
             "missing_share": {"expected": expected_missing, "observed": observed_missing, "psi": missing_psi,
                               "p_value": missing_p, "q_value": None},
         })
-    # Two families, each adjusted over the features of this report: value distributions and missing shares.
-    ks_q, miss_q = bh_qvalues(ks_p), bh_qvalues(miss_p)
-    for row, q, mq in zip(rows, ks_q.tolist(), miss_q.tolist()):
+    return grade_feature_rows(rows, ks_p, miss_p, rules)
+
+
+def grade_feature_rows(rows: list[dict[str, Any]], value_p: list[float], missing_p: list[float],
+                       rules: DriftRules) -> list[dict[str, Any]]:
+    """Each feature row's q-values, status and reasons, from its value and missing-share p-values (batch and
+    live reports grade alike). Two families, each adjusted over the features of this report (Benjamini-
+    Hochberg): value distributions and missing shares."""
+    for row, q, mq in zip(rows, bh_qvalues(value_p).tolist(), bh_qvalues(missing_p).tolist()):
         row["q_value"] = q
         row["missing_share"]["q_value"] = mq
         by_values = grade(q < rules.alpha, row["psi"], rules.psi_watch, rules.psi_alert)

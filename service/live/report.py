@@ -26,7 +26,7 @@ from scipy import stats
 from service.core.drift import (
     DriftRules,
     _pearson_2xk,
-    bh_qvalues,
+    grade_feature_rows,
     grade,
     missing_test,
     outlier_drift_of_counts,
@@ -109,15 +109,7 @@ def live_feature_drift(reference, features, counts: WindowCounts, rules: DriftRu
                               "psi": psi([train_missing, train_n - train_missing], [n_missing, n - n_missing]),
                               "p_value": missing_p, "q_value": None},
         })
-    for row, q, mq in zip(rows, bh_qvalues(value_p).tolist(), bh_qvalues(miss_p).tolist()):
-        row["q_value"] = q
-        row["missing_share"]["q_value"] = mq
-        by_values = grade(q < rules.alpha, row["psi"], rules.psi_watch, rules.psi_alert)
-        by_missing = grade(mq < rules.alpha, row["missing_share"]["psi"], rules.psi_watch, rules.psi_alert)
-        row["status"] = worst([by_values, by_missing])
-        row["reasons"] = [reason for reason, status in (("distribution", by_values), ("missing_share", by_missing))
-                          if status != "stable"]
-    return rows
+    return grade_feature_rows(rows, value_p, miss_p, rules)
 
 
 def live_residual_drift(reference, layout: CountLayout, counts: WindowCounts, available: bool,
