@@ -33,6 +33,7 @@ from service.errors import (
     ClusterUnavailable,
     Conflict,
     FitTimeLimit,
+    FitWorkerCannotStart,
     FitWorkerDied,
     InvalidInput,
     MissingKey,
@@ -70,6 +71,7 @@ STATUS_BY_ERROR: dict[type[ServiceError], int] = {
     BundleCorrupt: 500,
     FitTimeLimit: 504,     # the server's own worker did not answer in time (documented in the README)
     FitWorkerDied: 503,    # a resource failure of the server (killed, out of memory): retry later
+    FitWorkerCannotStart: 503,  # the server's set-up (e.g. a TMPDIR too long for the worker's socket)
     StoreUnavailable: 503,
     ClusterUnavailable: 503,   # the Dask scheduler is unreachable or was lost: retry later
     ServiceError: 500,

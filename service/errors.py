@@ -255,6 +255,19 @@ class FitWorkerDied(ServiceError):
                          "nothing was written; the fit can be retried")
 
 
+class FitWorkerCannotStart(ServiceError):
+    """The server could not start a fit worker process; nothing was written."""
+
+    def __init__(self, reason: str, temp_dir_length: int) -> None:
+        hint = ""
+        if "path too long" in reason:
+            # The worker's socket lives under the temporary directory, and a Unix socket path holds at most
+            # 107 bytes: a long TMPDIR (some CI runners and sandboxes set one) makes every fit fail here.
+            hint = (f"; the temporary directory's path ({temp_dir_length} characters) is too long for the "
+                    "worker's socket: set TMPDIR to a shorter path and restart the server")
+        super().__init__(f"the server could not start a fit worker process ({reason}){hint}; nothing was written")
+
+
 class FitCancelled(Conflict):
     """The fit's job was cancelled; its worker (or its work on the Dask cluster) was stopped and nothing was
     written."""

@@ -10,6 +10,8 @@ store (one writer, and a killed worker can leave nothing half-written behind). T
 from our own child process; nothing read from the store is ever unpickled.
 
 - Past the time limit the worker is killed (SIGKILL) and ``FitTimeLimit`` raised.
+- A worker that cannot start (for instance a TMPDIR too long for the forkserver's socket) raises
+  ``FitWorkerCannotStart``.
 - A worker that dies (SIGKILL, the kernel's out-of-memory killer, a crash) raises ``FitWorkerDied``.
 - A refusal inside the fit (``InvalidInput`` and other ``ServiceError``) is re-raised as the same class.
 - With ``progress``, the worker sends ``("progress", step, fraction)`` messages over the same pipe as the fit
@@ -23,6 +25,7 @@ from __future__ import annotations
 import logging
 import multiprocessing
 import os
+import tempfile
 import threading
 import time
 import traceback
@@ -34,7 +37,7 @@ from threadpoolctl import threadpool_limits
 from service.core.bundle import Bundle, FitConfig
 from service.engines import CLUSTER_ENGINE, run_engine
 from service.engines.source import MatrixFile
-from service.errors import FitCancelled, FitTimeLimit, FitWorkerDied, ServiceError
+from service.errors import FitCancelled, FitTimeLimit, FitWorkerCannotStart, FitWorkerDied, ServiceError
 
 log = logging.getLogger("segscore")
 
@@ -118,7 +121,12 @@ def fit_in_worker(values: np.ndarray | MatrixFile, config: FitConfig, *, max_agg
     worker = _CONTEXT.Process(target=_work, args=(sender, values, config, max_agglomerative_rows, engine,
                                                   progress is not None),
                               name="segscore-fit", daemon=True)
-    worker.start()
+    try:
+        worker.start()
+    except OSError as exc:
+        sender.close()
+        receiver.close()
+        raise FitWorkerCannotStart(exc.strerror or str(exc), len(tempfile.gettempdir())) from exc
     sender.close()              # the worker holds the only sending end: its death reads as end of file
     with _running_lock:
         _running.add(worker.pid)

@@ -133,3 +133,40 @@ def test_fit_concurrency_bounds_the_number_of_worker_processes(tmp_path):
             fitter.join(60)
         assert len(killed) == 2 and most == 1
         assert sorted(r.status_code for r in results) == [503, 503]
+
+
+LONG_TMPDIR_FIT = """
+import json, sys
+from fastapi.testclient import TestClient
+from sklearn.datasets import load_iris
+from service.app import create_app
+from service.settings import Settings
+
+iris = load_iris(as_frame=True).frame.drop(columns="target")
+records = iris.to_dict(orient="records")
+with TestClient(create_app(Settings(store_dir=sys.argv[1]))) as client:
+    answer = client.post("/v1/segmentations/shop/fit", json={"records": records, "k": 2})
+    listed = client.get("/v1/segmentations").json()
+print(json.dumps({"status": answer.status_code, "body": answer.json(), "listed": listed}))
+"""
+
+
+def test_a_worker_that_cannot_start_answers_503_saying_why(tmp_path):
+    # A Unix socket path holds at most 107 bytes (Linux's sun_path): under a TMPDIR of ~150 characters the
+    # forkserver cannot bind its socket. A fresh interpreter, so no forkserver of this test process is reused.
+    import json
+    import subprocess
+    import sys
+
+    long_tmp = tmp_path / ("t" * 150)
+    long_tmp.mkdir()
+    env = {**os.environ, "TMPDIR": str(long_tmp)}
+    run = subprocess.run([sys.executable, "-c", LONG_TMPDIR_FIT, str(tmp_path / "store")], env=env,
+                         capture_output=True, text=True, timeout=120, cwd=os.getcwd())
+    assert run.returncode == 0, run.stderr[-2000:]
+    answer = json.loads(run.stdout.strip().splitlines()[-1])
+    assert answer["status"] == 503
+    assert "could not start a fit worker" in answer["body"]["detail"]
+    assert "set TMPDIR to a shorter path" in answer["body"]["detail"]
+    assert str(long_tmp) not in answer["body"]["detail"]       # the length is told, not the server's path
+    assert answer["listed"]["segmentations"] == []                 # nothing was written
