@@ -85,14 +85,14 @@ def server(address: str, dataset: str) -> None:
                       "components": bundle.report["components"]}))
 
 
-def one_run(dataset: Path, workers: int, memory_limit: str) -> dict:
+def one_run(dataset: Path, workers: int, memory_limit: str, time_limit: float) -> dict:
     from distributed import Client, LocalCluster
 
     with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
                       dashboard_address=":0", memory_limit=memory_limit) as cluster:
         env = {**os.environ, "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"}
         child = subprocess.run([sys.executable, __file__, "--server", cluster.scheduler_address, str(dataset)],
-                               capture_output=True, text=True, env=env, timeout=3600)
+                               capture_output=True, text=True, env=env, timeout=time_limit)
         if child.returncode:
             raise RuntimeError(child.stderr[-3000:])
         result = json.loads(child.stdout.strip().splitlines()[-1])
@@ -108,19 +108,23 @@ def main() -> None:
     parser.add_argument("--rounds", type=int, default=2)
     parser.add_argument("--data", default="/tmp/segscore-dask-bench")
     parser.add_argument("--memory-limit", default="6GiB")
+    parser.add_argument("--time-limit", type=float, default=3 * 3600.0,
+                        help="seconds one fit may take before the run is abandoned (default 3 h)")
+    parser.add_argument("--workers", default="1,2", help="cluster sizes to compare (default 1,2)")
     parser.add_argument("--server", nargs=2)
     args = parser.parse_args()
     if args.server:
         server(*args.server)
         return
     sizes = [int(s) for s in args.sizes.split(",")]
+    cluster_sizes = [int(w) for w in args.workers.split(",")]
     print(f"# {platform.python_version()} {cpu_model()} load {load_average()}")
     datasets = {n: write_dataset(Path(args.data), n) for n in sizes}
     results: dict[tuple[int, int], list[dict]] = {}
     for round_ in range(args.rounds):
         for n in sizes:
-            for workers in ((1, 2) if round_ % 2 == 0 else (2, 1)):
-                run = one_run(datasets[n], workers, args.memory_limit)
+            for workers in (cluster_sizes if round_ % 2 == 0 else cluster_sizes[::-1]):
+                run = one_run(datasets[n], workers, args.memory_limit, args.time_limit)
                 results.setdefault((n, workers), []).append(run)
                 print(f"round {round_} rows {n} workers {workers}: {run['wall']:.1f} s, worker peaks "
                       f"{[round(k / 1024) for k in run['worker_peak_kib']]} MiB, server "
