@@ -339,6 +339,17 @@ class Sampler(threading.Thread):
         return sum(cpu - self.baseline_cpu.get(pid, 0.0) for pid, cpu in self.children_cpu.items())
 
 
+def gauges(base: str) -> dict[str, float]:
+    """A few of the server's own gauges (/metrics): versions held in memory, the live recorder's backlog."""
+    wanted = ("segscore_bundles_loaded", "segscore_live_queue_bytes", "segscore_live_inline_tallies")
+    found = {}
+    for line in httpx.get(f"{base}/metrics", timeout=30).text.splitlines():
+        name, _, value = line.partition(" ")
+        if name in wanted:
+            found[name.removeprefix("segscore_")] = float(value)
+    return found
+
+
 def own_cpu_seconds() -> float:
     times = os.times()
     return times.user + times.system
@@ -413,11 +424,13 @@ def mixed(base: str, server_pid: int, data: Data, routes: list[Route], rates: di
     drift = DriftCalls(base, data, time.monotonic() + duration)
     sampler = Sampler(server_pid)
     rss_start = rss_mib(server_pid)
+    result["gauges_start"] = gauges(base)
     cpu = (own_cpu_seconds(), process_cpu_seconds(server_pid), machine_busy_seconds(), time.monotonic())
     sampler.start()
     window, fit = paced_window(base, data, plan, duration, duration / 3, drift)
     sampler.stop()
     rss_end = rss_mib(server_pid)
+    result["gauges_end"] = gauges(base)
     wall = time.monotonic() - cpu[3]       # the window, plus the fit's end if it answers after the window
     own = own_cpu_seconds() - cpu[0]
     server_cpu = process_cpu_seconds(server_pid) - cpu[1]
@@ -475,6 +488,7 @@ def print_mixed(result: dict, routes: list[Route], rates: dict[str, float], dura
           f"end {result['rss_end']:.0f} MiB ({growth:+.1%}; goal under +10 %), peak {result['rss_peak']:.0f} MiB, "
           f"5 s after the end {result['rss_settled']:.0f} MiB")
     print(f"forkserver + fit worker (separate processes): peak RSS {result['children_peak']:.0f} MiB")
+    print(f"server gauges at the window's start {result['gauges_start']}, end {result['gauges_end']}")
     print("CPU over the window, in cores: " + ", ".join(f"{k} {v:.2f}" for k, v in result["cpu"].items())
           + f" (of {os.cpu_count()})")
 
@@ -483,7 +497,7 @@ def run_mixed(args, data: Data, bundle, folder: Path) -> None:
     if shutil.which("wrk") is None:
         print(f"SKIPPED mixed load: {WRK_HINT}")
         return
-    routes = [Route("assign 1 record", data.singles_file, 16), Route("assign 1,000 rows", data.batches_file, 4)]
+    routes = [Route("assign 1 record", data.singles_file, 64), Route("assign 1,000 rows", data.batches_file, 8)]
     rates: dict[str, float] | None = None
     results = []
     for mode in args.modes.split(","):
