@@ -128,7 +128,7 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
 
         started = time.perf_counter()
         report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
-        del values
+        values = None                   # the matrix too: its pages go back with the rest
         await anyio.to_thread.run_sync(release_free_memory)    # the parse's and the fit's freed buffers
     finally:
         if work_dir is not None:
