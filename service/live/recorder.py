@@ -2,7 +2,7 @@
 buckets to the store, where replicas' counts merge by addition.
 
 The assign route makes ONE call, ``observe``, after scoring: it appends references to the batch's checked
-matrix and its assignment to a queue (about a microsecond, whatever the batch size). The queue holds at most
+matrix and its assignment to a queue (a lock, an append and an addition, whatever the batch size). The queue holds at most
 ``MAX_QUEUED_BYTES`` of record values: past that, ``observe`` tallies on the caller's thread. A background thread
 (``run``) then, every ``TALLY_SECONDS``, bins what is queued (``service.live.counts.tally``, vectorised over all
 the queued records of a version at once), adds the counts to the bucket of the moment each batch was assigned,
