@@ -40,7 +40,9 @@ bench: $(STAMP)  ## in-process benchmarks (figures for the README)
 calibrate: $(STAMP)  ## calibration sweeps of the outlier flag and the drift p-values (figures for the README)
 	$(BIN)/python bench/calibrate.py
 
-load: $(STAMP)  ## HTTP load on 127.0.0.1 (~3 min, stops by itself): assign p99 during a fit, 60 s mixed traffic
+load: $(STAMP)  ## HTTP load on 127.0.0.1 (~5 min, stops by itself): assign p99 during a fit, 2 x 60 s mixed traffic
+	@command -v wrk >/dev/null || { echo "make load needs wrk (the mixed traffic's generator)." \
+		"On Debian/Ubuntu: sudo apt-get update && sudo apt-get install -y wrk"; exit 1; }
 	$(BIN)/python bench/load_mixed.py
 
 clean:

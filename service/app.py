@@ -282,6 +282,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
     app.state.jobs = JobRunner(app.state.store, settings, metrics)
     metrics.track_bundles_loaded(lambda: app.state.store.loaded_count())
     app.state.live = open_live(settings, app.state.store)
+    metrics.track_live_queue(app.state.live)
     app.state.chart_cache = ChartCache(settings.chart_cache_size)
     for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router, jobs.router):
         app.include_router(router, prefix="/v1")

@@ -32,7 +32,8 @@ class Metrics:
     def __init__(self) -> None:
         self.multiprocess = multiprocess_mode()
         self.registry = CollectorRegistry()
-        self._bundles_loaded_now: Callable[[], int] | None = None
+        # (gauge, function): gauges read from a function at each scrape (see ``track``)
+        self._tracked: list[tuple[Any, Callable[[], float]]] = []
         self.requests = Counter("segscore_http_requests", "HTTP requests by route and status",
                                 ["method", "route", "status"], registry=self.registry)
         self.latency = Histogram("segscore_http_request_seconds", "HTTP request time by route",
@@ -57,6 +58,12 @@ class Metrics:
         # Summed over the live workers (each holds its own copies).
         self.bundles_loaded = Gauge("segscore_bundles_loaded", "Compiled versions held in memory (all workers)",
                                     registry=self.registry, multiprocess_mode="livesum")
+        self.live_queue_bytes = Gauge("segscore_live_queue_bytes", "Bytes of assigned records queued for the live "
+                                      "counts and not yet tallied (all workers)", registry=self.registry,
+                                      multiprocess_mode="livesum")
+        self.live_inline_tallies = Gauge("segscore_live_inline_tallies", "Times the live queue passed its bound and "
+                                         "an assign call tallied it itself, since start (all workers)",
+                                         registry=self.registry, multiprocess_mode="livesum")
 
         # Label look-ups bound once per label set: ``labels()`` costs a lock and a tuple hash per call, several
         # times per request on the assign path. Series are never removed, so a bound child stays valid; the
@@ -132,16 +139,25 @@ class Metrics:
         for feature in report["features"]:
             self.drift_psi.labels(report["name"], feature["name"]).set(feature["psi"])
 
-    def track_bundles_loaded(self, count: Callable[[], int]) -> None:
-        """Report ``count()`` as bundles loaded: read at each scrape with one worker; with several, each worker
-        writes its own count (``sync``, called by its background loop and before it answers a scrape)."""
-        self._bundles_loaded_now = count
+    def track(self, gauge, value: Callable[[], float]) -> None:
+        """Report ``value()`` as ``gauge``: read at each scrape with one worker; with several, each worker
+        writes its own value (``sync``, called by its background loop and before it answers a scrape)."""
+        self._tracked.append((gauge, value))
         if not self.multiprocess:
-            self.bundles_loaded.set_function(count)
+            gauge.set_function(value)
+
+    def track_bundles_loaded(self, count: Callable[[], int]) -> None:
+        self.track(self.bundles_loaded, count)
+
+    def track_live_queue(self, recorder) -> None:
+        """The live recorder's backlog (``service.live.recorder``): queued bytes and inline tallies."""
+        self.track(self.live_queue_bytes, recorder.queued_bytes)
+        self.track(self.live_inline_tallies, lambda: recorder.inline_tallies)
 
     def sync(self) -> None:
-        if self.multiprocess and self._bundles_loaded_now is not None:
-            self.bundles_loaded.set(self._bundles_loaded_now())
+        if self.multiprocess:
+            for gauge, value in self._tracked:
+                gauge.set(value())
 
     def exposition(self) -> bytes:
         if not self.multiprocess:

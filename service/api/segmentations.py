@@ -34,6 +34,7 @@ from service.api.upload import (
 )
 from service.engines import CLUSTER_ENGINE, check_before_fit, resolve_engine
 from service.fitting import run_fit
+from service.memory import release_free_memory
 from service.inputs.fit_input import QUERY_PARAMETERS, prepare_fit_request
 from service.inputs.streamed import new_upload_directory, prepare_streamed_fit, remove_upload_directory
 
@@ -127,6 +128,8 @@ async def fit(name: str, request: Request, settings: SettingsDep, store: StoreDe
 
         started = time.perf_counter()
         report = await anyio.to_thread.run_sync(fit_and_save, limiter=request.app.state.fit_limiter)
+        values = None                   # the matrix too: its pages go back with the rest
+        await anyio.to_thread.run_sync(release_free_memory)    # the parse's and the fit's freed buffers
     finally:
         if work_dir is not None:
             remove_upload_directory(work_dir)

@@ -45,6 +45,7 @@ from service.core.fit import STEP_START
 from service.errors import FitCancelled, JobNotRunning, ServiceError, StoreUnavailable
 from service.engines.source import MatrixFile
 from service.fitting import run_fit
+from service.memory import release_free_memory
 from service.inputs.streamed import remove_upload_directory
 from service.store.base import ACTIVE_JOB_STATES, JOB_FIRST_STEP
 
@@ -171,6 +172,8 @@ class JobRunner:
                 local.started = True
                 await anyio.to_thread.run_sync(self._fit_and_save, job_id, local.cancel, name, values, config,
                                                make_live, actor, engine, source)
+                values = None
+                await anyio.to_thread.run_sync(release_free_memory)    # as after a synchronous fit
         except asyncio.CancelledError:
             pass                        # cancelled while queued (its state is already set by the canceller)
         finally:

@@ -2,7 +2,8 @@
 buckets to the store, where replicas' counts merge by addition.
 
 The assign route makes ONE call, ``observe``, after scoring: it appends references to the batch's checked
-matrix and its assignment to a queue (well under a microsecond, whatever the batch size). A background thread
+matrix and its assignment to a queue (a lock, an append and an addition, whatever the batch size). The queue holds at most
+``MAX_QUEUED_BYTES`` of record values: past that, ``observe`` tallies on the caller's thread. A background thread
 (``run``) then, every ``TALLY_SECONDS``, bins what is queued (``service.live.counts.tally``, vectorised over all
 the queued records of a version at once), adds the counts to the bucket of the moment each batch was assigned,
 and drops the records: values are held in memory only until that tally, and never written anywhere. Every
@@ -28,9 +29,10 @@ from service.live.counts import CountLayout, build_layout, tally
 log = logging.getLogger("segscore.live")
 
 TALLY_SECONDS = 0.5
-# Queued batches above which ``observe`` tallies at once on the caller's thread (bounds memory when the
-# background thread falls behind; counting batches, not rows, keeps the check to one len()).
-MAX_QUEUED_BATCHES = 10_000
+# Bytes of queued record values above which ``observe`` tallies at once on the caller's thread: the memory the
+# queue may hold when the background thread falls behind (a count of batches would not bound it: 10,000 queued
+# 1,000-row batches of 20 features hold 1.6 GB). Nothing is dropped: past the bound, the caller does the tally.
+MAX_QUEUED_BYTES = 32 * 2**20
 RETENTION_EVERY_SECONDS = 3600.0
 
 
@@ -45,9 +47,13 @@ class LiveOff:
     """The recorder when live drift is off (``SEGSCORE_LIVE_DRIFT=false``): nothing is kept."""
 
     enabled = False
+    inline_tallies = 0
 
     def observe(self, loaded, values, assignment) -> None:
         return None
+
+    def queued_bytes(self) -> int:
+        return 0
 
     def flush(self) -> int:
         return 0
@@ -65,14 +71,18 @@ class LiveRecorder:
     enabled = True
 
     def __init__(self, store, *, bucket_seconds: int, flush_seconds: float, retention_days: int,
-                 clock: Callable[[], float] = time.time) -> None:
+                 clock: Callable[[], float] = time.time, max_queued_bytes: int = MAX_QUEUED_BYTES) -> None:
         self.store = store
         self.bucket_seconds = int(bucket_seconds)
         self.flush_seconds = float(flush_seconds)
         self.retention_days = int(retention_days)
         self.clock = clock
+        self.max_queued_bytes = int(max_queued_bytes)
         self._queue: deque = deque()
-        self._enqueue = self._queue.append
+        self._queued_bytes = 0
+        # guards the queue and its byte count together (observe may run on the event loop and in worker threads)
+        self._queue_lock = threading.Lock()
+        self.inline_tallies = 0          # times observe found the bound passed and tallied on the caller's thread
         self._layouts: dict[tuple[str, int], tuple[Any, CountLayout]] = {}
         # (name, version, bucket start) -> counts not yet in the store
         self._unflushed: dict[tuple[str, int, int], np.ndarray] = {}
@@ -86,9 +96,14 @@ class LiveRecorder:
         """Queue one assigned batch (references only; no work here). ``values``: the checked matrix, NaN =
         missing, one row per assigned record."""
         # Only the four arrays the counts need are held (the rest of the assignment is freed with the answer).
-        self._enqueue((loaded, values, assignment.segment, assignment.far, assignment.off_plane, assignment.residual,
-                       self.clock()))
-        if len(self._queue) > MAX_QUEUED_BATCHES:
+        item = (loaded, values, assignment.segment, assignment.far, assignment.off_plane, assignment.residual,
+                self.clock())
+        with self._queue_lock:
+            self._queue.append(item)
+            self._queued_bytes += values.nbytes
+            over = self._queued_bytes > self.max_queued_bytes
+        if over:
+            self.inline_tallies += 1
             self.tally()
 
     # ----------------------------------------------------------------- background work
@@ -107,12 +122,8 @@ class LiveRecorder:
     def tally(self) -> int:
         """Count every queued batch into its bucket and drop its records; return the records counted."""
         with self._tally_lock:
-            taken = []
-            while True:
-                try:
-                    taken.append(self._queue.popleft())
-                except IndexError:
-                    break
+            with self._queue_lock:
+                taken, self._queue, self._queued_bytes = self._queue, deque(), 0
             if not taken:
                 return 0
             groups: dict[tuple[str, int, int], list] = defaultdict(list)
@@ -199,6 +210,11 @@ class LiveRecorder:
             self.flush()
         except Exception as exc:
             log.warning("live counts lost at shutdown: %s", type(exc).__name__)
+
+    def queued_bytes(self) -> int:
+        """Bytes of record values queued and not yet tallied (at most ``max_queued_bytes`` plus one batch)."""
+        with self._queue_lock:
+            return self._queued_bytes
 
     def unflushed_records(self) -> int:
         with self._flush_lock:

@@ -162,3 +162,33 @@ def test_retention_deletes_old_buckets_only(version, tmp_path):
     assert recorder.prune() > 0
     assert store.live_counts("shop", 1, since=0)[0] == 20      # the 31-day-old bucket went, the other stayed
     assert any(e["action"] == "prune_live_counts" for e in store.events(None, limit=10))
+
+
+def test_queue_is_bounded_in_bytes_and_nothing_is_dropped(version, tmp_path):
+    # The backlog bound: with the background thread never running (as when it falls behind under load), the
+    # queued record values never pass max_queued_bytes plus one batch; past the bound observe tallies itself, so
+    # every record is still counted exactly once (reference: tally of all the records at once, the definition).
+    from service.store import FilesystemStore
+
+    store = FilesystemStore(tmp_path / "store")
+    values = drift_model(2_000, np.random.default_rng(21))
+    batch_rows = 100
+    batch_bytes = values[:batch_rows].nbytes
+    recorder = LiveRecorder(store, bucket_seconds=300, flush_seconds=2, retention_days=30, clock=lambda: 1_000_000.0,
+                            max_queued_bytes=5 * batch_bytes)
+    seen = []
+    for i in range(0, 2_000, batch_rows):
+        part = values[i:i + batch_rows]
+        recorder.observe(version, part, assigned(version, part))
+        seen.append(recorder.queued_bytes())
+    assert max(seen) <= 5 * batch_bytes + batch_bytes          # the bound (20 batches were observed)
+    assert recorder.inline_tallies == 3                        # batches 6, 12 and 18 passed it: 20 // 6
+    recorder.flush()
+    assert recorder.queued_bytes() == 0
+    layout = layout_of(version)
+    stored = np.zeros(layout.n_slots, dtype=np.int64)
+    for slot, count in store.live_counts("shop", 1, since=0).items():
+        stored[slot] = count
+    reference = tally(layout, values, *(getattr(assigned(version, values), f)
+                                        for f in ("segment", "far", "off_plane", "residual")))
+    assert stored.tolist() == reference.tolist()
