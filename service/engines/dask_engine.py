@@ -78,6 +78,7 @@ MAX_ITER = 300                      # scikit-learn's KMeans defaults
 TOL = 1e-4
 MAX_BLOCK_ROWS = 200_000            # rows per block kept on a worker (a larger partition is sliced)
 MIN_BLOCK_ROWS = 10_000             # ... and no smaller than this when slicing to spread the rows
+CSV_BLOCK_SIZE = "64MB"             # bytes of a CSV file per partition (a larger file is split)
 SILHOUETTE_WORKING_MIB = 64          # scikit-learn's chunk size for the silhouette's pairwise distances
 WAIT_SECONDS = 0.25                 # how often a waiting fit looks at its cancel hook and the scheduler
 SCHEDULER_GRACE_SECONDS = 10.0      # a scheduler gone this long fails the fit
@@ -208,12 +209,48 @@ def _numeric(dtype: Any) -> bool:
     return pd.api.types.is_numeric_dtype(dtype) and not pd.api.types.is_bool_dtype(dtype)
 
 
+class NotNumeric(ValueError):
+    """A feature column of a partition holds a value that is not a number (raised on a worker; the message names
+    the column, never the value)."""
+
+
 def _to_matrix(part: Any, features: list[str]) -> np.ndarray:
     import pandas as pd
 
-    columns = [pd.to_numeric(part[name], errors="raise") for name in features]
+    columns = []
+    for name in features:
+        try:
+            columns.append(pd.to_numeric(part[name], errors="raise"))
+        except (ValueError, TypeError):
+            raise NotNumeric(f"column {name!r} holds a value that is not a number") from None
     return np.ascontiguousarray(np.column_stack([c.to_numpy(dtype=np.float64, na_value=np.nan) for c in columns])
                                 if columns else np.empty((len(part), 0)))
+
+
+def _csv_header(file: Any) -> tuple[str, ...]:
+    import pandas as pd
+
+    with file as handle:
+        return tuple(pd.read_csv(handle, nrows=0).columns)
+
+
+def _check_csv_headers(cluster: "_Cluster", source: DataSource) -> None:
+    """Every CSV file of a source must start with the first file's header row. Dask reads each file under its own
+    header, so a file whose header differs would give its rows under other names, or a file without a header
+    would lose its first row to the names. The workers read the header lines; the refusal names the files, not
+    their headers (a data row taken for a header holds record values)."""
+    import dask
+    import fsspec
+
+    files = fsspec.open_files(list(source.paths), mode="rb", compression="infer")
+    if not files:
+        raise InvalidInput("the source names no file (nothing matches it)", field="source")
+    headers = cluster.compute(*[dask.delayed(_csv_header, pure=True)(file) for file in files])
+    odd = [file.path for file, header in zip(files, headers) if header != headers[0]]
+    if odd:
+        raise InvalidInput(f"every CSV file of a source must have the header row of the first file "
+                           f"({files[0].path}, {len(headers[0])} columns); {len(odd)} file(s) differ: "
+                           f"{', '.join(odd[:5])}" + (" ..." if len(odd) > 5 else ""), field="source")
 
 
 def _open(source: DataSource, config: FitConfig) -> tuple[list[Any], list[str]]:
@@ -224,7 +261,7 @@ def _open(source: DataSource, config: FitConfig) -> tuple[list[Any], list[str]]:
     if source.format == "parquet":
         frame = dd.read_parquet(list(source.paths))
     else:
-        frame = dd.read_csv(list(source.paths), assume_missing=True, blocksize="64MB")
+        frame = dd.read_csv(list(source.paths), assume_missing=True, blocksize=CSV_BLOCK_SIZE)
     columns = list(frame.columns)
     if config.id_column is not None and config.id_column not in columns:
         raise InvalidInput(f"id_column {config.id_column!r} is not a column of the source", field="id_column")
@@ -243,6 +280,12 @@ def _open(source: DataSource, config: FitConfig) -> tuple[list[Any], list[str]]:
         features = [c for c in columns if c != config.id_column and _numeric(frame.dtypes[c])]
         if not features:
             raise InvalidInput("the source has no numeric columns; name the features explicitly", field="features")
+    if source.format == "csv":
+        # The features are read as text and converted by ``_to_matrix``: Dask's own conversion of a column whose
+        # type it guessed from the first file's first lines fails with a message (and a worker log) quoting the
+        # cells; ours names the column only. Both parse to the same correctly rounded float64.
+        frame = dd.read_csv(list(source.paths), blocksize=CSV_BLOCK_SIZE, usecols=features,
+                            dtype={name: "str" for name in features})
     call = dask.delayed(_to_matrix, pure=True)
     return [call(part, features) for part in frame[features].to_delayed()], features
 
@@ -355,6 +398,8 @@ def fit_on_dask(source: DataSource, config: FitConfig, *, client: Any, progress:
     hook = cancel or CancelHook()
     report_progress = progress or (lambda step, fraction: None)
     report_progress("reading", STAGES["reading"])
+    if source.format == "csv":
+        _check_csv_headers(_Cluster(client, hook, [], []), source)
     lazy, features = _open(source, config)
     held: list[Any] = []            # the futures of the data persisted on the workers
     try:
@@ -395,10 +440,15 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
     wheres_stub = [Where(i, 0) for i in range(len(blocks))]
     try:
         lengths = _Cluster(client, hook, blocks, wheres_stub).compute(*[dask.delayed(len)(b) for b in blocks])
-    except (ValueError, TypeError, FileNotFoundError) as exc:
-        # Raised on a worker while reading: a cell that is not a number, a file gone since the request.
-        raise InvalidInput(f"the workers could not read the features as numbers ({type(exc).__name__}: "
-                           f"{str(exc)[:200]})", field="source") from exc
+    except (NotNumeric, FileNotFoundError) as exc:
+        # Raised on a worker while reading: our own message (a column, never a value), a file gone since the
+        # request (its path).
+        raise InvalidInput(f"the workers could not read the source: {str(exc)[:300]}", field="source") from exc
+    except (ValueError, TypeError, KeyError) as exc:
+        # A parser's or Dask's own message may quote cells (a dtype mismatch lists the values it could not
+        # convert): only the kind of error is passed on.
+        raise InvalidInput(f"the workers could not read the source ({type(exc).__name__}): every feature column "
+                           "must hold numbers and every line the header's number of fields", field="source") from exc
     # Blocks of at most MAX_BLOCK_ROWS rows (a large file is sliced), so every worker gets a share; empty
     # partitions are left out.
     workers = len(client.scheduler_info().get("workers", {}))

@@ -27,6 +27,7 @@ from service.engines.dask_engine import CancelHook, fit_on_dask
 from service.engines.sources import spill_records
 from service.errors import ClusterUnavailable, FitCancelled
 from service.settings import Settings
+from tests.conftest import until_finished
 
 distributed = pytest.importorskip("distributed")
 
@@ -150,13 +151,6 @@ def cluster_tasks(cluster) -> int:
     return len(cluster.scheduler.tasks)
 
 
-def _until_finished(client, job_url: str, seconds: float = 180) -> dict:
-    deadline = time.monotonic() + seconds
-    while (job := client.get(job_url).json())["state"] in ("queued", "running") and time.monotonic() < deadline:
-        time.sleep(0.1)
-    return job
-
-
 def test_a_fit_request_with_engine_dask_stores_an_ordinary_version(cluster, blobs, tmp_path):
     values, _ = blobs
     settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address)
@@ -165,7 +159,7 @@ def test_a_fit_request_with_engine_dask_stores_an_ordinary_version(cluster, blob
         # A fit on the cluster always runs as a background job, asked for or not.
         response = client.post("/v1/segmentations/lake/fit", json={"records": records, "engine": "dask", "k": 3})
         assert response.status_code == 202, response.text
-        job = _until_finished(client, response.headers["location"])
+        job = until_finished(client, response.headers["location"])
         assert job["state"] == "done", job
         report = client.get(f"/v1/jobs/{job['id']}/report").json()
         assert report["engine"] == "dask" and report["engine_details"]["workers"] == 2
@@ -184,7 +178,7 @@ def test_a_background_dask_fit_is_a_job_with_steps_and_gives_an_ordinary_version
         started = client.post("/v1/segmentations/lake/fit?background=true",
                               json={"records": records, "engine": "dask", "k": 3})
         assert started.status_code == 202, started.text
-        job = _until_finished(client, started.headers["location"])
+        job = until_finished(client, started.headers["location"])
         assert job["state"] == "done" and job["progress"] == 1.0, job
         report = client.get(f"/v1/segmentations/lake/versions/{job['version']}").json()
         assert report["engine"] == "dask"
@@ -205,7 +199,7 @@ def test_cancelling_a_background_dask_fit_stops_it_and_writes_no_version(cluster
         # Seven values of k over every blob row take the cluster seconds: the cancel arrives while it works.
         cancelled = client.delete(job_url)
         assert cancelled.status_code == 200, cancelled.text
-        job = _until_finished(client, job_url)
+        job = until_finished(client, job_url)
         assert job["state"] == "cancelled" and job["version"] is None
         assert client.get("/v1/segmentations/lake").status_code == 404
         # The cluster let go of the fit's work.
@@ -227,7 +221,7 @@ def test_a_fit_request_naming_a_source_under_an_allowed_prefix_is_read_by_the_wo
         response = client.post("/v1/segmentations/lake/fit",
                                json={"source": f"file://{lake}/customers.parquet", "k": 4, "id_column": "customer"})
         assert response.status_code == 202, response.text
-        job = _until_finished(client, response.headers["location"])
+        job = until_finished(client, response.headers["location"])
         assert job["state"] == "done", job
         report = client.get(f"/v1/jobs/{job['id']}/report").json()
         assert report["features"] == FEATURES and report["n_records"] == len(values)
@@ -280,3 +274,97 @@ def test_a_worker_killed_mid_fit_is_replaced_and_the_fit_completes(dask_client, 
     bundle = fit_on_dask(spill_records(values, FEATURES, tmp_path), config(), client=dask_client, progress=progress)
     assert len(killed) == 1 and killed[0] not in dask_client.run(os.getpid).values()
     assert adjusted_rand_score(labels_of(in_memory, values), labels_of(bundle, values)) >= 0.95
+
+
+def _csv_lake(values, lake, files=4):
+    """``values`` with a text id column, split in order over ``files`` CSV files part-0.csv, part-1.csv... (pandas
+    writes floats with the shortest repr that reads back to the same float64)."""
+    lake.mkdir()
+    frame = pd.DataFrame(values, columns=FEATURES).assign(customer=[f"c{i}" for i in range(len(values))])
+    for part, rows in enumerate(np.array_split(np.arange(len(values)), files)):
+        frame.iloc[rows].to_csv(lake / f"part-{part}.csv", index=False)
+
+
+def test_a_csv_source_named_by_a_wildcard_agrees_with_the_in_memory_fit_of_the_same_rows(cluster, blobs, tmp_path):
+    values, _ = blobs
+    lake = tmp_path / "lake"
+    _csv_lake(values, lake)
+    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address,
+                        source_prefixes=(f"file://{lake}/",))
+    params = {"k": {"min": 2, "max": 6}, "seed": 0, "id_column": "customer"}
+    with TestClient(create_app(settings)) as client:
+        started = client.post("/v1/segmentations/lake/fit", json={"source": f"file://{lake}/part-*.csv", **params})
+        assert started.status_code == 202, started.text
+        job = until_finished(client, started.headers["location"])
+        assert job["state"] == "done", job
+        on_cluster = client.get(f"/v1/segmentations/lake/versions/{job['version']}").json()
+        # The same rows (the files read back by pandas, in name order) sent as records to the in-memory engine.
+        rows = pd.concat([pd.read_csv(lake / f"part-{part}.csv") for part in range(4)], ignore_index=True)
+        records = [dict(zip(FEATURES, map(float, row)), customer=c)
+                   for row, c in zip(rows[FEATURES].to_numpy(), rows["customer"])]
+        memory = client.post("/v1/segmentations/memory/fit", json={"records": records, "engine": "memory", **params})
+        assert memory.status_code == 201, memory.text
+        memory = memory.json()
+        assign = {}
+        for name in ("lake", "memory"):
+            answer = client.post(f"/v1/segmentations/{name}/assign", json={"records": records})
+            assert answer.status_code == 200, answer.text
+            assign[name] = np.array([row["segment"] for row in answer.json()["results"]])
+
+    assert np.array_equal(rows[FEATURES].to_numpy(), values)          # the CSV round trip lost nothing
+    assert on_cluster["engine"] == "dask" and on_cluster["engine_details"]["source_format"] == "csv"
+    assert on_cluster["n_records"] == memory["n_records"] == len(values)
+    assert on_cluster["features"] == memory["features"] == FEATURES
+    assert on_cluster["k"] == memory["k"]
+    # Adjusted Rand index (scikit-learn) of the two versions' assignments of the training rows.
+    assert adjusted_rand_score(assign["memory"], assign["lake"]) >= 0.95
+    # Profiles: pandas group-by means over the Dask version's own segments.
+    means = rows[FEATURES].groupby(assign["lake"]).mean()
+    for segment in on_cluster["segments"]:
+        assert segment["size"] == int(np.sum(assign["lake"] == segment["id"]))
+        for name in FEATURES:
+            assert segment["profile"][name]["mean"] == pytest.approx(means.at[segment["id"], name], rel=0, abs=1e-9)
+
+
+def test_a_csv_file_with_another_header_is_refused_naming_the_file_and_no_value(cluster, blobs, tmp_path):
+    values, _ = blobs
+    lake = tmp_path / "lake"
+    _csv_lake(values[:400], lake, files=3)
+    # The last file's header is a data row: its "column names" are record values, which must not be echoed.
+    odd = lake / "part-2.csv"
+    odd.write_text("\n".join(odd.read_text().splitlines()[1:]) + "\n")
+    secret = odd.read_text().splitlines()[0].split(",")[0]
+    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address,
+                        source_prefixes=(f"file://{lake}/",))
+    with TestClient(create_app(settings)) as client:
+        started = client.post("/v1/segmentations/lake/fit",
+                              json={"source": f"file://{lake}/part-*.csv", "k": 3, "id_column": "customer"})
+        assert started.status_code == 202, started.text
+        job = until_finished(client, started.headers["location"])
+        assert job["state"] == "failed" and job["version"] is None, job
+        assert client.get("/v1/segmentations/lake").status_code == 404
+    detail = str(job["error"])
+    assert "part-2.csv" in detail and "header" in detail and secret not in detail
+    # Through the fit runner (what the job calls) the refusal is a 4xx of the error table, with the same detail.
+    from service.app import status_for
+    from service.errors import ServiceError
+    from service.fitting import run_fit
+    from service.inputs.fit_input import prepare_fit_request
+    import json
+
+    plan = prepare_fit_request(json.dumps({"source": f"file://{lake}/part-*.csv", "k": 3,
+                                           "id_column": "customer"}).encode(), False, {}, settings)
+    with pytest.raises(ServiceError) as refused:
+        run_fit(None, plan.config, engine=plan.engine, source=plan.source, settings=settings)
+    assert 400 <= status_for(refused.value) < 500 and refused.value.detail == job["error"]
+
+    # A cell that is not a number: refused naming its column, without the cell.
+    header = (lake / "part-0.csv").read_text().splitlines()[0]
+    lines = odd.read_text().splitlines()
+    cells = lines[3].split(",")
+    cells[FEATURES.index("f2")] = "not-a-number-7"
+    odd.write_text("\n".join([header, *lines[:3], ",".join(cells), *lines[4:]]) + "\n")
+    with pytest.raises(ServiceError) as refused:
+        run_fit(None, plan.config, engine=plan.engine, source=plan.source, settings=settings)
+    detail = str(refused.value.detail)
+    assert 400 <= status_for(refused.value) < 500 and "'f2'" in detail and "not-a-number-7" not in detail
