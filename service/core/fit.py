@@ -287,6 +287,38 @@ def data_sha256(values: np.ndarray) -> str:
     return digest.hexdigest()
 
 
+# ``data_sha256`` of a version fitted on a cluster, whose rows are never in one place: SHA-256 cannot be
+# continued across machines (a hash's state cannot be sent), so the matrix is hashed in chunks of this many
+# consecutive rows, wherever they lie, and the chunks' digests are hashed in order. The value starts with
+# CHUNKED_DIGEST_PREFIX so that it is never taken for (or compared with) a whole-matrix ``data_sha256``.
+DIGEST_CHUNK_ROWS = 65_536
+CHUNKED_DIGEST_PREFIX = "chunks:"
+
+
+def chunk_digest(*pieces: np.ndarray) -> bytes:
+    """SHA-256 of consecutive row blocks (one chunk of ``data_chunks_sha256``, maybe split over blocks)."""
+    digest = hashlib.sha256()
+    for piece in pieces:
+        digest.update(np.ascontiguousarray(piece, dtype=np.float64).tobytes())
+    return digest.digest()
+
+
+def combine_chunk_digests(n_rows: int, n_columns: int, digests: list[bytes], chunk_rows: int = DIGEST_CHUNK_ROWS
+                          ) -> str:
+    digest = hashlib.sha256(f"{n_rows}x{n_columns}:{chunk_rows}-row chunks:".encode())
+    for part in digests:
+        digest.update(part)
+    return CHUNKED_DIGEST_PREFIX + digest.hexdigest()
+
+
+def data_chunks_sha256(values: np.ndarray, chunk_rows: int = DIGEST_CHUNK_ROWS) -> str:
+    """The chunked digest of a matrix in memory: "chunks:" + SHA-256 over "<rows>x<cols>:65536-row chunks:" and
+    the SHA-256 of each run of 65,536 consecutive rows (the last one shorter), float64, C order, in order."""
+    return combine_chunk_digests(values.shape[0], values.shape[1],
+                                 [chunk_digest(values[start:start + chunk_rows])
+                                  for start in range(0, values.shape[0], chunk_rows)], chunk_rows)
+
+
 def library_versions() -> dict[str, str]:
     return {
         "python": platform.python_version(),

@@ -30,7 +30,6 @@ the returned bundle.
 from __future__ import annotations
 
 import dataclasses
-import hashlib
 import logging
 import math
 import threading
@@ -53,11 +52,14 @@ from service.core.bundle import Bundle, FitConfig, ReferenceProfile
 from service.core.calibration import MIN_CROSS_FIT_ROWS, MIN_MEDIAN_ROWS, min_own_rows
 from service.core.fit import (
     DECILES,
+    DIGEST_CHUNK_ROWS,
     MAX_CATEGORIES,
     MIN_SPREAD,
     NEAR_CONSTANT_RTOL,
     SCALERS,
     choose_k,
+    chunk_digest,
+    combine_chunk_digests,
     fit_warnings_from_counts,
     jackson_mudholkar_limit,
     kneedle_k,
@@ -500,9 +502,7 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
     features = list(config.features)
     p = len(features)
     _config_checks(config, n, p)
-    digest = hashlib.sha256(f"{n}x{p}:blocks:".encode())
-    for part in parts:
-        digest.update(part["sha256"])
+    data_digest = _chunked_digest(cluster, lengths, n, p)
     probes = [np.unique(np.concatenate([part["probe"][j] for part in parts])) for j in range(p)]
 
     # ---- medians, scaling
@@ -658,12 +658,14 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
         "training_outlier_rate": reference.outlier_rate,
         "calibration": calibration["report"],
         "imputation_medians": dict(zip(features, (float(v) for v in medians))),
-        "data_sha256": digest.hexdigest(),
+        "data_sha256": data_digest,
         "library_versions": library_versions(),
         "warnings": fit_warnings_from_counts(config, sizes, sizes, k, n),
         "engine": ENGINE,
         "engine_details": {"workers": workers, "partitions": len(blocks), "source_format": source.format,
-                           "data_sha256": "SHA-256 of the partitions' SHA-256s (float64, C order), in order",
+                           "data_sha256": f"chunked: SHA-256 of the SHA-256s of {DIGEST_CHUNK_ROWS}-row chunks "
+                                          "(float64, C order), in order; not the whole-matrix digest of the "
+                                          "other engines",
                            "kmeans_init": f"k-means|| ({KMEANS_PARALLEL_ROUNDS}+ rounds, oversampling 2 k_max)"},
     }
     return Bundle(
@@ -672,6 +674,31 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
         distance_thresholds=calibration["distance_thresholds"], residual_thresholds=calibration["residual_thresholds"],
         residual_threshold=calibration["pooled_residual_threshold"], residual_limit_jm=residual_limit,
         reference=reference, report=report)
+
+
+def _chunked_digest(cluster: _Cluster, lengths: list[int], n: int, p: int, chunk_rows: int = DIGEST_CHUNK_ROWS
+                    ) -> str:
+    """``service.core.fit.data_chunks_sha256`` of the blocks' rows, computed where they lie: a chunk inside one
+    block is hashed on its worker; one that spans blocks gets their pieces (at most a chunk's rows) moved between
+    workers, never to this process."""
+    import dask
+
+    starts = np.concatenate([[0], np.cumsum(lengths)]).astype(int)
+    digest_of = dask.delayed(chunk_digest, pure=True)
+    slice_of = dask.delayed(_rows, pure=True)
+    tasks = []
+    for first in range(0, n, chunk_rows):
+        last = min(first + chunk_rows, n)
+        pieces = []
+        for i in range(int(np.searchsorted(starts, first, side="right")) - 1, len(lengths)):
+            if starts[i] >= last:
+                break
+            low, high = max(first, starts[i]) - starts[i], min(last, starts[i + 1]) - starts[i]
+            if high > low:
+                whole = low == 0 and high == lengths[i]
+                pieces.append(cluster.blocks[i] if whole else slice_of(cluster.blocks[i], int(low), int(high)))
+        tasks.append(digest_of(*pieces))
+    return combine_chunk_digests(n, p, cluster.compute(*tasks), chunk_rows)
 
 
 def _columns(block: np.ndarray, keep: list[int]) -> np.ndarray:

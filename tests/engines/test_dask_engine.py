@@ -22,7 +22,7 @@ from sklearn.preprocessing import StandardScaler
 from service.app import create_app
 from service.core.assign import assign, compile_bundle
 from service.core.bundle import FitConfig
-from service.core.fit import fit_bundle
+from service.core.fit import data_chunks_sha256, data_sha256, fit_bundle
 from service.engines.dask_engine import CancelHook, fit_on_dask
 from service.engines.sources import spill_records
 from service.errors import ClusterUnavailable, FitCancelled
@@ -76,6 +76,10 @@ def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(dask
     on_cluster = fit_on_dask(source, config(), client=dask_client)
 
     assert on_cluster.report["engine"] == "dask" and on_cluster.report["engine_details"]["workers"] == 2
+    # data_sha256 on the cluster is the chunked digest of the same rows (computed here by numpy and hashlib),
+    # marked so that it never equals the in-memory whole-matrix digest.
+    assert on_cluster.report["data_sha256"] == data_chunks_sha256(values)
+    assert in_memory.report["data_sha256"] == data_sha256(values) != on_cluster.report["data_sha256"]
     assert on_cluster.k == in_memory.k
     # Adjusted Rand index (scikit-learn) of the two versions' assignments of the training rows.
     assert adjusted_rand_score(labels_of(in_memory, values), labels_of(on_cluster, values)) >= 0.95
@@ -316,6 +320,9 @@ def test_a_csv_source_named_by_a_wildcard_agrees_with_the_in_memory_fit_of_the_s
     assert on_cluster["n_records"] == memory["n_records"] == len(values)
     assert on_cluster["features"] == memory["features"] == FEATURES
     assert on_cluster["k"] == memory["k"]
+    # Four files of 1,000 rows, re-sliced into blocks for two workers: the chunked digest is that of the rows.
+    assert on_cluster["data_sha256"] == data_chunks_sha256(values)
+    assert memory["data_sha256"] == data_sha256(values)
     # Adjusted Rand index (scikit-learn) of the two versions' assignments of the training rows.
     assert adjusted_rand_score(assign["memory"], assign["lake"]) >= 0.95
     # Profiles: pandas group-by means over the Dask version's own segments.
@@ -368,3 +375,22 @@ def test_a_csv_file_with_another_header_is_refused_naming_the_file_and_no_value(
         run_fit(None, plan.config, engine=plan.engine, source=plan.source, settings=settings)
     detail = str(refused.value.detail)
     assert 400 <= status_for(refused.value) < 500 and "'f2'" in detail and "not-a-number-7" not in detail
+
+
+def test_the_chunked_digest_on_the_cluster_is_that_of_the_rows_whatever_the_blocks(dask_client):
+    """Chunks of 700 rows over blocks of 1,000, 1, 650 and 1,349 rows (chunks inside a block, across two and
+    across three blocks) give numpy + hashlib's digest of the whole matrix (service.core.fit.data_chunks_sha256)."""
+    import dask
+
+    from service.engines.dask_engine import _chunked_digest, _Cluster
+    from service.engines.dask_ops import Where
+
+    values = np.random.default_rng(11).normal(size=(3000, 4))
+    values[17, 2] = np.nan
+    lengths = [1000, 1, 650, 1349]
+    starts = np.concatenate([[0], np.cumsum(lengths)])
+    blocks = dask_client.persist([dask.delayed(values[a:b].copy()) for a, b in zip(starts[:-1], starts[1:])])
+    cluster = _Cluster(dask_client, CancelHook(), blocks, [Where(i, int(s)) for i, s in enumerate(starts[:-1])])
+    assert _chunked_digest(cluster, lengths, 3000, 4, chunk_rows=700) == data_chunks_sha256(values, chunk_rows=700)
+    assert _chunked_digest(cluster, lengths, 3000, 4, chunk_rows=700) != data_chunks_sha256(values[::-1].copy(),
+                                                                                            chunk_rows=700)
