@@ -62,10 +62,9 @@ from service.core.fit import (
     combine_chunk_digests,
     fit_warnings_from_counts,
     jackson_mudholkar_limit,
-    kneedle_k,
-    library_versions,
 )
 from service.core.frame import MAX_ABS_VALUE
+from service.core.report import fit_report
 from service.engines import dask_ops as ops
 from service.engines.dask_ops import N_FOLDS, Steps, Where
 from service.engines.sources import DataSource
@@ -638,36 +637,16 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
         outlier_rate=float(calibration["flagged"].sum() / n), residual_sample=residual_sample,
         residual_median=calibration["residual_median"])
 
-    silhouette = next(row["silhouette"] for row in curve if row["k"] == chosen)
-    report: dict[str, Any] = {
-        "n_records": n,
-        "features": features,
-        "id_column": config.id_column,
-        "config": config.as_request(),
-        "components": None if pca is None else int(pca.n_components_),
-        "explained_variance_ratio": [] if pca is None else [float(v) for v in pca.explained_variance_ratio_],
-        "k": chosen,
-        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, [row["distortion"] for row in curve]), "curve": curve},
-        "distortion": inertia / n,
-        "inertia": inertia,
-        "segments": segments,
-        "quality": {"inertia": inertia, "distortion": inertia / n, "silhouette": silhouette,
-                    "centroid_agreement": 1.0},
-        "residual_threshold": calibration["pooled_residual_threshold"],
-        "residual_limit_jm": residual_limit,
-        "training_outlier_rate": reference.outlier_rate,
-        "calibration": calibration["report"],
-        "imputation_medians": dict(zip(features, (float(v) for v in medians))),
-        "data_sha256": data_digest,
-        "library_versions": library_versions(),
-        "warnings": fit_warnings_from_counts(config, sizes, sizes, k, n),
-        "engine": ENGINE,
-        "engine_details": {"workers": workers, "partitions": len(blocks), "source_format": source.format,
-                           "data_sha256": f"chunked: SHA-256 of the SHA-256s of {DIGEST_CHUNK_ROWS}-row chunks "
-                                          "(float64, C order), in order; not the whole-matrix digest of the "
-                                          "other engines",
-                           "kmeans_init": f"k-means|| ({KMEANS_PARALLEL_ROUNDS}+ rounds, oversampling 2 k_max)"},
-    }
+    report = fit_report(
+        config, n_records=n, pca=pca, imputer=imputer, curve=curve, chosen=chosen, method=method, inertia=inertia,
+        segments=segments, centroid_agreement=1.0, residual_threshold=calibration["pooled_residual_threshold"],
+        residual_limit=residual_limit, reference=reference, calibration=calibration["report"],
+        data_sha256=data_digest, warnings=fit_warnings_from_counts(config, sizes, sizes, k, n), engine=ENGINE,
+        engine_details={"workers": workers, "partitions": len(blocks), "source_format": source.format,
+                        "data_sha256": f"chunked: SHA-256 of the SHA-256s of {DIGEST_CHUNK_ROWS}-row chunks "
+                                       "(float64, C order), in order; not the whole-matrix digest of the "
+                                       "other engines",
+                        "kmeans_init": f"k-means|| ({KMEANS_PARALLEL_ROUNDS}+ rounds, oversampling 2 k_max)"})
     return Bundle(
         features=features, config=config, imputer=imputer, scaler=scaler, pca=pca, clusterer=clusterer,
         centroids=np.ascontiguousarray(centroids, dtype=np.float64),

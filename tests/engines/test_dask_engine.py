@@ -61,6 +61,13 @@ def in_memory(blobs):
     return fit_bundle(blobs[0], config())
 
 
+@pytest.fixture(scope="module")
+def on_cluster(dask_client, blobs, tmp_path_factory):
+    """The Dask fit of the same data and config (uploaded rows spilled to Parquet), fitted once for the module."""
+    return fit_on_dask(spill_records(blobs[0], FEATURES, tmp_path_factory.mktemp("spill")), config(),
+                       client=dask_client)
+
+
 def config(**overrides) -> FitConfig:
     base = dict(features=FEATURES, k_min=2, k_max=6, seed=0, silhouette_sample=2000, reference_sample=500)
     return FitConfig(**{**base, **overrides})
@@ -70,11 +77,8 @@ def labels_of(bundle, values):
     return assign(compile_bundle(bundle), values).segment
 
 
-def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(dask_client, blobs, in_memory, tmp_path):
+def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(blobs, in_memory, on_cluster):
     values, _ = blobs
-    source = spill_records(values, FEATURES, tmp_path)
-    on_cluster = fit_on_dask(source, config(), client=dask_client)
-
     assert on_cluster.report["engine"] == "dask" and on_cluster.report["engine_details"]["workers"] == 2
     # data_sha256 on the cluster is the chunked digest of the same rows (computed here by numpy and hashlib),
     # marked so that it never equals the in-memory whole-matrix digest.
@@ -101,6 +105,24 @@ def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(dask
     assert np.array_equal(on_cluster.reference.sample, in_memory.reference.sample)
     for ours, theirs in zip(on_cluster.reference.bin_edges, in_memory.reference.bin_edges):
         assert np.allclose(ours, theirs, rtol=0, atol=1e-12)
+
+
+def test_the_three_engines_write_reports_with_the_same_keys(blobs, in_memory, on_cluster):
+    """One report builder (service.core.report.fit_report): memory, out_of_core and dask reports of the same data
+    have the same keys, at the top and inside quality, selection, its curve and every segment."""
+    from service.engines import run_engine
+
+    streamed = run_engine("out_of_core", blobs[0], config(), max_agglomerative_rows=20_000)
+    reports = {"memory": in_memory.report, "out_of_core": streamed.report, "dask": on_cluster.report}
+    assert {name: report["engine"] for name, report in reports.items()} == {name: name for name in reports}
+
+    def shape(report):
+        return (set(report), set(report["quality"]), set(report["selection"]),
+                {frozenset(row) for row in report["selection"]["curve"]},
+                {frozenset(segment) for segment in report["segments"]},
+                {frozenset(segment["profile"][FEATURES[0]]) for segment in report["segments"]})
+
+    assert shape(reports["memory"]) == shape(reports["out_of_core"]) == shape(reports["dask"])
 
 
 def test_medians_and_robust_quartiles_are_exact_with_missing_values_and_ties(dask_client, tmp_path):
