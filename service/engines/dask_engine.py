@@ -16,7 +16,9 @@ blocks are recomputed from the source by Dask):
 - silhouette on a seeded sample of rows gathered to the server (``silhouette_sample`` rows);
 - held-out thresholds as in ``service.core.calibration`` (5 folds, split-conformal, leave-one-out baseline),
   with these differences, all stated in the report's ``calibration``: folds are drawn per row from a seeded
-  generator (not stratified by segment); each fold's scaler and PCA come from the folds' sufficient statistics
+  counter-based generator at the row's index (``dask_ops.row_bits``: the same however the rows are split), not
+  stratified by segment as in memory (that needs each row's rank among its segment's rows in one global seeded
+  permutation: a global sort, not a per-block step); each fold's scaler and PCA come from the folds' sufficient statistics
   (sums and cross products); the imputation medians (and robust scaling) are the full data's, not refitted
   per fold; order statistics are exact;
 - profiles (means, population standard deviations, medians of each segment's observed values), drift
@@ -890,8 +892,8 @@ def _calibrate(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centr
             "held_out_flag_rate": flag_rate,
             "held_out_flag_count": int(flagged.sum()),
             "held_out_rows": n,
-            "engine_notes": ("Dask engine: folds drawn per row from a seeded generator (not stratified by segment); "
-                             "each fold's scaler and PCA from the other folds' sums and cross products; imputation "
+            "engine_notes": ("Dask engine: folds drawn per row from a seeded generator at the row's index (not "
+                             "stratified by segment); each fold's scaler and PCA from the other folds' sums and cross products; imputation "
                              "medians" + (" and robust scaling" if robust_stats is not None else "") +
                              " from all rows; order statistics exact"),
         },

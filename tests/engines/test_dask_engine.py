@@ -77,6 +77,19 @@ def labels_of(bundle, values):
     return assign(compile_bundle(bundle), values).segment
 
 
+def lake_settings(cluster, tmp_path, lake) -> Settings:
+    """A server on the test cluster that may read the folder ``lake`` (SEGSCORE_SOURCE_PREFIXES)."""
+    return Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address,
+                    source_prefixes=(f"file://{lake}/",))
+
+
+def fit_source(client, name: str, source: str, **params) -> dict:
+    """POST a fit naming ``source``: answered 202 (a Dask fit is always a job); returns the finished job."""
+    started = client.post(f"/v1/segmentations/{name}/fit", json={"source": source, **params})
+    assert started.status_code == 202, started.text
+    return until_finished(client, started.headers["location"])
+
+
 def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(blobs, in_memory, on_cluster):
     values, _ = blobs
     assert on_cluster.report["engine"] == "dask" and on_cluster.report["engine_details"]["workers"] == 2
@@ -241,13 +254,8 @@ def test_a_fit_request_naming_a_source_under_an_allowed_prefix_is_read_by_the_wo
     lake.mkdir()
     pd.DataFrame(values, columns=FEATURES).assign(customer=[f"c{i}" for i in range(len(values))]).to_parquet(
         lake / "customers.parquet")
-    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address,
-                        source_prefixes=(f"file://{lake}/",))
-    with TestClient(create_app(settings)) as client:
-        response = client.post("/v1/segmentations/lake/fit",
-                               json={"source": f"file://{lake}/customers.parquet", "k": 4, "id_column": "customer"})
-        assert response.status_code == 202, response.text
-        job = until_finished(client, response.headers["location"])
+    with TestClient(create_app(lake_settings(cluster, tmp_path, lake))) as client:
+        job = fit_source(client, "lake", f"file://{lake}/customers.parquet", k=4, id_column="customer")
         assert job["state"] == "done", job
         report = client.get(f"/v1/jobs/{job['id']}/report").json()
         assert report["features"] == FEATURES and report["n_records"] == len(values)
@@ -315,13 +323,9 @@ def test_a_csv_source_named_by_a_wildcard_agrees_with_the_in_memory_fit_of_the_s
     values, _ = blobs
     lake = tmp_path / "lake"
     _csv_lake(values, lake)
-    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address,
-                        source_prefixes=(f"file://{lake}/",))
     params = {"k": {"min": 2, "max": 6}, "seed": 0, "id_column": "customer"}
-    with TestClient(create_app(settings)) as client:
-        started = client.post("/v1/segmentations/lake/fit", json={"source": f"file://{lake}/part-*.csv", **params})
-        assert started.status_code == 202, started.text
-        job = until_finished(client, started.headers["location"])
+    with TestClient(create_app(lake_settings(cluster, tmp_path, lake))) as client:
+        job = fit_source(client, "lake", f"file://{lake}/part-*.csv", **params)
         assert job["state"] == "done", job
         on_cluster = client.get(f"/v1/segmentations/lake/versions/{job['version']}").json()
         # The same rows (the files read back by pandas, in name order) sent as records to the in-memory engine.
@@ -363,13 +367,9 @@ def test_a_csv_file_with_another_header_is_refused_naming_the_file_and_no_value(
     odd = lake / "part-2.csv"
     odd.write_text("\n".join(odd.read_text().splitlines()[1:]) + "\n")
     secret = odd.read_text().splitlines()[0].split(",")[0]
-    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address,
-                        source_prefixes=(f"file://{lake}/",))
+    settings = lake_settings(cluster, tmp_path, lake)
     with TestClient(create_app(settings)) as client:
-        started = client.post("/v1/segmentations/lake/fit",
-                              json={"source": f"file://{lake}/part-*.csv", "k": 3, "id_column": "customer"})
-        assert started.status_code == 202, started.text
-        job = until_finished(client, started.headers["location"])
+        job = fit_source(client, "lake", f"file://{lake}/part-*.csv", k=3, id_column="customer")
         assert job["state"] == "failed" and job["version"] is None, job
         assert client.get("/v1/segmentations/lake").status_code == 404
     detail = str(job["error"])
@@ -416,3 +416,19 @@ def test_the_chunked_digest_on_the_cluster_is_that_of_the_rows_whatever_the_bloc
     assert _chunked_digest(cluster, lengths, 3000, 4, chunk_rows=700) == data_chunks_sha256(values, chunk_rows=700)
     assert _chunked_digest(cluster, lengths, 3000, 4, chunk_rows=700) != data_chunks_sha256(values[::-1].copy(),
                                                                                             chunk_rows=700)
+
+
+def test_fold_numbers_and_draws_depend_on_the_rows_not_on_the_blocks():
+    """Rows get the same fold (and k-means|| draw bits) whether they sit in one block or in four of 1, 6, 643 and
+    350 rows: the numbers come from numpy's Philox at each row's global index. Folds are near-balanced."""
+    from service.engines.dask_ops import N_FOLDS, Where, folds_of, row_bits
+
+    bounds = [(0, 1), (1, 7), (7, 650), (650, 1000)]
+    whole = folds_of(Where(0, 0), 1000, seed=3)
+    assert np.array_equal(np.concatenate([folds_of(Where(i, a), b - a, seed=3) for i, (a, b) in enumerate(bounds)]),
+                          whole)
+    assert np.array_equal(np.concatenate([row_bits(Where(i, a), b - a, 3, 16, 2) for i, (a, b) in enumerate(bounds)]),
+                          row_bits(Where(0, 0), 1000, 3, 16, 2))
+    assert not np.array_equal(folds_of(Where(0, 0), 1000, seed=4), whole)
+    # Binomial(1000, 1/5) per fold: mean 200, sd 12.6; 5 sd either side.
+    assert np.all(np.abs(np.bincount(whole, minlength=N_FOLDS) - 200) < 63)
