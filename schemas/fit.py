@@ -4,6 +4,8 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from schemas.common import DATA_SHA256
+
 Record = dict[str, Any]
 
 # The fit engines, in one place (service/engines maps each to its function): how the bundle is fitted, never
@@ -132,7 +134,7 @@ class FitReport(BaseModel):
     training_outlier_rate: float
     calibration: dict[str, Any] | None = Field(None, description="how the outlier thresholds were calibrated")
     imputation_medians: dict[str, float]
-    data_sha256: str
+    data_sha256: str = Field(description=DATA_SHA256)
     bundle_sha256: str
     library_versions: dict[str, str]
     engine: str | None = Field(None, description="the fit engine that ran (memory, out_of_core, dask); None before "

@@ -2,7 +2,9 @@ from __future__ import annotations
 
 from typing import Any
 
-from pydantic import BaseModel
+from pydantic import BaseModel, Field
+
+from schemas.common import DATA_SHA256
 
 
 class SegmentationSummary(BaseModel):
@@ -23,9 +25,9 @@ class VersionSummary(BaseModel):
     live: bool
     k: int
     n_records: int
-    data_sha256: str
+    data_sha256: str = Field(description=DATA_SHA256)
     created_by: str | None = None   # the actor of the fit (a key name, 'local' or 'cli'); None before events
-    engine: str | None = None       # the fit engine that ran (memory, out_of_core); None before engines
+    engine: str | None = None       # the fit engine that ran (memory, out_of_core, dask); None before engines
 
 
 class Event(BaseModel):

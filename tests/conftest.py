@@ -38,6 +38,25 @@ def records_from(data, feature_names=None, id_prefix=None) -> list[dict]:
     return rows
 
 
+JOB_WAIT_SECONDS = 180      # an upper bound for one job on a busy machine, not a measured time
+
+
+def until_finished(client, job: str, seconds: float = JOB_WAIT_SECONDS) -> dict:
+    """Poll a job (its id or its URL, through an HTTP test client) until it leaves queued and running; the
+    finished job, or AssertionError naming the job and its last state after ``seconds``."""
+    import time
+
+    url = job if job.startswith("/") else f"/v1/jobs/{job}"
+    deadline = time.monotonic() + seconds
+    while True:
+        state = client.get(url).json()
+        if state["state"] not in ("queued", "running"):
+            return state
+        if time.monotonic() > deadline:
+            raise AssertionError(f"gave up waiting for job {url} to finish (last state {state['state']})")
+        time.sleep(0.05)
+
+
 def walk_numbers(value):
     """Every float inside a decoded JSON document (to check that none is NaN or infinite)."""
     if isinstance(value, dict):

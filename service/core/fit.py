@@ -7,16 +7,10 @@ after it trust their arguments.
 from __future__ import annotations
 
 import hashlib
-import platform
-import warnings
 from typing import Any, Callable
 
-import joblib
 import numpy as np
 import pandas as pd
-import scipy
-import sklearn
-from kneed import KneeLocator
 from scipy.stats import norm
 from sklearn.cluster import AgglomerativeClustering, KMeans
 from sklearn.decomposition import PCA
@@ -27,6 +21,7 @@ from sklearn.preprocessing import MinMaxScaler, RobustScaler, StandardScaler
 from service.core.bundle import Bundle, FitConfig, ReferenceProfile
 from service.core.calibration import Calibration, calibrate
 from service.core.frame import MAX_ABS_VALUE
+from service.core.report import fit_report, kneedle_k  # noqa: F401 - kneedle_k is imported from here too
 from service.errors import InvalidInput, RecordProblem
 
 SCALERS = {"standard": StandardScaler, "robust": RobustScaler, "minmax": MinMaxScaler, "none": None}
@@ -189,17 +184,6 @@ def elbow_k(ks: list[int], distortions: list[float]) -> int:
     return int(k[np.argmin(np.hypot(k_unit, d_unit))])
 
 
-def kneedle_k(ks: list[int], distortions: list[float]) -> int | None:
-    """Kneedle knee of a decreasing convex curve (Satopaa et al., 2011); None when it finds none."""
-    if len(ks) < 3 or np.ptp(np.asarray(distortions, dtype=float)) == 0:
-        return None
-    # The knee is reported for comparison only: the library's warnings (no knee found) must not fail a fit.
-    with warnings.catch_warnings(), np.errstate(all="ignore"):
-        warnings.simplefilter("ignore")
-        knee = KneeLocator(ks, distortions, curve="convex", direction="decreasing").knee
-    return None if knee is None else int(knee)
-
-
 def _cluster(space: np.ndarray, k: int, config: FitConfig) -> tuple[Any, np.ndarray, np.ndarray]:
     """Fit one clusterer; return it, its labels and the centroids (member means for agglomerative)."""
     if config.method == "kmeans":
@@ -287,15 +271,36 @@ def data_sha256(values: np.ndarray) -> str:
     return digest.hexdigest()
 
 
-def library_versions() -> dict[str, str]:
-    return {
-        "python": platform.python_version(),
-        "numpy": np.__version__,
-        "scipy": scipy.__version__,
-        "scikit-learn": sklearn.__version__,
-        "pandas": pd.__version__,
-        "joblib": joblib.__version__,
-    }
+# ``data_sha256`` of a version fitted on a cluster, whose rows are never in one place: SHA-256 cannot be
+# continued across machines (a hash's state cannot be sent), so the matrix is hashed in chunks of this many
+# consecutive rows, wherever they lie, and the chunks' digests are hashed in order. The value starts with
+# CHUNKED_DIGEST_PREFIX so that it is never taken for (or compared with) a whole-matrix ``data_sha256``.
+DIGEST_CHUNK_ROWS = 65_536
+CHUNKED_DIGEST_PREFIX = "chunks:"
+
+
+def chunk_digest(*pieces: np.ndarray) -> bytes:
+    """SHA-256 of consecutive row blocks (one chunk of ``data_chunks_sha256``, maybe split over blocks)."""
+    digest = hashlib.sha256()
+    for piece in pieces:
+        digest.update(np.ascontiguousarray(piece, dtype=np.float64).tobytes())
+    return digest.digest()
+
+
+def combine_chunk_digests(n_rows: int, n_columns: int, digests: list[bytes], chunk_rows: int = DIGEST_CHUNK_ROWS
+                          ) -> str:
+    digest = hashlib.sha256(f"{n_rows}x{n_columns}:{chunk_rows}-row chunks:".encode())
+    for part in digests:
+        digest.update(part)
+    return CHUNKED_DIGEST_PREFIX + digest.hexdigest()
+
+
+def data_chunks_sha256(values: np.ndarray, chunk_rows: int = DIGEST_CHUNK_ROWS) -> str:
+    """The chunked digest of a matrix in memory: "chunks:" + SHA-256 over "<rows>x<cols>:65536-row chunks:" and
+    the SHA-256 of each run of 65,536 consecutive rows (the last one shorter), float64, C order, in order."""
+    return combine_chunk_digests(values.shape[0], values.shape[1],
+                                 [chunk_digest(values[start:start + chunk_rows])
+                                  for start in range(0, values.shape[0], chunk_rows)], chunk_rows)
 
 
 # Where each step of a fit starts on the 0..1 progress scale. Clustering (one fit per candidate k) is most of the
@@ -396,39 +401,14 @@ def fit_bundle(values: np.ndarray, config: FitConfig, *, max_agglomerative_rows:
     reference = _reference_profile(values, nearest, chosen, calibration, sample_rows)
 
     fit_warnings = _fit_warnings(config, labels, nearest, chosen, n_records)
-    silhouette = next(row["silhouette"] for row in curve if row["k"] == chosen)
     inertia = float(_own_sq_distances(space, centroids, labels).sum())
-    report: dict[str, Any] = {
-        "n_records": n_records,
-        "features": list(config.features),
-        "id_column": config.id_column,
-        "config": config.as_request(),
-        "components": None if pca is None else int(pca.n_components_),
-        "explained_variance_ratio": [] if pca is None else [float(v) for v in pca.explained_variance_ratio_],
-        "k": chosen,
-        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, [row["distortion"] for row in curve]),
-                      "curve": curve},
-        "distortion": inertia / n_records,
-        "inertia": inertia,
-        "segments": _describe_segments(values, labels, nearest, raw_centroids, calibration, chosen, config),
-        "quality": {
-            "inertia": inertia,
-            "distortion": inertia / n_records,
-            "silhouette": silhouette,
-            "centroid_agreement": float(np.mean(nearest == labels)),
-        },
-        "residual_threshold": residual_threshold,
-        "residual_limit_jm": residual_limit,
-        "training_outlier_rate": reference.outlier_rate,
-        "calibration": calibration.as_report(q),
-        "imputation_medians": dict(zip(config.features, (float(v) for v in imputer.statistics_))),
-        "data_sha256": data_sha256(values),
-        "library_versions": library_versions(),
-        "warnings": fit_warnings,
-        # Where the fit ran (service.engines.dask_engine writes "dask" and its cluster's details).
-        "engine": "memory",
-        "engine_details": None,
-    }
+    # Where the fit ran: "memory" (service.engines.dask_engine writes "dask" and its cluster's details).
+    report = fit_report(
+        config, n_records=n_records, pca=pca, imputer=imputer, curve=curve, chosen=chosen, method=method,
+        inertia=inertia, segments=_describe_segments(values, labels, nearest, raw_centroids, calibration, chosen, config),
+        centroid_agreement=float(np.mean(nearest == labels)), residual_threshold=residual_threshold,
+        residual_limit=residual_limit, reference=reference, calibration=calibration.as_report(q),
+        data_sha256=data_sha256(values), warnings=fit_warnings, engine="memory")
     return Bundle(
         features=list(config.features),
         config=config,

@@ -16,7 +16,9 @@ blocks are recomputed from the source by Dask):
 - silhouette on a seeded sample of rows gathered to the server (``silhouette_sample`` rows);
 - held-out thresholds as in ``service.core.calibration`` (5 folds, split-conformal, leave-one-out baseline),
   with these differences, all stated in the report's ``calibration``: folds are drawn per row from a seeded
-  generator (not stratified by segment); each fold's scaler and PCA come from the folds' sufficient statistics
+  counter-based generator at the row's index (``dask_ops.row_bits``: the same however the rows are split), not
+  stratified by segment as in memory (that needs each row's rank among its segment's rows in one global seeded
+  permutation: a global sort, not a per-block step); each fold's scaler and PCA come from the folds' sufficient statistics
   (sums and cross products); the imputation medians (and robust scaling) are the full data's, not refitted
   per fold; order statistics are exact;
 - profiles (means, population standard deviations, medians of each segment's observed values), drift
@@ -30,7 +32,6 @@ the returned bundle.
 from __future__ import annotations
 
 import dataclasses
-import hashlib
 import logging
 import math
 import threading
@@ -53,17 +54,19 @@ from service.core.bundle import Bundle, FitConfig, ReferenceProfile
 from service.core.calibration import MIN_CROSS_FIT_ROWS, MIN_MEDIAN_ROWS, min_own_rows
 from service.core.fit import (
     DECILES,
+    DIGEST_CHUNK_ROWS,
     MAX_CATEGORIES,
     MIN_SPREAD,
     NEAR_CONSTANT_RTOL,
     SCALERS,
     choose_k,
+    chunk_digest,
+    combine_chunk_digests,
     fit_warnings_from_counts,
     jackson_mudholkar_limit,
-    kneedle_k,
-    library_versions,
 )
 from service.core.frame import MAX_ABS_VALUE
+from service.core.report import fit_report
 from service.engines import dask_ops as ops
 from service.engines.dask_ops import N_FOLDS, Steps, Where
 from service.engines.sources import DataSource
@@ -78,6 +81,7 @@ MAX_ITER = 300                      # scikit-learn's KMeans defaults
 TOL = 1e-4
 MAX_BLOCK_ROWS = 200_000            # rows per block kept on a worker (a larger partition is sliced)
 MIN_BLOCK_ROWS = 10_000             # ... and no smaller than this when slicing to spread the rows
+CSV_BLOCK_SIZE = "64MB"             # bytes of a CSV file per partition (a larger file is split)
 SILHOUETTE_WORKING_MIB = 64          # scikit-learn's chunk size for the silhouette's pairwise distances
 WAIT_SECONDS = 0.25                 # how often a waiting fit looks at its cancel hook and the scheduler
 SCHEDULER_GRACE_SECONDS = 10.0      # a scheduler gone this long fails the fit
@@ -208,12 +212,48 @@ def _numeric(dtype: Any) -> bool:
     return pd.api.types.is_numeric_dtype(dtype) and not pd.api.types.is_bool_dtype(dtype)
 
 
+class NotNumeric(ValueError):
+    """A feature column of a partition holds a value that is not a number (raised on a worker; the message names
+    the column, never the value)."""
+
+
 def _to_matrix(part: Any, features: list[str]) -> np.ndarray:
     import pandas as pd
 
-    columns = [pd.to_numeric(part[name], errors="raise") for name in features]
+    columns = []
+    for name in features:
+        try:
+            columns.append(pd.to_numeric(part[name], errors="raise"))
+        except (ValueError, TypeError):
+            raise NotNumeric(f"column {name!r} holds a value that is not a number") from None
     return np.ascontiguousarray(np.column_stack([c.to_numpy(dtype=np.float64, na_value=np.nan) for c in columns])
                                 if columns else np.empty((len(part), 0)))
+
+
+def _csv_header(file: Any) -> tuple[str, ...]:
+    import pandas as pd
+
+    with file as handle:
+        return tuple(pd.read_csv(handle, nrows=0).columns)
+
+
+def _check_csv_headers(cluster: "_Cluster", source: DataSource) -> None:
+    """Every CSV file of a source must start with the first file's header row. Dask reads each file under its own
+    header, so a file whose header differs would give its rows under other names, or a file without a header
+    would lose its first row to the names. The workers read the header lines; the refusal names the files, not
+    their headers (a data row taken for a header holds record values)."""
+    import dask
+    import fsspec
+
+    files = fsspec.open_files(list(source.paths), mode="rb", compression="infer")
+    if not files:
+        raise InvalidInput("the source names no file (nothing matches it)", field="source")
+    headers = cluster.compute(*[dask.delayed(_csv_header, pure=True)(file) for file in files])
+    odd = [file.path for file, header in zip(files, headers) if header != headers[0]]
+    if odd:
+        raise InvalidInput(f"every CSV file of a source must have the header row of the first file "
+                           f"({files[0].path}, {len(headers[0])} columns); {len(odd)} file(s) differ: "
+                           f"{', '.join(odd[:5])}" + (" ..." if len(odd) > 5 else ""), field="source")
 
 
 def _open(source: DataSource, config: FitConfig) -> tuple[list[Any], list[str]]:
@@ -224,7 +264,7 @@ def _open(source: DataSource, config: FitConfig) -> tuple[list[Any], list[str]]:
     if source.format == "parquet":
         frame = dd.read_parquet(list(source.paths))
     else:
-        frame = dd.read_csv(list(source.paths), assume_missing=True, blocksize="64MB")
+        frame = dd.read_csv(list(source.paths), assume_missing=True, blocksize=CSV_BLOCK_SIZE)
     columns = list(frame.columns)
     if config.id_column is not None and config.id_column not in columns:
         raise InvalidInput(f"id_column {config.id_column!r} is not a column of the source", field="id_column")
@@ -243,6 +283,12 @@ def _open(source: DataSource, config: FitConfig) -> tuple[list[Any], list[str]]:
         features = [c for c in columns if c != config.id_column and _numeric(frame.dtypes[c])]
         if not features:
             raise InvalidInput("the source has no numeric columns; name the features explicitly", field="features")
+    if source.format == "csv":
+        # The features are read as text and converted by ``_to_matrix``: Dask's own conversion of a column whose
+        # type it guessed from the first file's first lines fails with a message (and a worker log) quoting the
+        # cells; ours names the column only. Both parse to the same correctly rounded float64.
+        frame = dd.read_csv(list(source.paths), blocksize=CSV_BLOCK_SIZE, usecols=features,
+                            dtype={name: "str" for name in features})
     call = dask.delayed(_to_matrix, pure=True)
     return [call(part, features) for part in frame[features].to_delayed()], features
 
@@ -355,6 +401,8 @@ def fit_on_dask(source: DataSource, config: FitConfig, *, client: Any, progress:
     hook = cancel or CancelHook()
     report_progress = progress or (lambda step, fraction: None)
     report_progress("reading", STAGES["reading"])
+    if source.format == "csv":
+        _check_csv_headers(_Cluster(client, hook, [], []), source)
     lazy, features = _open(source, config)
     held: list[Any] = []            # the futures of the data persisted on the workers
     try:
@@ -395,10 +443,15 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
     wheres_stub = [Where(i, 0) for i in range(len(blocks))]
     try:
         lengths = _Cluster(client, hook, blocks, wheres_stub).compute(*[dask.delayed(len)(b) for b in blocks])
-    except (ValueError, TypeError, FileNotFoundError) as exc:
-        # Raised on a worker while reading: a cell that is not a number, a file gone since the request.
-        raise InvalidInput(f"the workers could not read the features as numbers ({type(exc).__name__}: "
-                           f"{str(exc)[:200]})", field="source") from exc
+    except (NotNumeric, FileNotFoundError) as exc:
+        # Raised on a worker while reading: our own message (a column, never a value), a file gone since the
+        # request (its path).
+        raise InvalidInput(f"the workers could not read the source: {str(exc)[:300]}", field="source") from exc
+    except (ValueError, TypeError, KeyError) as exc:
+        # A parser's or Dask's own message may quote cells (a dtype mismatch lists the values it could not
+        # convert): only the kind of error is passed on.
+        raise InvalidInput(f"the workers could not read the source ({type(exc).__name__}): every feature column "
+                           "must hold numbers and every line the header's number of fields", field="source") from exc
     # Blocks of at most MAX_BLOCK_ROWS rows (a large file is sliced), so every worker gets a share; empty
     # partitions are left out.
     workers = len(client.scheduler_info().get("workers", {}))
@@ -450,9 +503,7 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
     features = list(config.features)
     p = len(features)
     _config_checks(config, n, p)
-    digest = hashlib.sha256(f"{n}x{p}:blocks:".encode())
-    for part in parts:
-        digest.update(part["sha256"])
+    data_digest = _chunked_digest(cluster, lengths, n, p)
     probes = [np.unique(np.concatenate([part["probe"][j] for part in parts])) for j in range(p)]
 
     # ---- medians, scaling
@@ -588,40 +639,47 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
         outlier_rate=float(calibration["flagged"].sum() / n), residual_sample=residual_sample,
         residual_median=calibration["residual_median"])
 
-    silhouette = next(row["silhouette"] for row in curve if row["k"] == chosen)
-    report: dict[str, Any] = {
-        "n_records": n,
-        "features": features,
-        "id_column": config.id_column,
-        "config": config.as_request(),
-        "components": None if pca is None else int(pca.n_components_),
-        "explained_variance_ratio": [] if pca is None else [float(v) for v in pca.explained_variance_ratio_],
-        "k": chosen,
-        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, [row["distortion"] for row in curve]), "curve": curve},
-        "distortion": inertia / n,
-        "inertia": inertia,
-        "segments": segments,
-        "quality": {"inertia": inertia, "distortion": inertia / n, "silhouette": silhouette,
-                    "centroid_agreement": 1.0},
-        "residual_threshold": calibration["pooled_residual_threshold"],
-        "residual_limit_jm": residual_limit,
-        "training_outlier_rate": reference.outlier_rate,
-        "calibration": calibration["report"],
-        "imputation_medians": dict(zip(features, (float(v) for v in medians))),
-        "data_sha256": digest.hexdigest(),
-        "library_versions": library_versions(),
-        "warnings": fit_warnings_from_counts(config, sizes, sizes, k, n),
-        "engine": ENGINE,
-        "engine_details": {"workers": workers, "partitions": len(blocks), "source_format": source.format,
-                           "data_sha256": "SHA-256 of the partitions' SHA-256s (float64, C order), in order",
-                           "kmeans_init": f"k-means|| ({KMEANS_PARALLEL_ROUNDS}+ rounds, oversampling 2 k_max)"},
-    }
+    report = fit_report(
+        config, n_records=n, pca=pca, imputer=imputer, curve=curve, chosen=chosen, method=method, inertia=inertia,
+        segments=segments, centroid_agreement=1.0, residual_threshold=calibration["pooled_residual_threshold"],
+        residual_limit=residual_limit, reference=reference, calibration=calibration["report"],
+        data_sha256=data_digest, warnings=fit_warnings_from_counts(config, sizes, sizes, k, n), engine=ENGINE,
+        engine_details={"workers": workers, "partitions": len(blocks), "source_format": source.format,
+                        "data_sha256": f"chunked: SHA-256 of the SHA-256s of {DIGEST_CHUNK_ROWS}-row chunks "
+                                       "(float64, C order), in order; not the whole-matrix digest of the "
+                                       "other engines",
+                        "kmeans_init": f"k-means|| ({KMEANS_PARALLEL_ROUNDS}+ rounds, oversampling 2 k_max)"})
     return Bundle(
         features=features, config=config, imputer=imputer, scaler=scaler, pca=pca, clusterer=clusterer,
         centroids=np.ascontiguousarray(centroids, dtype=np.float64),
         distance_thresholds=calibration["distance_thresholds"], residual_thresholds=calibration["residual_thresholds"],
         residual_threshold=calibration["pooled_residual_threshold"], residual_limit_jm=residual_limit,
         reference=reference, report=report)
+
+
+def _chunked_digest(cluster: _Cluster, lengths: list[int], n: int, p: int, chunk_rows: int = DIGEST_CHUNK_ROWS
+                    ) -> str:
+    """``service.core.fit.data_chunks_sha256`` of the blocks' rows, computed where they lie: a chunk inside one
+    block is hashed on its worker; one that spans blocks gets their pieces (at most a chunk's rows) moved between
+    workers, never to this process."""
+    import dask
+
+    starts = np.concatenate([[0], np.cumsum(lengths)]).astype(int)
+    digest_of = dask.delayed(chunk_digest, pure=True)
+    slice_of = dask.delayed(_rows, pure=True)
+    tasks = []
+    for first in range(0, n, chunk_rows):
+        last = min(first + chunk_rows, n)
+        pieces = []
+        for i in range(int(np.searchsorted(starts, first, side="right")) - 1, len(lengths)):
+            if starts[i] >= last:
+                break
+            low, high = max(first, starts[i]) - starts[i], min(last, starts[i + 1]) - starts[i]
+            if high > low:
+                whole = low == 0 and high == lengths[i]
+                pieces.append(cluster.blocks[i] if whole else slice_of(cluster.blocks[i], int(low), int(high)))
+        tasks.append(digest_of(*pieces))
+    return combine_chunk_digests(n, p, cluster.compute(*tasks), chunk_rows)
 
 
 def _columns(block: np.ndarray, keep: list[int]) -> np.ndarray:
@@ -834,8 +892,8 @@ def _calibrate(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centr
             "held_out_flag_rate": flag_rate,
             "held_out_flag_count": int(flagged.sum()),
             "held_out_rows": n,
-            "engine_notes": ("Dask engine: folds drawn per row from a seeded generator (not stratified by segment); "
-                             "each fold's scaler and PCA from the other folds' sums and cross products; imputation "
+            "engine_notes": ("Dask engine: folds drawn per row from a seeded generator at the row's index (not "
+                             "stratified by segment); each fold's scaler and PCA from the other folds' sums and cross products; imputation "
                              "medians" + (" and robust scaling" if robust_stats is not None else "") +
                              " from all rows; order statistics exact"),
         },

@@ -12,7 +12,6 @@ medians and quantiles are exact, not approximations.
 
 from __future__ import annotations
 
-import hashlib
 from dataclasses import dataclass
 from typing import Any, Callable
 
@@ -76,14 +75,23 @@ def sq_distances(space: np.ndarray, centroids: np.ndarray) -> np.ndarray:
     return out
 
 
+def row_bits(where: Where, n_rows: int, seed: int, stream: int, round_: int = 0) -> np.ndarray:
+    """64 random bits for each row of a block, drawn at the rows' global indices from a counter-based generator
+    (Philox, keyed by seed, stream and round): every pass agrees, and the same rows get the same bits however
+    files, partitions and workers split them. Philox yields 4 words per counter step, hence the // 4."""
+    generator = np.random.Philox(key=np.array([seed, (stream << 32) | round_], dtype=np.uint64))
+    generator.advance(where.offset // 4)
+    return generator.random_raw(n_rows + where.offset % 4)[where.offset % 4:]
+
+
 def folds_of(where: Where, n_rows: int, seed: int) -> np.ndarray:
-    """Fold number of each row of a block: seeded by (seed, block index), so every pass agrees."""
-    return np.random.default_rng([seed, 15, where.index]).integers(0, N_FOLDS, n_rows)
+    """Fold number of each row of a block (not stratified by segment; 2^64 mod 5 = 1: no visible bias)."""
+    return (row_bits(where, n_rows, seed, 15) % N_FOLDS).astype(np.intp)
 
 
 # --------------------------------------------------------------------------- column statistics
 def column_moments(block: np.ndarray, where: Where) -> dict[str, Any]:
-    """Observed count, sum, min, max, infinities, a distinct-value probe and the bytes' SHA-256 of a block."""
+    """Observed count, sum, min, max, infinities and a distinct-value probe of a block's columns."""
     finite = np.isfinite(block)
     observed = ~np.isnan(block)
     safe = np.where(finite, block, 0.0)
@@ -100,7 +108,6 @@ def column_moments(block: np.ndarray, where: Where) -> dict[str, Any]:
         "max": np.where(finite, block, -np.inf).max(axis=0, initial=-np.inf),
         "abs_max": np.abs(safe).max(axis=0, initial=0.0),
         "probe": probe,
-        "sha256": hashlib.sha256(np.ascontiguousarray(block, dtype=np.float64).tobytes()).digest(),
     }
 
 
@@ -145,8 +152,8 @@ def candidate_draw(block: np.ndarray, where: Where, steps: Steps, candidates: np
     """Rows drawn independently with probability min(1, l d^2 / phi) (Bahmani et al. 2012, k-means||)."""
     space, _ = steps.space(block)
     d2 = sq_distances(space, candidates).min(axis=1)
-    rng = np.random.default_rng([seed, 16, round_, where.index])
-    keep = rng.random(space.shape[0]) < np.minimum(1.0, oversampling * d2 / phi)
+    uniform = (row_bits(where, space.shape[0], seed, 16, round_) >> np.uint64(11)) * 2.0 ** -53   # [0, 1), 53 bits
+    keep = uniform < np.minimum(1.0, oversampling * d2 / phi)
     return space[keep]
 
 

@@ -56,9 +56,8 @@ from service.core.fit import (
     choose_k,
     feature_unusable_because,
     jackson_mudholkar_limit,
-    kneedle_k,
-    library_versions,
 )
+from service.core.report import fit_report
 from service.engines import order_stats
 from service.engines.source import MatrixFile
 from service.errors import InvalidInput
@@ -246,33 +245,12 @@ def fit_out_of_core(source: MatrixFile, config: FitConfig, *, max_agglomerative_
     segments = _describe_segments(source, moments, nearest, raw_centroids, calibration, chosen, features)
     steps("profiling", 1.0)
 
-    silhouette = next(row["silhouette"] for row in curve if row["k"] == chosen)
-    inertia = float(np.sum(distances ** 2))
-    report: dict[str, Any] = {
-        "n_records": n,
-        "features": features,
-        "id_column": config.id_column,
-        "config": config.as_request(),
-        "components": None if pca is None else d,
-        "explained_variance_ratio": [] if pca is None else [float(v) for v in pca.explained_variance_ratio_],
-        "k": chosen,
-        "selection": {"method": method, "chosen": chosen, "kneedle_k": kneedle_k(ks, [row["distortion"] for row in curve]), "curve": curve},
-        "distortion": inertia / n,
-        "inertia": inertia,
-        "segments": segments,
-        "quality": {"inertia": inertia, "distortion": inertia / n, "silhouette": silhouette,
-                    "centroid_agreement": 1.0},
-        "residual_threshold": calibration.pooled_residual_threshold,
-        "residual_limit_jm": residual_limit,
-        "training_outlier_rate": reference.outlier_rate,
-        "calibration": calibration.as_report(q),
-        "imputation_medians": dict(zip(features, (float(v) for v in imputer.statistics_))),
-        "data_sha256": digest.hexdigest(),
-        "library_versions": library_versions(),
-        "warnings": _fit_warnings(config, labels, nearest, chosen, n),
-        "engine": "out_of_core",
-        "engine_details": None,
-    }
+    report = fit_report(
+        config, n_records=n, pca=pca, imputer=imputer, curve=curve, chosen=chosen, method=method,
+        inertia=float(np.sum(distances ** 2)), segments=segments, centroid_agreement=1.0,
+        residual_threshold=calibration.pooled_residual_threshold, residual_limit=residual_limit, reference=reference,
+        calibration=calibration.as_report(q), data_sha256=digest.hexdigest(),
+        warnings=_fit_warnings(config, labels, nearest, chosen, n), engine="out_of_core")
     return Bundle(features=features, config=config, imputer=imputer, scaler=scaler, pca=pca, clusterer=clusterer,
                   centroids=np.ascontiguousarray(centroids, dtype=np.float64),
                   distance_thresholds=calibration.distance_thresholds,

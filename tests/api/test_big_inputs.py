@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import gzip
 import io
-import time
 
 import pandas as pd
 import pyarrow as pa
@@ -22,7 +21,7 @@ from sklearn.metrics import adjusted_rand_score
 import service.inputs.streamed as streamed
 from service.app import create_app
 from service.settings import Settings
-from tests.conftest import records_from
+from tests.conftest import records_from, until_finished
 
 NAME = "big"
 PARQUET = "application/vnd.apache.parquet"
@@ -207,9 +206,7 @@ def test_a_background_out_of_core_fit_of_a_streamed_upload_gives_the_synchronous
         started = _post(client, body, "text/csv", query + "&background=true", "gzip", name="job")
         assert started.status_code == 202, started.text
         job_url = started.headers["location"]
-        deadline = time.monotonic() + 120
-        while (job := client.get(job_url).json())["state"] in ("queued", "running") and time.monotonic() < deadline:
-            time.sleep(0.1)
+        job = until_finished(client, job_url)
         assert job["state"] == "done", job
         report = client.get(f"/v1/segmentations/job/versions/{job['version']}").json()
         assert report["engine"] == "out_of_core"

@@ -22,7 +22,7 @@ from service.app import create_app
 from service.fitting import running_fit_workers
 from service.jobs import runner as job_runner
 from service.store.filesystem import utc_now
-from tests.conftest import records_from
+from tests.conftest import records_from, until_finished
 
 NAME = "shop"
 JOB_FIELDS = {"id", "segmentation", "state", "step", "progress", "version", "error", "created_at", "updated_at"}
@@ -48,13 +48,6 @@ def start(client, iris, name=NAME, **params):
     answer = client.post(f"/v1/segmentations/{name}/fit?background=true", json=body(iris, **params))
     assert answer.status_code == 202, answer.text
     return answer
-
-
-def finished(client, job_id):
-    def done():
-        job = client.get(f"/v1/jobs/{job_id}").json()
-        return job if job["state"] in ("done", "failed", "cancelled") else None
-    return wait_for(done, f"job {job_id} to finish")
 
 
 @pytest.fixture
@@ -122,7 +115,7 @@ def test_a_background_fit_answers_202_with_the_job_and_its_location(client, iris
     assert (job["segmentation"], job["state"], job["step"], job["progress"]) == (NAME, "queued", "reading", 0.0)
     assert job["version"] is None and job["error"] is None
     assert client.get(answer.headers["location"]).json()["id"] == job["id"]
-    done = finished(client, job["id"])
+    done = until_finished(client, job["id"])
     assert (done["state"], done["progress"], done["version"], done["error"]) == ("done", 1.0, 1, None)
     assert client.get(f"/v1/segmentations/{NAME}").json()["live_version"] == 1
     assert client.get(f"/v1/jobs/{job['id']}/report").json() == client.get(
@@ -143,7 +136,7 @@ def test_a_job_that_is_not_done_has_no_report(client, iris):
 def test_a_background_fit_stores_the_same_version_content_as_a_synchronous_one(client, iris):
     synchronous = client.post("/v1/segmentations/sync/fit", json=body(iris))
     assert synchronous.status_code == 201, synchronous.text
-    job = finished(client, start(client, iris, name="background").json()["id"])
+    job = until_finished(client, start(client, iris, name="background").json()["id"])
     background = client.get(f"/v1/segmentations/background/versions/{job['version']}").json()
     identity = {"name", "version", "created_at"}
     assert background["data_sha256"] == synchronous.json()["data_sha256"]
@@ -159,7 +152,7 @@ def test_a_csv_background_fit_takes_its_parameters_from_the_query(client, iris):
     answer = client.post(f"/v1/segmentations/{NAME}/fit?background=true&k=3&components=none", content=csv,
                          headers={"Content-Type": "text/csv"})
     assert answer.status_code == 202, answer.text
-    job = finished(client, answer.json()["id"])
+    job = until_finished(client, answer.json()["id"])
     report = client.get(f"/v1/segmentations/{NAME}/versions/{job['version']}").json()
     assert (report["k"], report["components"]) == (3, None)
 
@@ -175,7 +168,7 @@ def test_steps_are_named_and_progress_never_goes_back(client, iris):
         return state
 
     store.job_progress = recording
-    job = finished(client, start(client, iris, k={"min": 2, "max": 5}).json()["id"])
+    job = until_finished(client, start(client, iris, k={"min": 2, "max": 5}).json()["id"])
     steps = [row["step"] for row in seen]
     assert all(STEP.fullmatch(step) for step in steps), steps
     assert steps[0] == "reading" and steps[-1] == "saving"
@@ -187,9 +180,9 @@ def test_steps_are_named_and_progress_never_goes_back(client, iris):
 
 
 def test_jobs_are_listed_newest_first_by_segmentation_and_limited(client, iris):
-    first = finished(client, start(client, iris, name="a").json()["id"])
-    second = finished(client, start(client, iris, name="b").json()["id"])
-    third = finished(client, start(client, iris, name="a").json()["id"])
+    first = until_finished(client, start(client, iris, name="a").json()["id"])
+    second = until_finished(client, start(client, iris, name="b").json()["id"])
+    third = until_finished(client, start(client, iris, name="a").json()["id"])
     assert [j["id"] for j in client.get("/v1/jobs").json()["jobs"]] == [third["id"], second["id"], first["id"]]
     assert [j["id"] for j in client.get("/v1/jobs?segmentation=a").json()["jobs"]] == [third["id"], first["id"]]
     assert [j["id"] for j in client.get("/v1/jobs?limit=1").json()["jobs"]] == [third["id"]]
@@ -246,7 +239,7 @@ def test_a_fit_that_fails_in_its_worker_fails_the_job_with_the_synchronous_detai
     with app_client(store_settings, fit_time_limit_seconds=0.001) as client:
         synchronous = client.post(f"/v1/segmentations/{NAME}/fit", json=body(iris))
         assert synchronous.status_code == 504
-        job = finished(client, start(client, iris).json()["id"])
+        job = until_finished(client, start(client, iris).json()["id"])
         assert (job["state"], job["version"]) == ("failed", None)
         assert job["error"] == synchronous.json()["detail"]
         assert job["progress"] < 1
@@ -285,7 +278,7 @@ def test_cancel_a_queued_job_it_never_runs(store_settings, iris):
         cancelled = client.delete(f"/v1/jobs/{second['id']}")
         assert cancelled.status_code == 200 and cancelled.json()["state"] == "cancelled"
         gate.release.set()
-        assert finished(client, first["id"])["state"] == "done"
+        assert until_finished(client, first["id"])["state"] == "done"
         wait_for(lambda: not client.app.state.jobs._local, "every job task to end")
         final = client.get(f"/v1/jobs/{second['id']}").json()
         assert (final["state"], final["step"], final["progress"], final["version"]) == ("cancelled", "reading", 0.0,
@@ -333,14 +326,14 @@ def test_the_version_write_refuses_a_job_cancelled_after_it_was_claimed(store_se
 
 def test_a_finished_job_cannot_be_cancelled(store_settings, iris):
     with app_client(store_settings) as client:
-        done = finished(client, start(client, iris).json()["id"])
+        done = until_finished(client, start(client, iris).json()["id"])
         gate = Gate(client.app.state.store, "job_progress", at_step("clustering"))
         running = start(client, iris).json()
         gate.wait()
         client.delete(f"/v1/jobs/{running['id']}")
         gate.release.set()
     with app_client(store_settings, fit_time_limit_seconds=0.001) as client:
-        failed = finished(client, start(client, iris).json()["id"])
+        failed = until_finished(client, start(client, iris).json()["id"])
         for job, state in ((done, "done"), (running, "cancelled"), (failed, "failed")):
             answer = client.delete(f"/v1/jobs/{job['id']}")
             assert answer.status_code == 409, answer.text

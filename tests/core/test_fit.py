@@ -22,7 +22,8 @@ from sklearn.preprocessing import StandardScaler
 
 from service.core.bundle import FitConfig
 from service.core.calibration import conformal_quantile, min_own_rows
-from service.core.fit import check_fit_inputs, elbow_k, fit_bundle, jackson_mudholkar_limit, kneedle_k
+from service.core.fit import (check_fit_inputs, data_sha256, elbow_k, fit_bundle, jackson_mudholkar_limit,
+                              kneedle_k)
 from service.errors import InvalidInput
 
 
@@ -463,6 +464,24 @@ def test_seeded_fit_twice_gives_identical_report(blobs_with_holes):
     changed = x.copy()
     changed[0, 0] = 1.0 if changed[0, 0] != 1.0 else 2.0
     assert fit_bundle(changed, config).report["data_sha256"] != first.report["data_sha256"]
+
+
+def test_the_chunked_digest_follows_its_documented_layout():
+    """data_chunks_sha256 (the Dask engine's data_sha256): "chunks:" + hashlib.sha256 over
+    "<rows>x<cols>:65536-row chunks:" and the SHA-256 of each run of 65,536 rows, in order."""
+    from service.core.fit import data_chunks_sha256
+
+    x = np.random.default_rng(5).normal(size=(2 * 65_536 + 7, 3))
+    x[3, 1] = np.nan
+    digests = b"".join(hashlib.sha256(np.ascontiguousarray(x[s:s + 65_536]).tobytes()).digest()
+                       for s in (0, 65_536, 131_072))
+    expected = hashlib.sha256(f"{x.shape[0]}x3:65536-row chunks:".encode() + digests).hexdigest()
+    assert data_chunks_sha256(x) == "chunks:" + expected
+    # Never equal to (nor of the form of) the whole-matrix digest of the same rows.
+    assert data_chunks_sha256(x) != data_sha256(x) and len(data_sha256(x)) == 64
+    swapped = x.copy()
+    swapped[[0, 1]] = swapped[[1, 0]]
+    assert data_chunks_sha256(swapped) != data_chunks_sha256(x)
 
 
 # --------------------------------------------------------------------------- checks at the door

@@ -22,11 +22,12 @@ from sklearn.preprocessing import StandardScaler
 from service.app import create_app
 from service.core.assign import assign, compile_bundle
 from service.core.bundle import FitConfig
-from service.core.fit import fit_bundle
+from service.core.fit import data_chunks_sha256, data_sha256, fit_bundle
 from service.engines.dask_engine import CancelHook, fit_on_dask
 from service.engines.sources import spill_records
 from service.errors import ClusterUnavailable, FitCancelled
 from service.settings import Settings
+from tests.conftest import until_finished
 
 distributed = pytest.importorskip("distributed")
 
@@ -60,6 +61,13 @@ def in_memory(blobs):
     return fit_bundle(blobs[0], config())
 
 
+@pytest.fixture(scope="module")
+def on_cluster(dask_client, blobs, tmp_path_factory):
+    """The Dask fit of the same data and config (uploaded rows spilled to Parquet), fitted once for the module."""
+    return fit_on_dask(spill_records(blobs[0], FEATURES, tmp_path_factory.mktemp("spill")), config(),
+                       client=dask_client)
+
+
 def config(**overrides) -> FitConfig:
     base = dict(features=FEATURES, k_min=2, k_max=6, seed=0, silhouette_sample=2000, reference_sample=500)
     return FitConfig(**{**base, **overrides})
@@ -69,12 +77,26 @@ def labels_of(bundle, values):
     return assign(compile_bundle(bundle), values).segment
 
 
-def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(dask_client, blobs, in_memory, tmp_path):
-    values, _ = blobs
-    source = spill_records(values, FEATURES, tmp_path)
-    on_cluster = fit_on_dask(source, config(), client=dask_client)
+def lake_settings(cluster, tmp_path, lake) -> Settings:
+    """A server on the test cluster that may read the folder ``lake`` (SEGSCORE_SOURCE_PREFIXES)."""
+    return Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address,
+                    source_prefixes=(f"file://{lake}/",))
 
+
+def fit_source(client, name: str, source: str, **params) -> dict:
+    """POST a fit naming ``source``: answered 202 (a Dask fit is always a job); returns the finished job."""
+    started = client.post(f"/v1/segmentations/{name}/fit", json={"source": source, **params})
+    assert started.status_code == 202, started.text
+    return until_finished(client, started.headers["location"])
+
+
+def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(blobs, in_memory, on_cluster):
+    values, _ = blobs
     assert on_cluster.report["engine"] == "dask" and on_cluster.report["engine_details"]["workers"] == 2
+    # data_sha256 on the cluster is the chunked digest of the same rows (computed here by numpy and hashlib),
+    # marked so that it never equals the in-memory whole-matrix digest.
+    assert on_cluster.report["data_sha256"] == data_chunks_sha256(values)
+    assert in_memory.report["data_sha256"] == data_sha256(values) != on_cluster.report["data_sha256"]
     assert on_cluster.k == in_memory.k
     # Adjusted Rand index (scikit-learn) of the two versions' assignments of the training rows.
     assert adjusted_rand_score(labels_of(in_memory, values), labels_of(on_cluster, values)) >= 0.95
@@ -96,6 +118,24 @@ def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(dask
     assert np.array_equal(on_cluster.reference.sample, in_memory.reference.sample)
     for ours, theirs in zip(on_cluster.reference.bin_edges, in_memory.reference.bin_edges):
         assert np.allclose(ours, theirs, rtol=0, atol=1e-12)
+
+
+def test_the_three_engines_write_reports_with_the_same_keys(blobs, in_memory, on_cluster):
+    """One report builder (service.core.report.fit_report): memory, out_of_core and dask reports of the same data
+    have the same keys, at the top and inside quality, selection, its curve and every segment."""
+    from service.engines import run_engine
+
+    streamed = run_engine("out_of_core", blobs[0], config(), max_agglomerative_rows=20_000)
+    reports = {"memory": in_memory.report, "out_of_core": streamed.report, "dask": on_cluster.report}
+    assert {name: report["engine"] for name, report in reports.items()} == {name: name for name in reports}
+
+    def shape(report):
+        return (set(report), set(report["quality"]), set(report["selection"]),
+                {frozenset(row) for row in report["selection"]["curve"]},
+                {frozenset(segment) for segment in report["segments"]},
+                {frozenset(segment["profile"][FEATURES[0]]) for segment in report["segments"]})
+
+    assert shape(reports["memory"]) == shape(reports["out_of_core"]) == shape(reports["dask"])
 
 
 def test_medians_and_robust_quartiles_are_exact_with_missing_values_and_ties(dask_client, tmp_path):
@@ -150,13 +190,6 @@ def cluster_tasks(cluster) -> int:
     return len(cluster.scheduler.tasks)
 
 
-def _until_finished(client, job_url: str, seconds: float = 180) -> dict:
-    deadline = time.monotonic() + seconds
-    while (job := client.get(job_url).json())["state"] in ("queued", "running") and time.monotonic() < deadline:
-        time.sleep(0.1)
-    return job
-
-
 def test_a_fit_request_with_engine_dask_stores_an_ordinary_version(cluster, blobs, tmp_path):
     values, _ = blobs
     settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address)
@@ -165,7 +198,7 @@ def test_a_fit_request_with_engine_dask_stores_an_ordinary_version(cluster, blob
         # A fit on the cluster always runs as a background job, asked for or not.
         response = client.post("/v1/segmentations/lake/fit", json={"records": records, "engine": "dask", "k": 3})
         assert response.status_code == 202, response.text
-        job = _until_finished(client, response.headers["location"])
+        job = until_finished(client, response.headers["location"])
         assert job["state"] == "done", job
         report = client.get(f"/v1/jobs/{job['id']}/report").json()
         assert report["engine"] == "dask" and report["engine_details"]["workers"] == 2
@@ -184,7 +217,7 @@ def test_a_background_dask_fit_is_a_job_with_steps_and_gives_an_ordinary_version
         started = client.post("/v1/segmentations/lake/fit?background=true",
                               json={"records": records, "engine": "dask", "k": 3})
         assert started.status_code == 202, started.text
-        job = _until_finished(client, started.headers["location"])
+        job = until_finished(client, started.headers["location"])
         assert job["state"] == "done" and job["progress"] == 1.0, job
         report = client.get(f"/v1/segmentations/lake/versions/{job['version']}").json()
         assert report["engine"] == "dask"
@@ -205,7 +238,7 @@ def test_cancelling_a_background_dask_fit_stops_it_and_writes_no_version(cluster
         # Seven values of k over every blob row take the cluster seconds: the cancel arrives while it works.
         cancelled = client.delete(job_url)
         assert cancelled.status_code == 200, cancelled.text
-        job = _until_finished(client, job_url)
+        job = until_finished(client, job_url)
         assert job["state"] == "cancelled" and job["version"] is None
         assert client.get("/v1/segmentations/lake").status_code == 404
         # The cluster let go of the fit's work.
@@ -221,13 +254,8 @@ def test_a_fit_request_naming_a_source_under_an_allowed_prefix_is_read_by_the_wo
     lake.mkdir()
     pd.DataFrame(values, columns=FEATURES).assign(customer=[f"c{i}" for i in range(len(values))]).to_parquet(
         lake / "customers.parquet")
-    settings = Settings(store_dir=tmp_path / "store", dask_scheduler=cluster.scheduler_address,
-                        source_prefixes=(f"file://{lake}/",))
-    with TestClient(create_app(settings)) as client:
-        response = client.post("/v1/segmentations/lake/fit",
-                               json={"source": f"file://{lake}/customers.parquet", "k": 4, "id_column": "customer"})
-        assert response.status_code == 202, response.text
-        job = _until_finished(client, response.headers["location"])
+    with TestClient(create_app(lake_settings(cluster, tmp_path, lake))) as client:
+        job = fit_source(client, "lake", f"file://{lake}/customers.parquet", k=4, id_column="customer")
         assert job["state"] == "done", job
         report = client.get(f"/v1/jobs/{job['id']}/report").json()
         assert report["features"] == FEATURES and report["n_records"] == len(values)
@@ -280,3 +308,127 @@ def test_a_worker_killed_mid_fit_is_replaced_and_the_fit_completes(dask_client, 
     bundle = fit_on_dask(spill_records(values, FEATURES, tmp_path), config(), client=dask_client, progress=progress)
     assert len(killed) == 1 and killed[0] not in dask_client.run(os.getpid).values()
     assert adjusted_rand_score(labels_of(in_memory, values), labels_of(bundle, values)) >= 0.95
+
+
+def _csv_lake(values, lake, files=4):
+    """``values`` with a text id column, split in order over ``files`` CSV files part-0.csv, part-1.csv... (pandas
+    writes floats with the shortest repr that reads back to the same float64)."""
+    lake.mkdir()
+    frame = pd.DataFrame(values, columns=FEATURES).assign(customer=[f"c{i}" for i in range(len(values))])
+    for part, rows in enumerate(np.array_split(np.arange(len(values)), files)):
+        frame.iloc[rows].to_csv(lake / f"part-{part}.csv", index=False)
+
+
+def test_a_csv_source_named_by_a_wildcard_agrees_with_the_in_memory_fit_of_the_same_rows(cluster, blobs, tmp_path):
+    values, _ = blobs
+    lake = tmp_path / "lake"
+    _csv_lake(values, lake)
+    params = {"k": {"min": 2, "max": 6}, "seed": 0, "id_column": "customer"}
+    with TestClient(create_app(lake_settings(cluster, tmp_path, lake))) as client:
+        job = fit_source(client, "lake", f"file://{lake}/part-*.csv", **params)
+        assert job["state"] == "done", job
+        on_cluster = client.get(f"/v1/segmentations/lake/versions/{job['version']}").json()
+        # The same rows (the files read back by pandas, in name order) sent as records to the in-memory engine.
+        rows = pd.concat([pd.read_csv(lake / f"part-{part}.csv") for part in range(4)], ignore_index=True)
+        records = [dict(zip(FEATURES, map(float, row)), customer=c)
+                   for row, c in zip(rows[FEATURES].to_numpy(), rows["customer"])]
+        memory = client.post("/v1/segmentations/memory/fit", json={"records": records, "engine": "memory", **params})
+        assert memory.status_code == 201, memory.text
+        memory = memory.json()
+        assign = {}
+        for name in ("lake", "memory"):
+            answer = client.post(f"/v1/segmentations/{name}/assign", json={"records": records})
+            assert answer.status_code == 200, answer.text
+            assign[name] = np.array([row["segment"] for row in answer.json()["results"]])
+
+    assert np.array_equal(rows[FEATURES].to_numpy(), values)          # the CSV round trip lost nothing
+    assert on_cluster["engine"] == "dask" and on_cluster["engine_details"]["source_format"] == "csv"
+    assert on_cluster["n_records"] == memory["n_records"] == len(values)
+    assert on_cluster["features"] == memory["features"] == FEATURES
+    assert on_cluster["k"] == memory["k"]
+    # Four files of 1,000 rows, re-sliced into blocks for two workers: the chunked digest is that of the rows.
+    assert on_cluster["data_sha256"] == data_chunks_sha256(values)
+    assert memory["data_sha256"] == data_sha256(values)
+    # Adjusted Rand index (scikit-learn) of the two versions' assignments of the training rows.
+    assert adjusted_rand_score(assign["memory"], assign["lake"]) >= 0.95
+    # Profiles: pandas group-by means over the Dask version's own segments.
+    means = rows[FEATURES].groupby(assign["lake"]).mean()
+    for segment in on_cluster["segments"]:
+        assert segment["size"] == int(np.sum(assign["lake"] == segment["id"]))
+        for name in FEATURES:
+            assert segment["profile"][name]["mean"] == pytest.approx(means.at[segment["id"], name], rel=0, abs=1e-9)
+
+
+def test_a_csv_file_with_another_header_is_refused_naming_the_file_and_no_value(cluster, blobs, tmp_path):
+    values, _ = blobs
+    lake = tmp_path / "lake"
+    _csv_lake(values[:400], lake, files=3)
+    # The last file's header is a data row: its "column names" are record values, which must not be echoed.
+    odd = lake / "part-2.csv"
+    odd.write_text("\n".join(odd.read_text().splitlines()[1:]) + "\n")
+    secret = odd.read_text().splitlines()[0].split(",")[0]
+    settings = lake_settings(cluster, tmp_path, lake)
+    with TestClient(create_app(settings)) as client:
+        job = fit_source(client, "lake", f"file://{lake}/part-*.csv", k=3, id_column="customer")
+        assert job["state"] == "failed" and job["version"] is None, job
+        assert client.get("/v1/segmentations/lake").status_code == 404
+    detail = str(job["error"])
+    assert "part-2.csv" in detail and "header" in detail and secret not in detail
+    # Through the fit runner (what the job calls) the refusal is a 4xx of the error table, with the same detail.
+    from service.app import status_for
+    from service.errors import ServiceError
+    from service.fitting import run_fit
+    from service.inputs.fit_input import prepare_fit_request
+    import json
+
+    plan = prepare_fit_request(json.dumps({"source": f"file://{lake}/part-*.csv", "k": 3,
+                                           "id_column": "customer"}).encode(), False, {}, settings)
+    with pytest.raises(ServiceError) as refused:
+        run_fit(None, plan.config, engine=plan.engine, source=plan.source, settings=settings)
+    assert 400 <= status_for(refused.value) < 500 and refused.value.detail == job["error"]
+
+    # A cell that is not a number: refused naming its column, without the cell.
+    header = (lake / "part-0.csv").read_text().splitlines()[0]
+    lines = odd.read_text().splitlines()
+    cells = lines[3].split(",")
+    cells[FEATURES.index("f2")] = "not-a-number-7"
+    odd.write_text("\n".join([header, *lines[:3], ",".join(cells), *lines[4:]]) + "\n")
+    with pytest.raises(ServiceError) as refused:
+        run_fit(None, plan.config, engine=plan.engine, source=plan.source, settings=settings)
+    detail = str(refused.value.detail)
+    assert 400 <= status_for(refused.value) < 500 and "'f2'" in detail and "not-a-number-7" not in detail
+
+
+def test_the_chunked_digest_on_the_cluster_is_that_of_the_rows_whatever_the_blocks(dask_client):
+    """Chunks of 700 rows over blocks of 1,000, 1, 650 and 1,349 rows (chunks inside a block, across two and
+    across three blocks) give numpy + hashlib's digest of the whole matrix (service.core.fit.data_chunks_sha256)."""
+    import dask
+
+    from service.engines.dask_engine import _chunked_digest, _Cluster
+    from service.engines.dask_ops import Where
+
+    values = np.random.default_rng(11).normal(size=(3000, 4))
+    values[17, 2] = np.nan
+    lengths = [1000, 1, 650, 1349]
+    starts = np.concatenate([[0], np.cumsum(lengths)])
+    blocks = dask_client.persist([dask.delayed(values[a:b].copy()) for a, b in zip(starts[:-1], starts[1:])])
+    cluster = _Cluster(dask_client, CancelHook(), blocks, [Where(i, int(s)) for i, s in enumerate(starts[:-1])])
+    assert _chunked_digest(cluster, lengths, 3000, 4, chunk_rows=700) == data_chunks_sha256(values, chunk_rows=700)
+    assert _chunked_digest(cluster, lengths, 3000, 4, chunk_rows=700) != data_chunks_sha256(values[::-1].copy(),
+                                                                                            chunk_rows=700)
+
+
+def test_fold_numbers_and_draws_depend_on_the_rows_not_on_the_blocks():
+    """Rows get the same fold (and k-means|| draw bits) whether they sit in one block or in four of 1, 6, 643 and
+    350 rows: the numbers come from numpy's Philox at each row's global index. Folds are near-balanced."""
+    from service.engines.dask_ops import N_FOLDS, Where, folds_of, row_bits
+
+    bounds = [(0, 1), (1, 7), (7, 650), (650, 1000)]
+    whole = folds_of(Where(0, 0), 1000, seed=3)
+    assert np.array_equal(np.concatenate([folds_of(Where(i, a), b - a, seed=3) for i, (a, b) in enumerate(bounds)]),
+                          whole)
+    assert np.array_equal(np.concatenate([row_bits(Where(i, a), b - a, 3, 16, 2) for i, (a, b) in enumerate(bounds)]),
+                          row_bits(Where(0, 0), 1000, 3, 16, 2))
+    assert not np.array_equal(folds_of(Where(0, 0), 1000, seed=4), whole)
+    # Binomial(1000, 1/5) per fold: mean 200, sd 12.6; 5 sd either side.
+    assert np.all(np.abs(np.bincount(whole, minlength=N_FOLDS) - 200) < 63)
