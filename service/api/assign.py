@@ -15,7 +15,7 @@ from fastapi.responses import Response
 
 from schemas import AssignResponse
 from schemas.assign import AssignRequest
-from service.api import arrow_answers
+from service.api import arrow_answers, payload
 from service.api.payload import (
     ARROW_STREAM_TYPE,
     VARY_ACCEPT,
@@ -23,7 +23,6 @@ from service.api.payload import (
     check_name,
     kind_of_content_type,
     length_is_small,
-    parse_batch,
     read_version_batch,
     receive_body,
     refuse_declared_length,
@@ -315,7 +314,7 @@ class AssignLane:
         loaded, labels = await self.store.serving(name, version)
         refuse_declared_length(declared, settings.max_body_bytes)
         body = await receive_body(receive, settings.max_body_bytes)
-        batch = parse_batch("json", body, list(loaded.compiled.features), loaded.bundle.config.id_column,
+        batch = payload.parse_batch("json", body, list(loaded.compiled.features), loaded.bundle.config.id_column,
                             settings.max_assign_rows)
         answer = await assign_answer(settings, self.metrics, self.live, name, loaded, labels, batch, on_error, False)
         return 200, b"application/json", answer
