@@ -29,7 +29,7 @@ PATH = "/v1/segmentations/shop/assign"
 
 @pytest.fixture
 def seen(monkeypatch) -> list[str]:
-    """'lean' or 'handed over', one entry per request that reached the lean route."""
+    """'lean' or 'handed over', one entry per request that reached the assign lane."""
     calls: list[str] = []
     original = assign_module.plain_query
 
@@ -57,7 +57,7 @@ def post(client, body, query: str = "", headers: dict | None = None, content_typ
 
 
 def both_ways(client, seen, body, plain_query: str, handed_query: str, **kwargs):
-    """The same request through the lean route and through the FastAPI route."""
+    """The same request through the assign lane and through the FastAPI route."""
     seen.clear()
     lean = post(client, body, plain_query, **kwargs)
     handed = post(client, body, handed_query, **kwargs)
@@ -129,7 +129,7 @@ def test_keys_are_checked_the_same_way(shop, seen, iris):
             assert lean.headers.get("www-authenticate") == handed.headers.get("www-authenticate")
 
 
-def test_request_id_and_metrics_on_the_lean_route(shop, seen, iris):
+def test_request_id_and_metrics_on_the_lane(shop, seen, iris):
     with TestClient(create_app(shop)) as client:
         response = post(client, {"records": records_from(iris)[:2]}, headers={"x-request-id": "abc-123"})
         assert response.status_code == 200 and response.headers["x-request-id"] == "abc-123"
@@ -144,7 +144,7 @@ def test_request_id_and_metrics_on_the_lean_route(shop, seen, iris):
     assert assigned == 2
 
 
-def test_the_lean_route_is_not_in_the_api_description(shop):
+def test_the_lane_is_not_in_the_api_description(shop):
     with TestClient(create_app(shop)) as client:
         paths = client.get("/openapi.json").json()["paths"]
     assert list(paths["/v1/segmentations/{name}/assign"]) == ["post"]
