@@ -191,6 +191,15 @@ async def _live_gauges(app: FastAPI) -> None:
         await asyncio.sleep(app.state.settings.live_metrics_seconds)
 
 
+class ServiceApp(FastAPI):
+    """The FastAPI app with the assign lane (service/api/assign.py, ``AssignLane``) outside its middleware stack:
+    the assign hot path is answered before Starlette's error layers, the service's middlewares and the router;
+    every other request goes through them as before. The FastAPI route stays the documented one."""
+
+    def build_middleware_stack(self):
+        return assign.AssignLane(super().build_middleware_stack(), self)
+
+
 def create_app(settings: Settings | None = None, store: BundleStore | None = None) -> FastAPI:
     """The application. ``store``: an open store (its caller closes it); default ``open_store(settings)``,
     which the app closes when it shuts down."""
@@ -249,7 +258,7 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
                 await anyio.to_thread.run_sync(app.state.store.close)
             metrics.process_exit()
 
-    app = FastAPI(
+    app = ServiceApp(
         title="segscore",
         version=__version__,
         description="Fit and version customer segmentations; assign new records; report drift.",
@@ -286,10 +295,6 @@ def create_app(settings: Settings | None = None, store: BundleStore | None = Non
     app.state.chart_cache = ChartCache(settings.chart_cache_size)
     for router in (segmentations.router, compare.router, assign.router, drift.router, charts.router, jobs.router):
         app.include_router(router, prefix="/v1")
-    # First in the table: the single-record hot path skips the walk over every other route and FastAPI's
-    # per-request dependency solving (service/api/assign.py, LeanAssignRoute); the FastAPI route stays the
-    # documented one and answers what the lean route hands over.
-    app.router.routes.insert(0, assign.LeanAssignRoute())
     app.include_router(health.router)
     console.install(app)
     if settings.docs_enabled:

@@ -31,25 +31,34 @@ StoreDep = Annotated[BundleStore, Depends(get_store)]
 def authorize(request: Request, key: str | None, scope: str) -> None:
     """Raise unless ``key`` is a known API key carrying ``scope`` (or ``admin``); no-op when auth is off.
 
-    The one place that decides whether a key may do something: the API's bearer header and any other
-    caller that holds a key (a console session, say) go through here. On success the key's name is the
-    request's actor (``request.state.actor``), recorded with every write.
+    The API's bearer header and any other caller that holds a key (a console session, say) go through here
+    (the assign lane, which has no Request, through ``actor_of``). On success the key's name is the request's
+    actor (``request.state.actor``), recorded with every write.
     """
-    keyring: KeyRing = request.app.state.keyring
+    request.state.actor = actor_of(request.app.state.keyring, key, scope)
+
+
+def actor_of(keyring: KeyRing, key: str | None, scope: str) -> str:
+    """The one place that decides whether a key may do something: the key's name when ``key`` is a known API
+    key carrying ``scope`` (or ``admin``), ``LOCAL_ACTOR`` when auth is off; else MissingKey or ScopeDenied."""
     if not keyring.auth_required:
-        request.state.actor = LOCAL_ACTOR
-        return
+        return LOCAL_ACTOR
     caller = keyring.caller(key.strip()) if key else None
     if caller is None:
         raise MissingKey()
     if not caller.may(scope):
         raise ScopeDenied(scope)
-    request.state.actor = caller.name
+    return caller.name
 
 
 def bearer_key(request: Request) -> str | None:
     """The key of an ``Authorization: Bearer <key>`` header, or None."""
-    scheme, _, key = request.headers.get("authorization", "").partition(" ")
+    return key_of_authorization(request.headers.get("authorization", ""))
+
+
+def key_of_authorization(header: str) -> str | None:
+    """The key of an ``Authorization`` header's value when its scheme is Bearer, or None."""
+    scheme, _, key = header.partition(" ")
     return key.strip() or None if scheme.lower() == "bearer" else None
 
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 import logging
 import os
 import time
-from typing import Any, Callable
+from typing import Any, Callable, Iterable
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest, multiprocess
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
@@ -98,15 +98,26 @@ class Metrics:
             self._request_series[key] = series
         return series
 
-    def count_assigned(self, name: str, version: int, counts: list[int], flagged: int) -> None:
-        """Add one request's records per segment (``counts[segment]``) and its outliers."""
-        for segment, count in enumerate(counts):
-            if count:
-                key = (name, version, segment)
-                series = self._assigned_series.get(key)
-                if series is None:
-                    series = self._assigned_series[key] = self.assigned.labels(name, str(version), str(segment))
-                series.inc(count)
+    def request_done(self, method: str, template: str, status: int, elapsed: float, path_params: dict,
+                     log_request: bool) -> None:
+        """Count and time one answered request (and write its access-log line when ``log_request``): the
+        middleware's end of every request, and the assign lane's (service/api/assign.py)."""
+        count, latency = self.request_series(method, template, status)
+        count.inc()
+        latency.observe(elapsed)
+        if log_request:
+            request_log.info("%s %s %s", method, template, status, extra={
+                "method": method, "route": template, "status": status, "duration_ms": round(elapsed * 1000, 3),
+                "segmentation": path_params.get("name"), "version": path_params.get("version")})
+
+    def count_assigned(self, name: str, version: int, counts: Iterable[tuple[int, int]], flagged: int) -> None:
+        """Add one request's records: ``counts`` holds (segment, records) pairs; ``flagged``: its outliers."""
+        for segment, count in counts:
+            key = (name, version, segment)
+            series = self._assigned_series.get(key)
+            if series is None:
+                series = self._assigned_series[key] = self.assigned.labels(name, str(version), str(segment))
+            series.inc(count)
         if flagged:
             series = self._outlier_series.get(name)
             if series is None:
@@ -201,13 +212,6 @@ class MetricsMiddleware:
             # Routers are mounted under /v1 and report their path without the mount prefix.
             if scope["path"].startswith("/v1/") and template.startswith("/segmentations"):
                 template = "/v1" + template
-            elapsed = time.perf_counter() - started
-            count, latency = self.metrics.request_series(scope["method"], template, status[0])
-            count.inc()
-            latency.observe(elapsed)
-            if self.log_requests:
-                params = scope.get("path_params") or {}
-                request_log.info("%s %s %s", scope["method"], template, status[0], extra={
-                    "method": scope["method"], "route": template, "status": status[0],
-                    "duration_ms": round(elapsed * 1000, 3), "segmentation": params.get("name"),
-                    "version": params.get("version")})
+            params = scope.get("path_params") or {}
+            self.metrics.request_done(scope["method"], template, status[0], time.perf_counter() - started,
+                                      params, self.log_requests)

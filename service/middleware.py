@@ -15,6 +15,11 @@ from service.logs import request_id_from, request_id_var
 log = logging.getLogger("segscore")
 
 INTERNAL_ERROR_BODY = orjson.dumps({"detail": "internal error; see the server log (quote the X-Request-ID)"})
+# The two ASGI messages of that 500 (a complete answer: the keep-alive connection stays usable).
+INTERNAL_ERROR_START = {"type": "http.response.start", "status": 500,
+                        "headers": [(b"content-type", b"application/json"),
+                                    (b"content-length", str(len(INTERNAL_ERROR_BODY)).encode())]}
+INTERNAL_ERROR_END = {"type": "http.response.body", "body": INTERNAL_ERROR_BODY}
 
 
 class HttpMiddleware:
@@ -54,49 +59,56 @@ class RequestIdMiddleware(HttpMiddleware):
             request_id_var.reset(token)
 
 
+def timed_receive(receive, seconds: float):
+    """``receive`` with a time limit on the body: a ``receive`` call that gets nothing for ``seconds`` while the
+    body is incomplete raises BodyTimeout (408, connection closed). Once the body is complete, later calls
+    (waiting for a disconnect) are passed through untouched. Used by ``BodyReadTimeout`` and by the assign
+    lane (service/api/assign.py), which reads its body outside this middleware stack."""
+    body_done = False
+
+    async def timed() -> dict:
+        nonlocal body_done
+        if body_done:
+            return await receive()
+        # A bare loop timer that cancels this task (the server runs on asyncio): ~2 us per receive, where
+        # anyio.fail_after cost ~11 us and asyncio.timeout ~5 us, on a single-record request of ~100 us.
+        task = asyncio.current_task()
+        expired = False
+
+        def expire() -> None:
+            nonlocal expired
+            expired = True
+            task.cancel()
+
+        timer = asyncio.get_running_loop().call_later(seconds, expire)
+        try:
+            message = await receive()
+        except asyncio.CancelledError:
+            if not expired:
+                raise
+            task.uncancel()
+            raise BodyTimeout(seconds) from None
+        finally:
+            timer.cancel()
+        if message["type"] != "http.request" or not message.get("more_body", False):
+            body_done = True
+        return message
+
+    return timed
+
+
 class BodyReadTimeout(HttpMiddleware):
     """A request body that sends nothing for ``seconds`` fails with BodyTimeout (408, connection closed).
 
-    Only the body is timed: once it is complete, later ``receive`` calls (waiting for a disconnect) are
-    passed through untouched. A client that drips its *headers* never reaches the application; see the
-    README for what a reverse proxy must add for that."""
+    Only the body is timed (``timed_receive``). A client that drips its *headers* never reaches the
+    application; see the README for what a reverse proxy must add for that."""
 
     def __init__(self, app, seconds: float) -> None:
         super().__init__(app)
         self.seconds = seconds
 
     async def handle(self, scope, receive, send) -> None:
-        body_done = False
-
-        async def timed_receive():
-            nonlocal body_done
-            if body_done:
-                return await receive()
-            # A bare loop timer that cancels this task (the server runs on asyncio): ~2 us per receive, where
-            # anyio.fail_after cost ~11 us and asyncio.timeout ~5 us, on a single-record request of ~100 us.
-            task = asyncio.current_task()
-            expired = False
-
-            def expire() -> None:
-                nonlocal expired
-                expired = True
-                task.cancel()
-
-            timer = asyncio.get_running_loop().call_later(self.seconds, expire)
-            try:
-                message = await receive()
-            except asyncio.CancelledError:
-                if not expired:
-                    raise
-                task.uncancel()
-                raise BodyTimeout(self.seconds) from None
-            finally:
-                timer.cancel()
-            if message["type"] != "http.request" or not message.get("more_body", False):
-                body_done = True
-            return message
-
-        await self.app(scope, timed_receive, send)
+        await self.app(scope, timed_receive(receive, self.seconds), send)
 
 
 class ErrorBoundary(HttpMiddleware):
@@ -119,11 +131,14 @@ class ErrorBoundary(HttpMiddleware):
         try:
             await self.app(scope, receive, tracking_send)
         except Exception as exc:
-            where = "".join(traceback.format_tb(exc.__traceback__))
-            log.error("unexpected %s on %s %s\n%s", type(exc).__name__, scope["method"], scope["path"], where)
+            log_unexpected(exc, scope)
             if started:
                 raise  # half a response is out: only closing the connection is left (the server does it)
-            await send({"type": "http.response.start", "status": 500,
-                        "headers": [(b"content-type", b"application/json"),
-                                    (b"content-length", str(len(INTERNAL_ERROR_BODY)).encode())]})
-            await send({"type": "http.response.body", "body": INTERNAL_ERROR_BODY})
+            await send(INTERNAL_ERROR_START)
+            await send(INTERNAL_ERROR_END)
+
+
+def log_unexpected(exc: Exception, scope) -> None:
+    """The log line of an unexpected exception: its type and the code location, never its message."""
+    where = "".join(traceback.format_tb(exc.__traceback__))
+    log.error("unexpected %s on %s %s\n%s", type(exc).__name__, scope["method"], scope["path"], where)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from time import perf_counter
 from typing import Annotated, Any, Literal
 from urllib.parse import parse_qsl
 
@@ -11,15 +12,20 @@ import numpy as np
 import orjson
 from fastapi import APIRouter, Query, Request
 from fastapi.responses import Response
-from starlette.routing import Match, Route
 
 from schemas import AssignResponse
 from schemas.assign import AssignRequest
-from service.api import arrow_answers
+from service.api import arrow_answers, payload
 from service.api.payload import (
     ARROW_STREAM_TYPE,
     VARY_ACCEPT,
+    accepts_arrow,
+    check_name,
+    kind_of_content_type,
+    length_is_small,
     read_version_batch,
+    receive_body,
+    refuse_declared_length,
     request_body_openapi,
     too_many_missing,
     wants_arrow,
@@ -27,13 +33,15 @@ from service.api.payload import (
 from service.api.validation import MAX_VERSION, PLAIN_DECIMAL, StrictQuery, VersionNumber, error_responses
 from service.core.assign import Assignment, assign, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
-from service.deps import AssignScope, SettingsDep, StoreDep, authorize, bearer_key
-from service.errors import InvalidRecords, RecordProblem
+from service.deps import AssignScope, SettingsDep, StoreDep, actor_of, key_of_authorization
+from service.errors import InvalidRecords, RecordProblem, ServiceError
+from service.logs import request_id_from, request_id_var
+from service.middleware import INTERNAL_ERROR_END, INTERNAL_ERROR_START, log_unexpected, timed_receive
 from service.settings import Settings
 from service.store import BundleStore, LoadedVersion
 
 router = APIRouter(prefix="/segmentations", tags=["assign"])
-ASSIGN_SCOPE = AssignScope.dependency.required_scope     # the lean route checks the same scope
+ASSIGN_SCOPE = AssignScope.dependency.required_scope     # the assign lane checks the same scope
 
 RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per record", arrow=True,
                                     answer=AssignResponse)
@@ -92,7 +100,10 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
     else:
         ids_out = [ids[i] for i in rows.tolist()]
     segments = result.segment.tolist()
-    reasons = (result.far.astype(np.int8) + 2 * result.off_plane.astype(np.int8)).tolist()
+    if n == 1:        # one record: two item reads instead of four array operations
+        reasons = [int(result.far.item()) + 2 * int(result.off_plane.item())]
+    else:
+        reasons = (result.far.astype(np.int8) + 2 * result.off_plane.astype(np.int8)).tolist()
     runner_up = result.runner_up.tolist() if result.runner_up is not None else [None] * n
     margin = result.margin.tolist() if result.margin is not None else [None] * n
     imputed = [_NO_IMPUTED] * n
@@ -108,8 +119,14 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
 
 
 def count_assigned(metrics, name: str, version: int, result: Assignment) -> None:
+    if result.segment.size == 1:     # one record: item reads instead of a bincount and a count
+        metrics.count_assigned(name, version, ((result.segment.item(), 1),),
+                               int(result.far.item() or result.off_plane.item()))
+        return
     flagged = int(np.count_nonzero(result.far | result.off_plane))
-    metrics.count_assigned(name, version, np.bincount(result.segment).tolist(), flagged)
+    counts = np.bincount(result.segment).tolist()
+    metrics.count_assigned(name, version, [(segment, count) for segment, count in enumerate(counts) if count],
+                           flagged)
 
 
 @router.post("/{name}/assign", response_model=AssignResponse, openapi_extra=RECORDS_BODY,
@@ -123,18 +140,27 @@ async def assign_records(
     version: Annotated[VersionNumber | None, Query(description="default: the live version")] = None,
     on_error: Annotated[Literal["fail", "skip"], Query(description="skip: answer for the good records")] = "fail",
 ) -> Response:
-    # This route describes the API (OpenAPI) and answers the requests the lean route below hands over (those
-    # with a query string other than plain ``version``/``on_error``); both answer through ``answer_assign``.
+    # This route describes the API (OpenAPI) and answers the requests the assign lane below leaves to the app
+    # (those with a query string other than plain ``version``/``on_error``); both answer through ``assign_answer``.
     return await answer_assign(request, name, version, on_error, settings, store)
 
 
 async def answer_assign(request: Request, name: str, version: int | None, on_error: str, settings: Settings,
                         store: BundleStore) -> Response:
     """The route's work once the caller is authorized and the query is read: body -> checked batch ->
-    scoring (``run_assignment``) -> counters -> answer (``build_results``, or Arrow when Accept asks for it)."""
+    ``assign_answer``."""
     arrow = wants_arrow(request)          # Accept: the answer's format (JSON unless Arrow is asked for)
     loaded, labels, batch = await read_version_batch(request, store, name, version, settings=settings,
                                                      max_rows=settings.max_assign_rows, echo_ids=True)
+    state = request.app.state
+    answer = await assign_answer(settings, state.metrics, state.live, name, loaded, labels, batch, on_error, arrow)
+    return Response(answer, media_type=ARROW_STREAM_TYPE if arrow else "application/json", headers=VARY_ACCEPT)
+
+
+async def assign_answer(settings: Settings, metrics, live, name: str, loaded: LoadedVersion, labels: dict[int, str],
+                        batch: Batch, on_error: str, arrow: bool) -> bytes:
+    """A checked batch -> scoring (``run_assignment``) -> counters (``metrics``) and live drift (``live``) -> the
+    answer's bytes (``build_results`` as JSON, or Arrow). Shared by the FastAPI route and the assign lane."""
     features = loaded.compiled.features
     too_many_missing(batch, features)
     rows, errors = split_good_rows(batch, on_error == "skip")
@@ -151,23 +177,24 @@ async def answer_assign(request: Request, name: str, version: int | None, on_err
         results, assignment = compute()
     else:
         results, assignment = await anyio.to_thread.run_sync(compute)
-    count_assigned(request.app.state.metrics, name, loaded.version, assignment)
-    request.app.state.live.observe(loaded, values, assignment)      # live drift (service/live): queues only
+    count_assigned(metrics, name, loaded.version, assignment)
+    live.observe(loaded, values, assignment)      # live drift (service/live): queues only
     if arrow:
-        return Response(results, media_type=ARROW_STREAM_TYPE, headers=VARY_ACCEPT)
-    body = {"name": name, "version": loaded.version, "results": results, "errors": errors}
-    return Response(orjson.dumps(body), media_type="application/json", headers=VARY_ACCEPT)
+        return results
+    return orjson.dumps({"name": name, "version": loaded.version, "results": results, "errors": errors})
 
 
-# --------------------------------------------------------------------------- the lean path
+# --------------------------------------------------------------------------- the assign lane
 ASSIGN_PATH = "/v1/segmentations/{name}/assign"
-HANDED_OVER = "segscore.assign_handed_over"     # scope key: the lean route lets the FastAPI route answer
+_PATH_HEAD, _PATH_TAIL = ASSIGN_PATH.split("{name}")
 _QUERY_NAMES = frozenset({"version", "on_error"})
 _ON_ERROR = frozenset({"fail", "skip"})
+_NO_PATH_PARAMS: dict[str, Any] = {}
+_VARY = (b"vary", b"Accept")
 
 
 def plain_query(query: bytes) -> tuple[int | None, str] | None:
-    """(version, on_error) of a query string the lean route may answer itself: at most one ``version`` (a plain
+    """(version, on_error) of a query string the lane may answer itself: at most one ``version`` (a plain
     decimal in range) and one ``on_error`` (fail or skip), nothing else. None for anything else: the FastAPI
     route then answers, with its own 422 items for unknown, malformed or repeated parameters."""
     if not query:
@@ -188,37 +215,106 @@ def plain_query(query: bytes) -> tuple[int | None, str] | None:
     return int(version), on_error
 
 
-class LeanAssignRoute(Route):
-    """``POST /v1/segmentations/{name}/assign`` without FastAPI's per-request dependency solving and routing walk.
+def lane_name(scope) -> str | None:
+    """The segmentation name when ``scope`` is a request the lane answers (``POST`` to ``ASSIGN_PATH``), else
+    None. ``{name}`` matches what the route's does: one non-empty path segment."""
+    if scope["type"] != "http" or scope["method"] != "POST" or scope.get("root_path"):
+        return None
+    path = scope["path"]
+    if not (path.startswith(_PATH_HEAD) and path.endswith(_PATH_TAIL)):
+        return None
+    name = path[len(_PATH_HEAD):-len(_PATH_TAIL)]
+    return name if name and "/" not in name else None
 
-    Mounted first in the app, so it also skips matching the other routes. It is a plain ASGI endpoint inside the
-    same middleware (request id, metrics, access log, body timer, error boundary) and error table as every route:
-    the same key check (``authorize`` with the ``assign`` scope), then ``answer_assign``, the FastAPI route's own
-    work. A request whose query string is anything but plain ``version``/``on_error`` is handed to the FastAPI
-    route (``HANDED_OVER``), so its 422 items are exactly those of the documented route. Not in the OpenAPI
-    description: the FastAPI route above is what it documents."""
 
-    def __init__(self) -> None:
-        super().__init__(ASSIGN_PATH, endpoint=self._answer, methods=["POST"], include_in_schema=False)
-        self.app = self._answer          # a plain ASGI endpoint: no request/response wrapper per call
+class AssignLane:
+    """``POST /v1/segmentations/{name}/assign``, answered before the app's middleware stack and router.
 
-    def matches(self, scope):
-        if HANDED_OVER in scope:
-            return Match.NONE, {}
-        match, child_scope = super().matches(scope)
-        if match is not Match.FULL:
-            return Match.NONE, {}        # another method: the FastAPI route answers (405), as without this route
-        child_scope["route"] = self      # the metrics and the access log read the route's template here
-        return match, child_scope
+    The outermost ASGI layer of the app (``create_app`` puts it there). Every request the FastAPI route would
+    answer with a plain query string (``plain_query``) is answered here, in one function that does what the
+    stack does for that route: the request id (``X-Request-ID``, in the log lines), the body-read time limit
+    (408), the body-size limit (413), the key check with the ``assign`` scope (``actor_of``), the error table's
+    answers (the app's own ``ServiceError`` handler) and the boundary's 500, the request metrics and access
+    log, then ``assign_answer`` (counters, live drift), the FastAPI route's own work. Per request that saves
+    the middlewares' ``send`` wrappers, the routing walk and FastAPI's dependency solving: most of a
+    single-record request's cost. A single-record JSON body (announced small) is read straight from
+    ``receive`` with no Request object; other bodies (CSV, Arrow, large) go through the route's reader.
 
-    async def _answer(self, scope, receive, send) -> None:
-        query = plain_query(scope["query_string"])
+    Anything else (other routes, other methods, other query strings, a root path) goes to ``app``, the full
+    stack, where the FastAPI route, the one the OpenAPI description documents, answers with its own 422
+    items. ``tests/api/test_assign_lean.py`` sends the same requests both ways and requires the same answers,
+    errors, auth refusals, request ids and metrics."""
+
+    def __init__(self, app, service) -> None:
+        self.app = app                            # the full middleware stack and router
+        self.on_service_error = service.exception_handlers[ServiceError]      # the error table's answers
+        # What create_app put in the app's state, bound once (a State attribute read costs a Python call).
+        state = service.state
+        self.settings: Settings = state.settings
+        self.store: BundleStore = state.store
+        self.keyring = state.keyring
+        self.metrics = state.metrics
+        self.live = state.live
+
+    async def __call__(self, scope, receive, send) -> None:
+        name = lane_name(scope)
+        query = None if name is None else plain_query(scope["query_string"])
         if query is None:
-            scope[HANDED_OVER] = True
-            await scope["router"].app(scope, receive, send)
+            await self.app(scope, receive, send)
             return
-        request = Request(scope, receive)
-        authorize(request, bearer_key(request), ASSIGN_SCOPE)
-        state = scope["app"].state
-        response = await answer_assign(request, scope["path_params"]["name"], *query, state.settings, state.store)
-        await response(scope, receive, send)
+        headers = dict(reversed(scope["headers"]))       # the first of repeated headers, as Starlette reads them
+        sent_id = headers.get(b"x-request-id")
+        request_id = request_id_from(None if sent_id is None else sent_id.decode("latin-1"))
+        token = request_id_var.set(request_id)
+        id_header = (b"x-request-id", request_id.encode())
+        started = perf_counter()
+        status = 500
+        try:
+            try:
+                status, content_type, answer = await self._answer(scope, receive, headers, name, *query)
+                start = {"type": "http.response.start", "status": status, "headers": [
+                    (b"content-length", str(len(answer)).encode()), (b"content-type", content_type), _VARY, id_header]}
+                end = {"type": "http.response.body", "body": answer}
+            except ServiceError as exc:
+                response = await self.on_service_error(Request(scope, receive), exc)
+                status = response.status_code
+                start = {"type": "http.response.start", "status": status,
+                         "headers": [*response.raw_headers, id_header]}
+                end = {"type": "http.response.body", "body": response.body}
+            except Exception as exc:         # what ErrorBoundary does for the other routes
+                log_unexpected(exc, scope)
+                start = {**INTERNAL_ERROR_START, "headers": [*INTERNAL_ERROR_START["headers"], id_header]}
+                end = INTERNAL_ERROR_END
+            await send(start)
+            await send(end)
+        finally:
+            self.metrics.request_done("POST", ASSIGN_PATH, status, perf_counter() - started, {"name": name},
+                                      self.settings.access_log)
+            request_id_var.reset(token)
+
+    async def _answer(self, scope, receive, headers: dict[bytes, bytes], name: str, version: int | None,
+                      on_error: str) -> tuple[int, bytes, bytes]:
+        """(status, content type, body) of an answered request; raises the errors the error table answers."""
+        settings = self.settings
+        authorization = headers.get(b"authorization")
+        key = None if authorization is None else key_of_authorization(authorization.decode("latin-1"))
+        actor_of(self.keyring, key, ASSIGN_SCOPE)          # assign writes nothing: the actor is not kept
+        receive = timed_receive(receive, settings.body_read_timeout_seconds)
+        content_type = headers.get(b"content-type", b"").decode("latin-1")
+        declared = headers.get(b"content-length")
+        declared = None if declared is None else declared.decode("latin-1")
+        accept = headers.get(b"accept")
+        arrow = accept is not None and accepts_arrow(accept.decode("latin-1"))
+        if arrow or kind_of_content_type(content_type, arrow=True) != "json" or not length_is_small(declared, settings):
+            # CSV, Arrow, a large or unannounced body: the route's own reader (slot, worker thread).
+            response = await answer_assign(Request(scope, receive), name, version, on_error, settings, self.store)
+            return response.status_code, response.media_type.encode("latin-1"), response.body
+        # A small JSON body, checked in the order of read_version_batch: name, version, body.
+        check_name(name)
+        loaded, labels = await self.store.serving(name, version)
+        refuse_declared_length(declared, settings.max_body_bytes)
+        body = await receive_body(receive, settings.max_body_bytes)
+        batch = payload.parse_batch("json", body, list(loaded.compiled.features), loaded.bundle.config.id_column,
+                            settings.max_assign_rows)
+        answer = await assign_answer(settings, self.metrics, self.live, name, loaded, labels, batch, on_error, False)
+        return 200, b"application/json", answer

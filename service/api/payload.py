@@ -15,6 +15,7 @@ import anyio
 import numpy as np
 from fastapi import Request
 from pydantic import BaseModel
+from starlette.requests import ClientDisconnect
 
 from service.core.frame import Batch, batch_from_frame, batch_from_json, read_csv
 from service.errors import (
@@ -46,7 +47,12 @@ VARY_ACCEPT = {"Vary": "Accept"}      # headers of an answer whose format follow
 def body_kind(request: Request, *, arrow: bool = False) -> BodyKind:
     """'json' or 'csv' (or, with ``arrow``, 'arrow') from the Content-Type; anything else (text/plain, forms,
     none) is a 415."""
-    media_type = request.headers.get("content-type", "").split(";")[0].strip().lower()
+    return kind_of_content_type(request.headers.get("content-type", ""), arrow=arrow)
+
+
+def kind_of_content_type(content_type: str, *, arrow: bool = False) -> BodyKind:
+    """``body_kind`` of a Content-Type header's value."""
+    media_type = content_type.split(";")[0].strip().lower()
     if media_type in CSV_TYPES:
         return "csv"
     if media_type in JSON_TYPES or (media_type.startswith("application/") and media_type.endswith("+json")):
@@ -78,7 +84,12 @@ def wants_arrow(request: Request) -> bool:
     wildcard): ``Accept: application/vnd.apache.arrow.stream``. Every other Accept (none, */*, JSON, or a
     type we cannot produce) gets JSON: RFC 9110 section 12.5.1 lets a server disregard Accept rather than
     answer 406, and an answer's Content-Type always says which format it is."""
-    accept = request.headers.get("accept", "").lower()
+    return accepts_arrow(request.headers.get("accept", ""))
+
+
+def accepts_arrow(accept: str) -> bool:
+    """``wants_arrow`` of an Accept header's value."""
+    accept = accept.lower()
     if "arrow" not in accept:              # the common case, decided without parsing
         return False
     arrow_q, json_q = 0.0, 0.0
@@ -90,18 +101,49 @@ def wants_arrow(request: Request) -> bool:
     return arrow_q > 0 and arrow_q >= json_q
 
 
-
-async def read_body(request: Request, limit: int) -> bytes:
-    declared = request.headers.get("content-length")
+def refuse_declared_length(declared: str | None, limit: int) -> None:
+    """413 before reading when the Content-Length announces more than ``limit`` bytes."""
     if declared is not None and declared.isdigit() and int(declared) > limit:
         raise PayloadTooLarge(f"the body is {declared} bytes; the limit is {limit}")
+
+
+async def read_body(request: Request, limit: int) -> bytes:
+    refuse_declared_length(request.headers.get("content-length"), limit)
     chunks, size = [], 0
     async for chunk in request.stream():
         size += len(chunk)
         if size > limit:
-            raise PayloadTooLarge(f"the body exceeds the limit of {limit} bytes")
+            raise _over_limit(limit)
         chunks.append(chunk)
-    body = b"".join(chunks)
+    return _non_empty(b"".join(chunks))
+
+
+async def receive_body(receive, limit: int) -> bytes:
+    """``read_body`` for a caller without a Request (the assign lane): the body straight from ASGI ``receive``
+    calls (what ``Request.stream`` reads), with the same limit and checks; a client that disconnects first
+    ends it with ClientDisconnect, as there. (A plain loop: an async generator costs more than the read.)"""
+    chunks, size = [], 0
+    while True:
+        message = await receive()
+        kind = message["type"]
+        if kind == "http.request":
+            chunk = message.get("body", b"")
+            size += len(chunk)
+            if size > limit:
+                raise _over_limit(limit)
+            chunks.append(chunk)
+            if not message.get("more_body", False):
+                break
+        elif kind == "http.disconnect":
+            raise ClientDisconnect()
+    return _non_empty(chunks[0] if len(chunks) == 1 else b"".join(chunks))
+
+
+def _over_limit(limit: int) -> PayloadTooLarge:
+    return PayloadTooLarge(f"the body exceeds the limit of {limit} bytes")
+
+
+def _non_empty(body: bytes) -> bytes:
     if not body.strip():
         raise InvalidInput("the request body is empty", field="body")
     return body
@@ -109,7 +151,11 @@ async def read_body(request: Request, limit: int) -> bytes:
 
 def declared_small(request: Request, settings: Settings) -> bool:
     """Whether the request announces a body of at most ``large_body_bytes`` (read without a slot)."""
-    declared = request.headers.get("content-length")
+    return length_is_small(request.headers.get("content-length"), settings)
+
+
+def length_is_small(declared: str | None, settings: Settings) -> bool:
+    """``declared_small`` of a Content-Length header's value."""
     return declared is not None and declared.isdigit() and int(declared) <= settings.large_body_bytes
 
 
@@ -136,7 +182,7 @@ async def off_loop_if_large(body: bytes, settings: Settings, function, *args):
 
 
 # --------------------------------------------------------------------------- JSON
-def _parse_batch(kind: BodyKind, body: bytes, features: list[str], id_column: str | None, max_rows: int) -> Batch:
+def parse_batch(kind: BodyKind, body: bytes, features: list[str], id_column: str | None, max_rows: int) -> Batch:
     if kind == "arrow":
         table = read_arrow_stream(body, max_rows)
         _check_rows(table.num_rows, max_rows)
@@ -158,10 +204,10 @@ async def read_batch(request: Request, features: list[str], id_column: str | Non
     if declared_small(request, settings):
         # A small body (the single-record call): read and parsed here, without a slot or a context manager.
         body = await read_body(request, settings.max_body_bytes)
-        return await off_loop_if_large(body, settings, _parse_batch, kind, body, features, id_column, max_rows)
+        return await off_loop_if_large(body, settings, parse_batch, kind, body, features, id_column, max_rows)
     async with large_body_slot(request, settings):
         body = await read_body(request, settings.max_body_bytes)
-        return await off_loop_if_large(body, settings, _parse_batch, kind, body, features, id_column, max_rows)
+        return await off_loop_if_large(body, settings, parse_batch, kind, body, features, id_column, max_rows)
 
 
 def _check_rows(n_rows: int, max_rows: int) -> None:

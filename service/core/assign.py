@@ -213,18 +213,22 @@ def _assign_one(compiled: CompiledBundle, row: np.ndarray) -> Assignment:
             residual = 0.0
     diff = z - compiled.centroids
     squared = np.einsum("ij,ij->i", diff, diff).tolist()   # (k,) direct squared distances, as _two_nearest
-    nearest = min(range(len(squared)), key=squared.__getitem__)       # ties: the lower id, as a stable sort
+    order = sorted(range(len(squared)), key=squared.__getitem__)   # stable: ties go to the lower id
+    nearest = order[0]
     distance = math.sqrt(squared[nearest])
     far = distance > compiled.distance_thresholds_list[nearest]
     off_plane = has_residual and residual > compiled.residual_thresholds_list[nearest]
-    if len(squared) > 1:
-        runner = min((c for c in range(len(squared)) if c != nearest), key=squared.__getitem__)
-        runner_up = np.array([runner])
-        margin = np.array([math.sqrt(squared[runner]) - distance])
+    # One array per type, sliced into the 1-element fields (a slice costs a third of a new array).
+    flags = np.array([far, off_plane])
+    if len(order) > 1:
+        runner = order[1]
+        segments = np.array([nearest, runner])
+        floats = np.array([distance, residual, math.sqrt(squared[runner]) - distance])
+        runner_up, margin = segments[1:], floats[2:]
     else:
+        segments, floats = np.array([nearest]), np.array([distance, residual])
         runner_up = margin = None
-    return Assignment(np.array([nearest]), np.array([distance]), runner_up, margin, np.array([residual]),
-                      np.array([far]), np.array([off_plane]))
+    return Assignment(segments[:1], floats[:1], runner_up, margin, floats[1:2], flags[:1], flags[1:])
 
 
 def _two_nearest(compiled: CompiledBundle, z: np.ndarray):

@@ -529,7 +529,7 @@ def test_large_arrow_bodies_are_decoded_in_a_worker_thread(tmp_path, monkeypatch
     import service.api.payload as payload
 
     where = []
-    real = payload._parse_batch
+    real = payload.parse_batch
 
     def spy(kind, *args):
         try:
@@ -538,7 +538,7 @@ def test_large_arrow_bodies_are_decoded_in_a_worker_thread(tmp_path, monkeypatch
             where.append((kind, "worker thread"))
         return real(kind, *args)
 
-    monkeypatch.setattr(payload, "_parse_batch", spy)
+    monkeypatch.setattr(payload, "parse_batch", spy)
     with TestClient(create_app(Settings(store_dir=tmp_path / "s", large_body_bytes=1024))) as client:
         two_feature_fit(client)
         small, large = two_feature_stream(1), two_feature_stream(300)
@@ -556,7 +556,7 @@ def test_large_arrow_requests_wait_for_a_large_body_slot(tmp_path, monkeypatch):
 
     settings = Settings(store_dir=tmp_path / "s", large_body_bytes=1024, large_body_concurrency=1)
     inside, release, entered = [], threading.Event(), threading.Event()
-    real = payload._parse_batch
+    real = payload.parse_batch
 
     def slow(*args):
         inside.append(1)
@@ -567,7 +567,7 @@ def test_large_arrow_requests_wait_for_a_large_body_slot(tmp_path, monkeypatch):
 
     with TestClient(create_app(settings)) as client:
         two_feature_fit(client)
-        monkeypatch.setattr(payload, "_parse_batch", slow)
+        monkeypatch.setattr(payload, "parse_batch", slow)
         results = []
         body = two_feature_stream(300)
 

@@ -1,7 +1,7 @@
-"""The assign hot path (service/api/assign.py, LeanAssignRoute) against the documented FastAPI route.
+"""The assign hot path (service/api/assign.py, AssignLane) against the documented FastAPI route.
 
-The lean route answers requests whose query string is empty or plain ``version``/``on_error``; anything else is
-handed to the FastAPI route. Each check below sends the same request both ways (a repeated parameter, e.g.
+The assign lane, outside the app's middleware stack, answers requests whose query string is empty or plain
+``version``/``on_error``; anything else is handed to the full app, where the FastAPI route answers. Each check below sends the same request both ways (a repeated parameter, e.g.
 ``?on_error=fail&on_error=fail``, is always handed over, and FastAPI reads the last value, so it asks the same
 question) and requires the same status, body and headers that matter. Which route answered is recorded by
 wrapping ``plain_query`` (it returns None exactly when the request is handed over). Reference data: the Iris
@@ -10,6 +10,9 @@ data set shipped with scikit-learn.
 
 from __future__ import annotations
 
+import asyncio
+import logging
+
 import orjson
 import pytest
 from fastapi.testclient import TestClient
@@ -17,6 +20,7 @@ from prometheus_client.parser import text_string_to_metric_families
 
 import service.api.assign as assign_module
 from service.app import create_app
+from service.logs import RequestIdFilter
 from service.settings import Settings
 from tests.conftest import create_keys, records_from
 
@@ -25,7 +29,7 @@ PATH = "/v1/segmentations/shop/assign"
 
 @pytest.fixture
 def seen(monkeypatch) -> list[str]:
-    """'lean' or 'handed over', one entry per request that reached the lean route."""
+    """'lean' or 'handed over', one entry per request that reached the assign lane."""
     calls: list[str] = []
     original = assign_module.plain_query
 
@@ -53,7 +57,7 @@ def post(client, body, query: str = "", headers: dict | None = None, content_typ
 
 
 def both_ways(client, seen, body, plain_query: str, handed_query: str, **kwargs):
-    """The same request through the lean route and through the FastAPI route."""
+    """The same request through the assign lane and through the FastAPI route."""
     seen.clear()
     lean = post(client, body, plain_query, **kwargs)
     handed = post(client, body, handed_query, **kwargs)
@@ -125,7 +129,7 @@ def test_keys_are_checked_the_same_way(shop, seen, iris):
             assert lean.headers.get("www-authenticate") == handed.headers.get("www-authenticate")
 
 
-def test_request_id_and_metrics_on_the_lean_route(shop, seen, iris):
+def test_request_id_and_metrics_on_the_lane(shop, seen, iris):
     with TestClient(create_app(shop)) as client:
         response = post(client, {"records": records_from(iris)[:2]}, headers={"x-request-id": "abc-123"})
         assert response.status_code == 200 and response.headers["x-request-id"] == "abc-123"
@@ -140,8 +144,84 @@ def test_request_id_and_metrics_on_the_lean_route(shop, seen, iris):
     assert assigned == 2
 
 
-def test_the_lean_route_is_not_in_the_api_description(shop):
+def test_the_lane_is_not_in_the_api_description(shop):
     with TestClient(create_app(shop)) as client:
         paths = client.get("/openapi.json").json()["paths"]
     assert list(paths["/v1/segmentations/{name}/assign"]) == ["post"]
     assert paths["/v1/segmentations/{name}/assign"]["post"]["operationId"].startswith("assign_records")
+
+
+def _direct_call(app, path: str, body: bytes, receive_parts: list[bytes], declared: int | None = None):
+    """One request as a direct ASGI call: the body arrives as ``receive_parts`` (more to come after the last
+    one when they add up to less than ``declared``: the client stops sending). Returns (status, headers, body)."""
+    headers = [(b"content-type", b"application/json"), (b"x-request-id", b"slow-1")]
+    if declared is not None:
+        headers.append((b"content-length", str(declared).encode()))
+    raw_path, _, query = path.partition("?")
+    scope = {"type": "http", "asgi": {"version": "3.0"}, "http_version": "1.1", "method": "POST", "scheme": "http",
+             "path": raw_path, "raw_path": raw_path.encode(), "query_string": query.encode(), "root_path": "",
+             "server": ("127.0.0.1", 8000), "client": ("127.0.0.1", 5000), "headers": headers}
+    parts = list(receive_parts)
+    sent = []
+
+    async def receive():
+        if parts:
+            part = parts.pop(0)
+            return {"type": "http.request", "body": part, "more_body": bool(parts) or declared is not None}
+        await asyncio.sleep(30)       # the client sends nothing more; the body time limit ends the wait
+        raise AssertionError("the body time limit did not end the wait")
+
+    async def send(message):
+        sent.append(message)
+
+    asyncio.run(asyncio.wait_for(app(scope, receive, send), 20))
+    start, end = sent
+    return start["status"], {k.decode(): v.decode() for k, v in start["headers"]}, end["body"]
+
+
+def test_a_body_that_stops_arriving_is_the_same_408_on_both_routes(shop, seen, iris):
+    """The lane times its own body reads: the same 408, detail and Connection: close as the middleware's."""
+    body = orjson.dumps({"records": records_from(iris)[:1]})
+    app = create_app(shop.model_copy(update={"body_read_timeout_seconds": 0.2}))
+    answers = [_direct_call(app, PATH + query, body, [body[:10]], declared=len(body))
+               for query in ("", "?on_error=fail&on_error=fail")]
+    assert seen == ["lean", "handed over"]
+    (lean_status, lean_headers, lean_body), (status, headers, handed_body) = answers
+    assert lean_status == status == 408
+    assert lean_body == handed_body and b"no part of the request body arrived" in lean_body
+    assert lean_headers["connection"] == headers["connection"] == "close"
+    assert lean_headers["x-request-id"] == headers["x-request-id"] == "slow-1"
+
+
+def test_body_size_limits_are_the_same_on_both_routes(shop, seen, iris):
+    """413 for an announced body over max_body_bytes, and for a body that grows past it while it is read."""
+    app = create_app(shop.model_copy(update={"max_body_bytes": 1024}))
+    big = orjson.dumps({"records": records_from(iris)[:20]})
+    assert len(big) > 1024
+    for parts, declared in (([big], len(big)), ([big[:1000], big[1000:]], None)):
+        answers = [_direct_call(app, PATH + query, big, parts, declared)
+                   for query in ("", "?on_error=fail&on_error=fail")]
+        (lean_status, _, lean_body), (status, _, handed_body) = answers
+        assert lean_status == status == 413
+        assert lean_body == handed_body
+    assert seen == ["lean", "handed over"] * 2
+
+
+def test_an_unexpected_error_is_the_same_plain_500_on_both_routes(shop, seen, iris, monkeypatch, caplog):
+    """A bug in the scoring path (simulated): a JSON 500 without the exception's text, logged by type under the
+    request id, as ErrorBoundary answers for every other route; the connection is not dropped (no re-raise)."""
+    def broken(*args, **kwargs):
+        raise RuntimeError("a record value that must not leak")
+
+    monkeypatch.setattr(assign_module, "run_assignment", broken)
+    caplog.handler.addFilter(RequestIdFilter())       # as the service's stderr handler: the id on every line
+    with TestClient(create_app(shop), raise_server_exceptions=True) as client:
+        with caplog.at_level(logging.ERROR, logger="segscore"):
+            lean, handed = both_ways(client, seen, {"records": records_from(iris)[:1]}, "",
+                                     "?on_error=fail&on_error=fail", headers={"x-request-id": "bug-1"})
+    assert lean.status_code == handed.status_code == 500
+    assert lean.json() == handed.json() and "must not leak" not in lean.text
+    assert lean.headers["x-request-id"] == handed.headers["x-request-id"] == "bug-1"
+    errors = [r for r in caplog.records if r.levelno == logging.ERROR]
+    assert [r.getMessage().split("\n")[0] for r in errors] == [f"unexpected RuntimeError on POST {PATH}"] * 2
+    assert [r.request_id for r in errors] == ["bug-1"] * 2

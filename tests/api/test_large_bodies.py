@@ -72,7 +72,7 @@ def test_many_empty_records_are_refused_before_parsing(tmp_path, monkeypatch):
 def test_large_bodies_are_parsed_in_a_worker_thread(tmp_path, monkeypatch):
     settings = Settings(store_dir=tmp_path / "s", large_body_bytes=1024)
     where = []
-    real = payload._parse_batch
+    real = payload.parse_batch
 
     def spy(*args):
         try:
@@ -81,7 +81,7 @@ def test_large_bodies_are_parsed_in_a_worker_thread(tmp_path, monkeypatch):
             where.append("worker thread")
         return real(*args)
 
-    monkeypatch.setattr(payload, "_parse_batch", spy)
+    monkeypatch.setattr(payload, "parse_batch", spy)
     with TestClient(create_app(settings)) as client:
         assert client.post("/v1/segmentations/x/fit", json={"records": _records(200), "k": 2}).status_code == 201
         assert client.post("/v1/segmentations/x/assign", json={"records": _records(1)}).status_code == 200
@@ -93,7 +93,7 @@ def test_large_requests_in_flight_are_bounded(tmp_path, monkeypatch):
     # With large_body_concurrency = 1, a second large request waits until the first one has been parsed.
     settings = Settings(store_dir=tmp_path / "s", large_body_bytes=1024, large_body_concurrency=1)
     inside, release, entered = [], threading.Event(), threading.Event()
-    real = payload._parse_batch
+    real = payload.parse_batch
 
     def slow(*args):
         inside.append(1)
@@ -104,7 +104,7 @@ def test_large_requests_in_flight_are_bounded(tmp_path, monkeypatch):
 
     with TestClient(create_app(settings)) as client:
         assert client.post("/v1/segmentations/x/fit", json={"records": _records(200), "k": 2}).status_code == 201
-        monkeypatch.setattr(payload, "_parse_batch", slow)
+        monkeypatch.setattr(payload, "parse_batch", slow)
         results = []
 
         def post():
