@@ -56,6 +56,20 @@ def live_report(version, values_list):
                               rules=RULES, residual_available=version.compiled.has_residual)
 
 
+
+def stored_counts(store, version) -> list[int]:
+    """The stored live counts of version 1 of "shop", one per slot of its layout."""
+    stored = np.zeros(layout_of(version).n_slots, dtype=np.int64)
+    for slot, count in store.live_counts("shop", 1, since=0).items():
+        stored[slot] = count
+    return stored.tolist()
+
+
+def reference_counts(version, values) -> list[int]:
+    """The definition: all the records tallied at once."""
+    return tally(layout_of(version), values, *(getattr(assigned(version, values), f)
+                                               for f in ("segment", "far", "off_plane", "residual"))).tolist()
+
 def test_counts_equal_a_batch_report_over_the_same_records_in_one_batch_or_one_by_one(version):
     # Reference: the batch report (service.core.drift.drift_of_batch) of the same 600 records: the same bins,
     # so the same PSI per feature, missing shares, segment counts and outlier count.
@@ -136,13 +150,7 @@ def test_recorder_counts_each_record_once_across_flushes_and_merges_by_addition(
         a.flush()
         b.flush()
     a.flush()
-    layout = layout_of(version)
-    stored = np.zeros(layout.n_slots, dtype=np.int64)
-    for slot, count in store.live_counts("shop", 1, since=0).items():
-        stored[slot] = count
-    reference = tally(layout, values, *(getattr(assigned(version, values), f)
-                                        for f in ("segment", "far", "off_plane", "residual")))
-    assert stored.tolist() == reference.tolist()
+    assert stored_counts(store, version) == reference_counts(version, values)
 
 
 def test_retention_deletes_old_buckets_only(version, tmp_path):
@@ -185,10 +193,4 @@ def test_queue_is_bounded_in_bytes_and_nothing_is_dropped(version, tmp_path):
     assert recorder.inline_tallies == 3                        # batches 6, 12 and 18 passed it: 20 // 6
     recorder.flush()
     assert recorder.queued_bytes() == 0
-    layout = layout_of(version)
-    stored = np.zeros(layout.n_slots, dtype=np.int64)
-    for slot, count in store.live_counts("shop", 1, since=0).items():
-        stored[slot] = count
-    reference = tally(layout, values, *(getattr(assigned(version, values), f)
-                                        for f in ("segment", "far", "off_plane", "residual")))
-    assert stored.tolist() == reference.tolist()
+    assert stored_counts(store, version) == reference_counts(version, values)
