@@ -317,24 +317,9 @@ class FilesystemStore:
                     last, live = 0, None
                 else:
                     last, live = row["last_version"], row["live_version"]
-                version = last + 1
-                go_live = (live is None and version == 1) if make_live is None else make_live
-                report = {
-                    "name": name, "version": version, "created_at": now[:19] + "Z",
-                    **bundle.report, "bundle_sha256": bundle_sha,
-                }
-                text = json.dumps(report, allow_nan=False)  # no NaN/Infinity may reach a stored report
-                _write_atomic(folder / f"v{version:06d}.json", lambda handle: handle.write(text.encode()))
-                db.execute(
-                    "INSERT INTO versions (name, version, created_at, k, n_records, data_sha256, bundle_sha256,"
-                    " fitted_sha256, artifact, report) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                    (name, version, report["created_at"], bundle.k, bundle.report["n_records"],
-                     bundle.report["data_sha256"], bundle_sha, fitted_sha, f"{bundle_sha}{SERVING_SUFFIX}", text))
-                db.execute("UPDATE segmentations SET last_version=?, updated_at=?,"
-                           " live_version=CASE WHEN ? THEN ? ELSE live_version END WHERE name=?",
-                           (version, now, go_live, version, name))
-                self._record_event(db, actor, "fit", name, version, {"live": bool(go_live)}, at=now)
-                self._complete_job(db, job_id, version, now)
+                version = self._index_new_version(db, name, bundle, last=last, live=live, make_live=make_live,
+                                                  actor=actor, job_id=job_id, bundle_sha=bundle_sha,
+                                                  fitted_sha=fitted_sha, now=now)
         except JobNotRunning:
             self._remove_unreferenced({bundle_sha, fitted_sha})     # the job's files go with its version
             raise
@@ -516,7 +501,7 @@ class FilesystemStore:
             report = json.loads(row["report"])
             report["bundle_sha256"] = sha
             text = json.dumps(report, allow_nan=False)
-            _write_atomic(folder / f"v{version:06d}.json", lambda handle: handle.write(text.encode()))
+            self._keep_report_file(name, version, text)
             with self._writing(f"the upgraded artifact of '{name}' version {version}") as db:
                 db.execute("UPDATE versions SET artifact=?, bundle_sha256=?, report=? WHERE name=? AND version=?",
                            (f"{sha}{SERVING_SUFFIX}", sha, text, name, version))
@@ -626,6 +611,34 @@ class FilesystemStore:
             result = db.execute("UPDATE jobs SET state='failed', error=?, updated_at=? WHERE state IN"
                                 " ('queued', 'running') AND owner=?", (json.dumps(error), utc_now(), owner))
             return max(result.rowcount, 0)
+
+    def _index_new_version(self, db: Any, name: str, bundle: Bundle, *, last: int, live: int | None,
+                           make_live: bool | None, actor: str, job_id: str | None, bundle_sha: str,
+                           fitted_sha: str, now: str) -> int:
+        """Write the index rows of the version after ``last`` and return its number (both backends; the caller
+        holds the segmentation's write lock and has claimed the job)."""
+        version = last + 1
+        go_live = (live is None and version == 1) if make_live is None else bool(make_live)
+        report = {"name": name, "version": version, "created_at": now[:19] + "Z",
+                  **bundle.report, "bundle_sha256": bundle_sha}
+        text = json.dumps(report, allow_nan=False)  # no NaN/Infinity may reach a stored report
+        self._keep_report_file(name, version, text)
+        db.execute(
+            "INSERT INTO versions (name, version, created_at, k, n_records, data_sha256, bundle_sha256,"
+            " fitted_sha256, artifact, report) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            (name, version, report["created_at"], bundle.k, bundle.report["n_records"],
+             bundle.report["data_sha256"], bundle_sha, fitted_sha, f"{bundle_sha}{SERVING_SUFFIX}", text))
+        db.execute("UPDATE segmentations SET last_version=?, updated_at=?,"
+                   " live_version=CASE WHEN ? THEN ? ELSE live_version END WHERE name=?",
+                   (version, now, go_live, version, name))
+        self._record_event(db, actor, "fit", name, version, {"live": go_live}, at=now)
+        self._complete_job(db, job_id, version, now)
+        return version
+
+    def _keep_report_file(self, name: str, version: int, text: str) -> None:
+        # A readable copy of the report beside the version's files: it goes with them when they are erased.
+        folder = self.root / "segmentations" / name
+        _write_atomic(folder / f"v{version:06d}.json", lambda handle: handle.write(text.encode()))
 
     def _claim_job_for_version(self, db: sqlite3.Connection, job_id: str | None) -> None:
         """Inside the transaction that writes a job's version: refuse unless the job still runs, so a cancel

@@ -20,7 +20,6 @@ says so); the serving cache keeps answering assigns from memory, and the pool re
 
 from __future__ import annotations
 
-import json
 import logging
 import threading
 from contextlib import contextmanager
@@ -34,7 +33,7 @@ from psycopg_pool import ConnectionPool, PoolTimeout
 
 from service.core.bundle import Bundle
 from service.errors import JobNotRunning, StoreUnavailable
-from service.store.filesystem import CLI_ACTOR, LIVE_COUNTS_UPSERT, SERVING_SUFFIX, FilesystemStore, utc_now
+from service.store.filesystem import CLI_ACTOR, LIVE_COUNTS_UPSERT, FilesystemStore, utc_now
 from service.store.objects import ContentAddressedFiles
 
 log = logging.getLogger("segscore.store")
@@ -258,6 +257,9 @@ class PostgresStore(FilesystemStore):
             self._remove_unreferenced({bundle_sha, fitted_sha})     # the job's files go with its version
             raise
 
+    def _keep_report_file(self, name: str, version: int, text: str) -> None:
+        """Reports live in the shared index only: replicas keep no per-version files beside the artifacts."""
+
     def _index_version(self, name: str, bundle: Bundle, *, make_live: bool | None, actor: str, job_id: str | None,
                        bundle_sha: str, fitted_sha: str) -> dict[str, Any]:
         with self._writing(f"a version of '{name}'") as db:
@@ -269,21 +271,9 @@ class PostgresStore(FilesystemStore):
             row = db.execute("SELECT last_version, live_version FROM segmentations WHERE name=? FOR UPDATE",
                              (name,)).fetchone()
             last, live = row["last_version"], row["live_version"]
-            version = last + 1
-            go_live = (live is None and version == 1) if make_live is None else bool(make_live)
-            report = {"name": name, "version": version, "created_at": now[:19] + "Z",
-                      **bundle.report, "bundle_sha256": bundle_sha}
-            text = json.dumps(report, allow_nan=False)
-            db.execute(
-                "INSERT INTO versions (name, version, created_at, k, n_records, data_sha256, bundle_sha256,"
-                " fitted_sha256, artifact, report) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                (name, version, report["created_at"], bundle.k, bundle.report["n_records"],
-                 bundle.report["data_sha256"], bundle_sha, fitted_sha, f"{bundle_sha}{SERVING_SUFFIX}", text))
-            db.execute("UPDATE segmentations SET last_version=?, updated_at=?,"
-                       " live_version=CASE WHEN ? THEN ? ELSE live_version END WHERE name=?",
-                       (version, now, go_live, version, name))
-            self._record_event(db, actor, "fit", name, version, {"live": go_live}, at=now)
-            self._complete_job(db, job_id, version, now)
+            version = self._index_new_version(db, name, bundle, last=last, live=live, make_live=make_live,
+                                              actor=actor, job_id=job_id, bundle_sha=bundle_sha,
+                                              fitted_sha=fitted_sha, now=now)
         return self.version_report(name, version)
 
     # load, artifact_path, fitted_path and the deletions (objects no version names any more) are the local
