@@ -79,6 +79,14 @@ def _query_parameters(query: Mapping[str, str]) -> dict[str, Any]:
     return params
 
 
+def usable_columns(features: list[str], unusable: dict[str, str]) -> list[int]:
+    """The positions of the default features worth keeping; none at all is a refusal naming every reason."""
+    keep = [j for j, f in enumerate(features) if f not in unusable]
+    if not keep:
+        raise InvalidInput([RecordProblem(None, f, f"feature cannot be used: {why}") for f, why in unusable.items()])
+    return keep
+
+
 def _fit_config(request_model: FitRequest, features: list[str], settings,
                 dropped: tuple[tuple[str, str], ...] = ()) -> FitConfig:
     k = request_model.k
@@ -222,10 +230,7 @@ def training_inputs(params: FitRequest, settings, *, frame: pd.DataFrame | None 
         # and listed in the report's warnings. Named features are checked (and refused) by the fit itself.
         unusable = unusable_features(values, features)
         if unusable:
-            keep = [j for j, f in enumerate(features) if f not in unusable]
-            if not keep:
-                raise InvalidInput([RecordProblem(None, f, f"feature cannot be used: {why}")
-                                    for f, why in unusable.items()])
+            keep = usable_columns(features, unusable)
             dropped = tuple(unusable.items())
             features, values = [features[j] for j in keep], values[:, keep]
     return values, _fit_config(params, features, settings, dropped)

@@ -33,6 +33,7 @@ from service.inputs.fit_input import (
     _query_parameters,
     _resolve_features,
     csv_feature_candidates,
+    usable_columns,
 )
 
 # Bytes of CSV text checked and converted at once; a single line may not be longer.
@@ -216,10 +217,7 @@ def prepare_streamed_fit(upload: Path, kind: str, query: Mapping[str, str], sett
     if params.features is None and n_rows >= 2:
         unusable = moments.unusable(features)
         if unusable:
-            keep = [j for j, f in enumerate(features) if f not in unusable]
-            if not keep:
-                raise InvalidInput([RecordProblem(None, f, f"feature cannot be used: {why}")
-                                    for f, why in unusable.items()])
+            keep = usable_columns(features, unusable)
             dropped = tuple(unusable.items())
             features = [features[j] for j in keep]
             source = source.select(keep)
