@@ -8,6 +8,7 @@ same segments; data from scikit-learn's Iris (sklearn.datasets.load_iris) and ma
 from __future__ import annotations
 
 import gzip
+import json
 import io
 
 import pandas as pd
@@ -213,3 +214,19 @@ def test_a_background_out_of_core_fit_of_a_streamed_upload_gives_the_synchronous
         assert report["data_sha256"] == synchronous.json()["data_sha256"]
         assert _segment_sizes(report) == _segment_sizes(synchronous.json())
         assert list(upload_dir.iterdir()) == []
+
+
+@pytest.mark.parametrize("form", ["json", "csv"])
+def test_a_fit_whose_every_default_feature_is_unusable_is_refused_naming_each(client, form):
+    # One all-missing and one constant column: neither carries information, so no feature is left to fit on.
+    frame = pd.DataFrame({"id": [f"r{i}" for i in range(40)], "blank": [None] * 40, "flat": [2.5] * 40})
+    if form == "json":
+        response = client.post(f"/v1/segmentations/{NAME}/fit",
+                               json={"records": frame.to_dict(orient="records"), "id_column": "id", "k": 2})
+    else:
+        response = _post(client, frame.to_csv(index=False).encode(), "text/csv", "?k=2&id_column=id")
+    assert response.status_code == 422, response.text
+    problems = response.json()["detail"]
+    text = json.dumps(problems)
+    assert "blank" in text and "flat" in text and "feature cannot be used" in text
+    assert NAME not in json.dumps(client.get("/v1/segmentations").json())     # nothing was written
