@@ -1,18 +1,30 @@
-"""Shared fixtures. Reference data sets ship with scikit-learn (no download)."""
+"""Shared fixtures. Reference data sets ship with scikit-learn (no download). Also how the suite is shared
+out between xdist workers (the hooks at the end)."""
 
 from __future__ import annotations
 
+import os
 import shutil
 from contextlib import contextmanager
 
-import numpy as np
-import pytest
-from fastapi.testclient import TestClient
-from sklearn.datasets import load_iris, load_wine
+# One BLAS/OpenMP thread per test process: `make test` runs two xdist workers on a 2-core machine, and a pool
+# of two threads in each would fight over the cores (more CPU time, no shorter run). Set before numpy and
+# scikit-learn load their libraries (the pools read these once); threadpoolctl below covers a library that
+# was loaded earlier anyway. Server processes started by tests inherit the variables.
+for _variable in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "BLIS_NUM_THREADS"):
+    os.environ.setdefault(_variable, "1")
 
-from service.app import create_app
-from service.settings import Settings
-from service.store import FilesystemStore
+import numpy as np  # noqa: E402
+import pytest  # noqa: E402
+from fastapi.testclient import TestClient  # noqa: E402
+from sklearn.datasets import load_iris, load_wine  # noqa: E402
+from threadpoolctl import threadpool_limits  # noqa: E402
+
+from service.app import create_app  # noqa: E402
+from service.settings import Settings  # noqa: E402
+from service.store import FilesystemStore  # noqa: E402
+
+threadpool_limits(limits=1)
 
 
 @pytest.fixture(scope="session")
@@ -179,3 +191,88 @@ def store_settings(request, tmp_path):
         url = request.getfixturevalue("postgres_url")
         return Settings(store_backend="postgres", database_url=url, store_dir=tmp_path / "artifacts")
     return Settings(store_dir=tmp_path / "store")
+
+
+# ------------------------------------------------------------------ sharing the suite out between xdist workers
+# Measured with `--durations=0` (CI=true, PostgreSQL and Chromium on; two workers): a handful of modules that
+# drive real server processes take most of the time. xdist's default (`load`) hands out single tests, so a
+# module's fixtures are built again on each worker and the long tests may land together at the end. Instead
+# (pytest_xdist_make_scheduler below): one module is one unit of work (its module-scoped fixtures are built
+# once), except the modules in
+# SPLIT_MODULES, whose tests are long and independent, which go out one test at a time; and the units are
+# queued longest first (SLOW_FIRST: module paths or test ids, in that order), so that the last units to
+# start are short ones and the two workers finish together.
+SPLIT_MODULES = (
+    "tests/core/test_calibration.py",
+    "tests/test_jobs_processes.py",
+    "tests/test_replica_faults.py",
+    "tests/test_shutdown.py",
+)
+SLOW_FIRST = (
+    "tests/test_jobs_processes.py::test_fit_follows_its_job_and_jobs_lists_it_end_to_end",
+    "tests/test_replica_faults.py::test_a_database_outage_with_assigns_running_on_both_replicas",
+    "tests/test_replica_faults.py::test_a_replica_killed_mid_fit_leaves_the_other_serving_and_the_store_consistent",
+    "tests/test_jobs_processes.py::test_a_job_on_one_postgres_replica_is_seen_and_cancelled_through_another",
+    "tests/test_replicas.py",
+    "tests/test_workers.py",
+    "tests/core/test_calibration.py::test_every_p_value_is_calibrated_under_the_null[10000]",
+    "tests/test_shutdown.py::test_sigterm_finishes_requests_in_flight_and_exits_zero[2]",
+    "tests/test_cli_client.py",
+    "tests/api/test_segmentations.py",
+    "tests/core/test_drift.py",
+    "tests/engines/test_dask_engine.py",
+    "tests/test_shutdown.py::test_sigterm_finishes_requests_in_flight_and_exits_zero[1]",
+    "tests/store/test_filesystem.py",
+    "tests/store/test_faults.py",
+    "tests/test_jobs_processes.py",
+    "tests/core/test_calibration.py",
+)
+
+
+def unit_of(nodeid: str) -> str:
+    """The unit of work a test belongs to: its module, or the test itself in SPLIT_MODULES."""
+    module = nodeid.split("::", 1)[0]
+    return nodeid if module in SPLIT_MODULES else module
+
+
+def pytest_xdist_make_scheduler(config, log):
+    """`-n 2` alone means xdist's `load` (single tests); ours hands out the units of ``unit_of`` instead, in
+    the order of the collection (sorted below), not xdist's most-tests-first."""
+    if config.getvalue("dist") != "load":
+        return None                      # another --dist asked for explicitly: xdist's own
+    from xdist.scheduler import LoadScopeScheduling
+
+    class UnitScheduling(LoadScopeScheduling):
+        def _split_scope(self, nodeid: str) -> str:
+            return unit_of(nodeid)
+
+    config.option.loadscopereorder = False
+    return UnitScheduling(config, log)
+
+
+def _slow_rank(nodeid: str) -> int:
+    for rank, prefix in enumerate(SLOW_FIRST):
+        if nodeid == prefix or nodeid.startswith((prefix + "::", prefix + "[")):
+            return rank
+    return len(SLOW_FIRST)
+
+
+def pytest_collection_modifyitems(config, items):
+    for item in items:
+        # schemathesis names each generated test after its operation (``item.name``) but leaves its node id
+        # without it; xdist tells tests apart by node id, so 22 operations would run as one.
+        if getattr(item, "operation_label", None) and "[" not in item.nodeid:
+            _set_nodeid(item, f"{item.nodeid.split('::', 1)[0]}::{item.name}")
+    seen: set[str] = set()
+    duplicates = {item.nodeid for item in items if item.nodeid in seen or seen.add(item.nodeid)}
+    if duplicates:
+        raise pytest.UsageError(f"tests with the same id would run as one under xdist: {sorted(duplicates)}")
+    # Stable: within a rank the collection order (so a module's tests stay in their written order).
+    items.sort(key=lambda item: _slow_rank(item.nodeid))
+
+
+def _set_nodeid(item, nodeid: str) -> None:
+    if hasattr(item, "_id"):             # pytest 9: a structured id
+        item._id = type(item._id).parse(nodeid)
+    else:
+        item._nodeid = nodeid
