@@ -432,3 +432,37 @@ def test_fold_numbers_and_draws_depend_on_the_rows_not_on_the_blocks():
     assert not np.array_equal(folds_of(Where(0, 0), 1000, seed=4), whole)
     # Binomial(1000, 1/5) per fold: mean 200, sd 12.6; 5 sd either side.
     assert np.all(np.abs(np.bincount(whole, minlength=N_FOLDS) - 200) < 63)
+
+
+def test_what_the_server_receives_from_the_cluster_does_not_grow_with_the_blocks(dask_client, blobs, tmp_path,
+                                                                                 monkeypatch):
+    """The same rows fitted as 4 and as 16 blocks: the bytes this process receives from the cluster (the pickled
+    size of everything ``_Cluster.compute`` gathers) stay about the same, because the blocks' results are merged
+    on the workers. Gathering each block's result made them grow with the blocks (about 4x here)."""
+    import pickle
+
+    from service.engines import dask_engine
+
+    values, _ = blobs
+    received: list[int] = []
+    gather = dask_engine._Cluster.compute
+
+    def counting(self, *collections):
+        results = gather(self, *collections)
+        received.append(sum(len(pickle.dumps(result, protocol=5)) for result in results))
+        return results
+
+    monkeypatch.setattr(dask_engine._Cluster, "compute", counting)
+    monkeypatch.setattr(dask_engine, "MIN_BLOCK_ROWS", 250)
+    source = spill_records(values, FEATURES, tmp_path)
+    totals, fits = {}, {}
+    for blocks in (4, 16):
+        monkeypatch.setattr(dask_engine, "MAX_BLOCK_ROWS", values.shape[0] // blocks)
+        received.clear()
+        fits[blocks] = fit_on_dask(source, config(), client=dask_client)
+        totals[blocks] = sum(received)
+        assert fits[blocks].report["engine_details"]["partitions"] == blocks
+    # The same fit either way (the chunked digest of the rows, the chosen k) ...
+    assert fits[4].report["data_sha256"] == fits[16].report["data_sha256"] and fits[4].k == fits[16].k
+    # ... and 4x the blocks may not bring 4x the bytes: allow 25 % for the merged results' own variation.
+    assert totals[16] <= 1.25 * totals[4], totals

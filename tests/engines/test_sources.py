@@ -106,7 +106,7 @@ def test_order_statistics_match_numpy_on_ties_and_wide_ranges():
     everything = np.sort(np.concatenate(blocks).ravel())
 
     def compute_blocks(fn, *args):
-        return [fn(block, dask_ops.Where(i, 0), *args) for i, block in enumerate(blocks)]
+        return dask_ops.COMBINE[fn]([fn(block, dask_ops.Where(i, 0), *args) for i, block in enumerate(blocks)])
 
     ranks = [0, 1, 50_000, 100_000, 150_000, everything.size - 1]
     found = dask_ops.select(compute_blocks, dask_ops.observed_by_feature, [(0, r) for r in ranks])
