@@ -64,6 +64,14 @@ def peak_kib(pid: int) -> int:
     return 0
 
 
+def code_path() -> str:
+    """Where the running process imported the Dask engine's block functions from (so a run states which
+    checkout it measured: the server child and the workers must use the same one)."""
+    from service.engines import dask_ops
+
+    return str(Path(dask_ops.__file__).resolve().parents[2])
+
+
 def server(address: str, dataset: str) -> None:
     """The child: connect, fit, print one JSON line."""
     from distributed import Client
@@ -82,7 +90,7 @@ def server(address: str, dataset: str) -> None:
     after = peak_kib(os.getpid())
     client.close()
     print(json.dumps({"wall": wall, "server_before_kib": before, "server_peak_kib": after, "k": bundle.k,
-                      "components": bundle.report["components"]}))
+                      "components": bundle.report["components"], "server_code": code_path()}))
 
 
 def one_run(dataset: Path, workers: int, memory_limit: str, time_limit: float) -> dict:
@@ -98,6 +106,7 @@ def one_run(dataset: Path, workers: int, memory_limit: str, time_limit: float) -
         result = json.loads(child.stdout.strip().splitlines()[-1])
         with Client(cluster, set_as_default=False) as client:
             pids = client.run(os.getpid)
+            result["worker_code"] = sorted(set(client.run(code_path).values()))
         result["worker_peak_kib"] = sorted(peak_kib(pid) for pid in pids.values())
     return result
 
@@ -128,7 +137,8 @@ def main() -> None:
                 results.setdefault((n, workers), []).append(run)
                 print(f"round {round_} rows {n} workers {workers}: {run['wall']:.1f} s, worker peaks "
                       f"{[round(k / 1024) for k in run['worker_peak_kib']]} MiB, server "
-                      f"{run['server_before_kib'] / 1024:.0f} -> {run['server_peak_kib'] / 1024:.0f} MiB", flush=True)
+                      f"{run['server_before_kib'] / 1024:.0f} -> {run['server_peak_kib'] / 1024:.0f} MiB, load "
+                      f"{load_average()}, code {run['server_code']} (workers {run['worker_code']})", flush=True)
     print("\n| rows x 20 | workers | wall s (median) | peak per worker MiB | server peak MiB (before fit -> after) |")
     print("|---|---|---|---|---|")
     for (n, workers), runs in sorted(results.items()):

@@ -85,6 +85,7 @@ CSV_BLOCK_SIZE = "64MB"             # bytes of a CSV file per partition (a large
 SILHOUETTE_WORKING_MIB = 64          # scikit-learn's chunk size for the silhouette's pairwise distances
 WAIT_SECONDS = 0.25                 # how often a waiting fit looks at its cancel hook and the scheduler
 SCHEDULER_GRACE_SECONDS = 10.0      # a scheduler gone this long fails the fit
+FAN_IN = 8                          # block results merged per task of the merge tree on the workers
 
 Progress = Callable[[str, float], None]
 
@@ -183,26 +184,37 @@ class _Cluster:
         except Exception:  # noqa: BLE001
             return None
 
-    def blocks_map(self, fn: Callable, *args: Any) -> list[Any]:
-        """``fn(block, where, *args)`` on every block, on the workers; the list of their (small) results."""
+    def reduce(self, fn: Callable, *args: Any) -> Any:
+        """``fn(block, where, *args)`` on every block, merged by ``dask_ops.COMBINE[fn]``: all on the workers.
+
+        The blocks' results are merged in a tree (groups of FAN_IN consecutive results, level by level), so this
+        process receives one merged result, whatever the number of blocks: gathering every block's result here
+        made the server's peak grow with the blocks (a narrowing pass's histograms are a few MB per block). The
+        arguments (centroids, projections, fold models) enter the graph once, as one shared object, not once
+        per block's task."""
         import dask
 
-        call = dask.delayed(fn, pure=True)
-        return self.compute(*[call(block, where, *args) for block, where in zip(self.blocks, self.wheres)])
+        combine = ops.COMBINE[fn]
+        shared = dask.delayed(args, traverse=False)
+        call = dask.delayed(ops.apply_block, pure=True)
+        level = [call(fn, block, where, shared) for block, where in zip(self.blocks, self.wheres)]
+        merge = dask.delayed(combine, pure=True)
+        while len(level) > 1:
+            level = [merge(level[i:i + FAN_IN]) for i in range(0, len(level), FAN_IN)]
+        return self.compute(*level)[0]
 
     def select(self, producer: Callable, queries: list[tuple[int, int]]) -> np.ndarray:
-        return ops.select(self.blocks_map, producer, queries)
+        return ops.select(self.reduce, producer, queries)
 
     def medians(self, producer: Callable, counts: dict[int, int]) -> dict[int, float]:
         """np.median of each group's values (the mean of the two middle values for an even count)."""
-        found = ops.linear_quantiles(self.blocks_map, producer, counts,
+        found = ops.linear_quantiles(self.reduce, producer, counts,
                                      {g: np.array([0.5]) for g, n in counts.items() if n > 0})
         return {g: float(found[g][0]) if g in found else math.nan for g in counts}
 
     def rows(self, rows: np.ndarray) -> np.ndarray:
         """The raw rows at sorted global indices ``rows`` (a seeded sample)."""
-        parts = self.blocks_map(ops.seed_rows, rows)
-        return np.concatenate(parts, axis=0) if parts else np.empty((0, 0))
+        return self.reduce(ops.seed_rows, rows)
 
 
 # --------------------------------------------------------------------------- reading
@@ -474,16 +486,13 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
 
     # ---- column statistics and checks
     progress("statistics", STAGES["statistics"])
-    parts = cluster.blocks_map(ops.column_moments)
-    observed = sum(part["observed"] for part in parts)
-    sums = sum(part["sum"] for part in parts)
+    moments = cluster.reduce(ops.column_moments)
+    observed, sums = moments["observed"], moments["sum"]
     means = np.where(observed > 0, sums / np.maximum(observed, 1), np.nan)
-    deviations = sum(cluster.blocks_map(ops.squared_deviations, np.nan_to_num(means)))
+    deviations = cluster.reduce(ops.squared_deviations, np.nan_to_num(means))
     stats = {
-        "observed": observed, "infinite": sum(part["infinite"] for part in parts),
-        "min": np.min([part["min"] for part in parts], axis=0), "max": np.max([part["max"] for part in parts], axis=0),
-        "abs_max": np.max([part["abs_max"] for part in parts], axis=0),
-        "std": np.sqrt(deviations / np.maximum(observed, 1)),
+        "observed": observed, "infinite": moments["infinite"], "min": moments["min"], "max": moments["max"],
+        "abs_max": moments["abs_max"], "std": np.sqrt(deviations / np.maximum(observed, 1)),
     }
     keep, dropped = _column_checks(stats, features, config, named)
     config = dataclasses.replace(config, features=[features[j] for j in keep],
@@ -497,24 +506,22 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
         del wide                        # the full-width copies can go (lineage keeps them recomputable)
         blocks = narrower
         cluster = _Cluster(client, hook, blocks, wheres)
-        parts = cluster.blocks_map(ops.column_moments)
+        moments = cluster.reduce(ops.column_moments)
         observed, sums = observed[keep], sums[keep]
         means, stats = means[keep], {key: value[keep] for key, value in stats.items()}
     features = list(config.features)
     p = len(features)
     _config_checks(config, n, p)
     data_digest = _chunked_digest(cluster, lengths, n, p)
-    probes = [np.unique(np.concatenate([part["probe"][j] for part in parts])) for j in range(p)]
+    probes = moments["probe"]          # per column its DISTINCT_PROBE smallest distinct values
 
     # ---- medians, scaling
     median_of = cluster.medians(ops.observed_by_feature, {j: int(observed[j]) for j in range(p)})
     medians = np.array([median_of[j] for j in range(p)])
-    imputed_sum = sum(part["sum"] for part in cluster.blocks_map(ops.imputed_moments, medians, None))
-    imputed_mean = imputed_sum / n
-    imputed = cluster.blocks_map(ops.imputed_moments, medians, imputed_mean)
-    imputed_var = sum(part["ss"] for part in imputed) / n
-    imputed_min = np.min([part["min"] for part in imputed], axis=0)
-    imputed_max = np.max([part["max"] for part in imputed], axis=0)
+    imputed_mean = cluster.reduce(ops.imputed_moments, medians, None)["sum"] / n
+    imputed = cluster.reduce(ops.imputed_moments, medians, imputed_mean)
+    imputed_var = imputed["ss"] / n
+    imputed_min, imputed_max = imputed["min"], imputed["max"]
     imputer = _fitted_like(SimpleImputer(strategy="median"), p, statistics_=medians.copy())
     robust_stats = None
     if config.scaling == "standard":
@@ -526,7 +533,7 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
         scaler = _fitted_like(MinMaxScaler(), p, data_min_=imputed_min, data_max_=imputed_max,
                               data_range_=data_range, scale_=scale, min_=-imputed_min * scale, n_samples_seen_=n)
     elif config.scaling == "robust":
-        quartiles = ops.linear_quantiles(cluster.blocks_map, partial(ops.imputed_by_feature, medians=medians),
+        quartiles = ops.linear_quantiles(cluster.reduce, partial(ops.imputed_by_feature, medians=medians),
                                          {j: n for j in range(p)}, {j: np.array([0.25, 0.5, 0.75]) for j in range(p)})
         robust_stats = np.array([quartiles[j] for j in range(p)])
         scaler = _fitted_like(RobustScaler(), p, center_=robust_stats[:, 1],
@@ -570,11 +577,11 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
     progress("kmeans", STAGES["kmeans"])
     ks = list(range(config.k_min, config.k_max + 1))
     centres = _kmeans_all_k(cluster, steps, config, ks, n, float(np.mean(space_var)) * TOL, progress)
-    finals = cluster.blocks_map(ops.lloyd_step, steps, [centres[k] for k in ks])
+    finals = cluster.reduce(ops.lloyd_step, steps, [centres[k] for k in ks])
     curve, sizes_by_k = [], {}
     for i, k in enumerate(ks):
-        inertia = float(sum(part[i][2] for part in finals))
-        sizes_by_k[k] = sum(part[i][1] for part in finals)
+        inertia = float(finals[i][2])
+        sizes_by_k[k] = finals[i][1]
         curve.append({"k": k, "distortion": inertia / n, "inertia": inertia, "silhouette": None})
 
     # ---- silhouette on a seeded sample, choice of k
@@ -617,7 +624,7 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
                                                                         replace=False))
     kinds, edges = [], []
     decile_groups = {j: int(observed[j]) for j in range(p) if probes[j].size > MAX_CATEGORIES}
-    deciles = ops.linear_quantiles(cluster.blocks_map, ops.observed_by_feature, decile_groups,
+    deciles = ops.linear_quantiles(cluster.reduce, ops.observed_by_feature, decile_groups,
                                    {j: DECILES for j in decile_groups})
     for j in range(p):
         if j in decile_groups:
@@ -626,13 +633,12 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
         else:
             kinds.append("categories")
             edges.append(probes[j])
-    counts = cluster.blocks_map(ops.bin_counts, kinds, edges)
-    residual_sample = (np.concatenate(cluster.blocks_map(ops.gather_values, calibration["producer"],
-                                                         reference_rows, k))
+    counts = cluster.reduce(ops.bin_counts, kinds, edges)
+    residual_sample = (cluster.reduce(ops.gather_values, calibration["producer"], reference_rows, k)
                        if has_residual else np.zeros(reference_rows.size))
     reference = ReferenceProfile(
         n_records=n, bin_kinds=kinds, bin_edges=edges,
-        bin_counts=[sum(part[j] for part in counts) for j in range(p)],
+        bin_counts=list(counts),
         means=means.copy(), stds=stats["std"].copy(), missing_share=(n - observed) / n,
         missing_count=(n - observed).astype(np.int64), sample=cluster.rows(reference_rows),
         segment_counts=sizes.copy(), outlier_count=int(calibration["flagged"].sum()),
@@ -679,7 +685,8 @@ def _chunked_digest(cluster: _Cluster, lengths: list[int], n: int, p: int, chunk
                 whole = low == 0 and high == lengths[i]
                 pieces.append(cluster.blocks[i] if whole else slice_of(cluster.blocks[i], int(low), int(high)))
         tasks.append(digest_of(*pieces))
-    return combine_chunk_digests(n, p, cluster.compute(*tasks), chunk_rows)
+    # The chunks' digests are put together on a worker too: this process receives the one digest string.
+    return cluster.compute(dask.delayed(combine_chunk_digests, pure=True)(n, p, tasks, chunk_rows))[0]
 
 
 def _columns(block: np.ndarray, keep: list[int]) -> np.ndarray:
@@ -694,7 +701,7 @@ def _kmeans_all_k(cluster: _Cluster, steps: Steps, config: FitConfig, ks: list[i
     candidates, _ = steps.space(first)
     oversampling = 2.0 * max(ks)
     for round_ in range(KMEANS_PARALLEL_MAX_ROUNDS):
-        phi = float(sum(cluster.blocks_map(ops.candidate_cost, steps, candidates)))
+        phi = float(cluster.reduce(ops.candidate_cost, steps, candidates))
         distinct = np.unique(candidates, axis=0).shape[0]
         if phi == 0.0:
             if distinct < max(ks):
@@ -703,13 +710,13 @@ def _kmeans_all_k(cluster: _Cluster, steps: Steps, config: FitConfig, ks: list[i
             break
         if round_ >= KMEANS_PARALLEL_ROUNDS and distinct >= max(ks):
             break
-        drawn = cluster.blocks_map(ops.candidate_draw, steps, candidates, phi, oversampling, config.seed, round_)
-        candidates = np.concatenate([candidates, *drawn], axis=0)
+        drawn = cluster.reduce(ops.candidate_draw, steps, candidates, phi, oversampling, config.seed, round_)
+        candidates = np.concatenate([candidates, drawn], axis=0)
     candidates = np.unique(candidates, axis=0)
     if candidates.shape[0] < max(ks):
         raise InvalidInput(f"k (max {max(ks)}) exceeds the distinct records the k-means|| draw found "
                            f"({candidates.shape[0]}); choose a smaller k", field="k")
-    weights = sum(cluster.blocks_map(ops.candidate_weights, steps, candidates)).astype(float)
+    weights = cluster.reduce(ops.candidate_weights, steps, candidates).astype(float)
     centres = {}
     for k in ks:
         local = KMeans(n_clusters=k, n_init=config.n_init, random_state=config.seed)
@@ -718,11 +725,10 @@ def _kmeans_all_k(cluster: _Cluster, steps: Steps, config: FitConfig, ks: list[i
     for iteration in range(MAX_ITER):
         if not active:
             break
-        parts = cluster.blocks_map(ops.lloyd_step, steps, [centres[k] for k in active])
+        sums = cluster.reduce(ops.lloyd_step, steps, [centres[k] for k in active])
         still = []
         for i, k in enumerate(active):
-            member_sum = sum(part[i][0] for part in parts)
-            member_rows = sum(part[i][1] for part in parts)
+            member_sum, member_rows = sums[i][0], sums[i][1]
             updated = np.where(member_rows[:, None] > 0, member_sum / np.maximum(member_rows, 1)[:, None], centres[k])
             shift = float(((updated - centres[k]) ** 2).sum())
             centres[k] = updated
@@ -733,13 +739,11 @@ def _kmeans_all_k(cluster: _Cluster, steps: Steps, config: FitConfig, ks: list[i
     return centres
 
 
-def _fold_models(statistics: list[dict[str, np.ndarray]], steps: Steps, config: FitConfig, raw_centroids: np.ndarray,
+def _fold_models(total: dict[str, np.ndarray], steps: Steps, config: FitConfig, raw_centroids: np.ndarray,
                  n_components: int | None, shift: np.ndarray, k: int, p: int) -> tuple[list[Steps], list[np.ndarray]]:
-    """Each fold's steps and starting centroids, fitted on the other folds from their sufficient statistics."""
-    total = {key: sum(part[key] for part in statistics) for key in ("rows", "sum", "cross", "member_sum",
-                                                                    "member_rows")}
-    minima = np.min([part["min"] for part in statistics], axis=0)
-    maxima = np.max([part["max"] for part in statistics], axis=0)
+    """Each fold's steps and starting centroids, fitted on the other folds from their sufficient statistics
+    (``fold_statistics`` of all blocks)."""
+    minima, maxima = total["min"], total["max"]
     fold_steps, fold_centroids = [], []
     for f in range(N_FOLDS):
         rows = total["rows"].sum() - total["rows"][f]
@@ -805,20 +809,19 @@ def _calibrate(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centr
                robust_stats: np.ndarray | None, imputed_mean: np.ndarray) -> dict[str, Any]:
     """Held-out thresholds (see ``service.core.calibration`` and this module's docstring)."""
     k, q, seed = centroids.shape[0], config.outlier_quantile, config.seed
-    statistics = cluster.blocks_map(ops.fold_statistics, steps.medians, imputed_mean, steps, centroids, seed)
+    statistics = cluster.reduce(ops.fold_statistics, steps.medians, imputed_mean, steps, centroids, seed)
     fold_steps, fold_centroids = _fold_models(statistics, steps, config, raw_centroids, n_components, imputed_mean,
                                               k, p)
-    fold_rows = np.array([part["rows"] for part in statistics]).sum(axis=0)
+    fold_rows = statistics["rows"]
     if k > 1:
         active = [f for f in range(N_FOLDS) if fold_rows.sum() - fold_rows[f] >= k]
         for _ in range(MAX_ITER):
             if not active:
                 break
-            parts = cluster.blocks_map(ops.fold_lloyd_step, fold_steps, fold_centroids, seed)
+            sums = cluster.reduce(ops.fold_lloyd_step, fold_steps, fold_centroids, seed)
             still = []
             for f in active:
-                member_sum = sum(part[f][0] for part in parts)
-                member_rows = sum(part[f][1] for part in parts)
+                member_sum, member_rows = sums[f][0], sums[f][1]
                 updated = np.where(member_rows[:, None] > 0, member_sum / np.maximum(member_rows, 1)[:, None],
                                    fold_centroids[f])
                 shift = float(((updated - fold_centroids[f]) ** 2).sum())
@@ -828,7 +831,7 @@ def _calibrate(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centr
                 if shift > TOL * _space_variance(fold_steps[f], statistics, f, p):
                     still.append(f)
             active = still
-    member_rows = np.array([part["member_rows"] for part in statistics]).sum(axis=0)     # (folds, k) held in fold
+    member_rows = statistics["member_rows"]                                               # (folds, k) held in fold
     train_rows = member_rows.sum(axis=0) - member_rows                                    # (folds, k) training part
     in_sample = partial(ops.fold_in_sample_scores, final=steps, centroids=centroids, fold_steps=fold_steps,
                         fold_centroids=fold_centroids, seed=seed)
@@ -863,7 +866,7 @@ def _calibrate(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centr
             at += 2
     pooled_residual = float(picked[at]) if has_residual else 0.0
     residual_median = float((picked[at + 1] + picked[at + 2]) / 2) if has_residual else 0.0
-    flagged = np.asarray(sum(cluster.blocks_map(ops.scores_above, held, np.arange(k), limits)), dtype=np.int64)
+    flagged = np.asarray(cluster.reduce(ops.scores_above, held, np.arange(k), limits), dtype=np.int64)
 
     final_groups = {2 * k: n, 2 * k + 1: n}
     for c in range(k):
@@ -900,10 +903,8 @@ def _calibrate(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centr
     }
 
 
-def _space_variance(steps: Steps, statistics: list[dict[str, np.ndarray]], f: int, p: int) -> float:
-    rows = sum(part["rows"] for part in statistics)
-    sums = sum(part["sum"] for part in statistics)
-    cross = sum(part["cross"] for part in statistics)
+def _space_variance(steps: Steps, statistics: dict[str, np.ndarray], f: int, p: int) -> float:
+    rows, sums, cross = statistics["rows"], statistics["sum"], statistics["cross"]
     count = rows.sum() - rows[f]
     mean = (sums.sum(axis=0) - sums[f]) / count
     covariance = (cross.sum(axis=0) - cross[f]) / count - np.outer(mean, mean)
@@ -933,11 +934,11 @@ def _profiles(cluster: _Cluster, steps: Steps, centroids: np.ndarray, raw_centro
               ) -> list[dict[str, Any]]:
     """The report's segments, as ``service.core.fit._describe_segments`` (labels = the assign rule here)."""
     k, p = centroids.shape[0], len(config.features)
-    first = cluster.blocks_map(ops.segment_moments, steps, centroids, None)
-    observed = sum(part["observed"] for part in first)
-    means = np.where(observed > 0, sum(part["sum"] for part in first) / np.maximum(observed, 1), np.nan)
-    second = cluster.blocks_map(ops.segment_moments, steps, centroids, np.nan_to_num(means))
-    stds = np.where(observed > 0, np.sqrt(sum(part["sum"] for part in second) / np.maximum(observed, 1)), np.nan)
+    first = cluster.reduce(ops.segment_moments, steps, centroids, None)
+    observed = first["observed"]
+    means = np.where(observed > 0, first["sum"] / np.maximum(observed, 1), np.nan)
+    second = cluster.reduce(ops.segment_moments, steps, centroids, np.nan_to_num(means))
+    stds = np.where(observed > 0, np.sqrt(second["sum"] / np.maximum(observed, 1)), np.nan)
     medians = cluster.medians(partial(ops.observed_by_segment_feature, steps=steps, centroids=centroids),
                               {c * p + j: int(observed[c, j]) for c in range(k) for j in range(p)})
     n = int(sizes.sum())

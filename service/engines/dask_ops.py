@@ -1,8 +1,10 @@
 """Pieces of the Dask fit that run on the workers: per-block functions, and exact order statistics.
 
-Every function here takes one block of the raw training matrix (rows x features, float64, NaN = missing) and
-returns a small aggregate (sums, counts, a histogram, a few rows). The server only combines aggregates; the
-rows stay on the workers. Functions are module-level so the workers import them by name (the workers must
+Every block function here takes one block of the raw training matrix (rows x features, float64, NaN = missing)
+and returns a small aggregate (sums, counts, a histogram, a few rows); ``COMBINE`` names, for each, the function
+that merges a list of such aggregates into one of the same form. The engine runs the merges on the workers too
+(a tree of small fan-in), so the server receives one merged aggregate per step, whatever the number of blocks;
+the rows stay on the workers. Functions are module-level so the workers import them by name (the workers must
 run the same segscore and library versions as the server).
 
 Exact order statistics (``select``) narrow an interval around each requested rank with histograms, one pass
@@ -12,7 +14,9 @@ medians and quantiles are exact, not approximations.
 
 from __future__ import annotations
 
+import operator
 from dataclasses import dataclass
+from functools import reduce
 from typing import Any, Callable
 
 import numpy as np
@@ -97,8 +101,7 @@ def column_moments(block: np.ndarray, where: Where) -> dict[str, Any]:
     safe = np.where(finite, block, 0.0)
     probe = []
     for j in range(block.shape[1]):
-        distinct = np.unique(block[finite[:, j], j])
-        probe.append(distinct[:DISTINCT_PROBE])
+        probe.append(smallest_distinct([block[finite[:, j], j]]))
     return {
         "rows": block.shape[0],
         "observed": observed.sum(axis=0),
@@ -288,10 +291,12 @@ def group_extent(block: np.ndarray, where: Where, producer: Callable, groups: np
 def narrow(block: np.ndarray, where: Where, producer: Callable, groups: np.ndarray, low: np.ndarray,
            high: np.ndarray, high_closed: np.ndarray, pull: np.ndarray, histogram: np.ndarray
            ) -> tuple[np.ndarray, dict[int, np.ndarray]]:
-    """One narrowing pass: per query, a BINS-bin histogram of its group's values in [low, high) (or
-    [low, high]), or those values themselves when ``pull`` is set."""
+    """One narrowing pass: per query still narrowing (``histogram`` set), a BINS-bin histogram of its group's
+    values in [low, high) (or [low, high]): row i of the counts for the i-th such query, none for the others;
+    per query with ``pull`` set, those values themselves."""
     values, value_groups = _sorted_by_group(producer, block, where)
-    counts = np.zeros((groups.size, BINS), dtype=np.int64)
+    counts = np.zeros((int(np.count_nonzero(histogram)), BINS), dtype=np.int64)
+    row_of = {int(q): i for i, q in enumerate(np.flatnonzero(histogram))}
     pulled: dict[int, np.ndarray] = {}
     for q, g in enumerate(groups):
         if not (pull[q] or histogram[q]):
@@ -306,7 +311,7 @@ def narrow(block: np.ndarray, where: Where, producer: Callable, groups: np.ndarr
         else:
             edges = np.linspace(low[q], high[q], BINS + 1)
             index = np.clip(np.searchsorted(edges, inside, side="right") - 1, 0, BINS - 1)
-            counts[q] = np.bincount(index, minlength=BINS)
+            counts[row_of[q]] = np.bincount(index, minlength=BINS)
     return counts, pulled
 
 
@@ -315,7 +320,8 @@ def select(compute_blocks: Callable, producer: Callable, queries: list[tuple[int
     values, NaN when the group is empty (rank clipped to the group's count).
 
     ``compute_blocks(fn, *args)`` runs ``fn(block, where, *args)`` on every block on the cluster and returns
-    the per-block results; ``producer(block, where) -> (values, groups)`` yields each block's values.
+    their results merged by ``COMBINE[fn]``; ``producer(block, where) -> (values, groups)`` yields each block's
+    values.
     """
     n_queries = len(queries)
     answer = np.full(n_queries, np.nan)
@@ -323,10 +329,9 @@ def select(compute_blocks: Callable, producer: Callable, queries: list[tuple[int
         return answer
     groups = np.array([g for g, _ in queries], dtype=np.int64)
     ranks = np.array([r for _, r in queries], dtype=np.int64)
-    extents = compute_blocks(group_extent, producer, groups)
-    count = sum(e[:, 0] for e in extents).astype(np.int64)
-    low = np.min([e[:, 1] for e in extents], axis=0)
-    high = np.max([e[:, 2] for e in extents], axis=0)
+    extent = compute_blocks(group_extent, producer, groups)
+    count = extent[:, 0].astype(np.int64)
+    low, high = extent[:, 1].copy(), extent[:, 2].copy()
     ranks = np.clip(ranks, 0, np.maximum(count - 1, 0))
     high_closed = np.ones(n_queries, dtype=bool)
     below = np.zeros(n_queries, dtype=np.int64)      # the group's values under ``low``
@@ -340,18 +345,17 @@ def select(compute_blocks: Callable, producer: Callable, queries: list[tuple[int
             break
         pull = ~done & ((inside <= PULL_LIMIT) | (passes == MAX_NARROWING_PASSES))
         histogram = ~done & ~pull
-        parts = compute_blocks(narrow, producer, groups, low, high, high_closed, pull, histogram)
+        totals, pulled = compute_blocks(narrow, producer, groups, low, high, high_closed, pull, histogram)
         for q in np.flatnonzero(pull):
-            values = np.sort(np.concatenate([part[1][q] for part in parts if q in part[1]]))
+            values = np.sort(pulled[int(q)])
             answer[q] = values[ranks[q] - below[q]]
             done[q] = True
-        totals = sum(part[0] for part in parts)
-        for q in np.flatnonzero(histogram):
+        for i, q in enumerate(np.flatnonzero(histogram)):
             edges = np.linspace(low[q], high[q], BINS + 1)
-            cumulative = np.cumsum(totals[q])
+            cumulative = np.cumsum(totals[i])
             b = int(np.searchsorted(cumulative, ranks[q] - below[q], side="right"))
             below[q] += cumulative[b - 1] if b else 0
-            inside[q] = totals[q, b]
+            inside[q] = totals[i, b]
             high_closed[q] = high_closed[q] and b == BINS - 1
             low[q], high[q] = edges[b], edges[b + 1]
             if b < BINS - 1 and low[q] == high[q]:
@@ -462,3 +466,85 @@ def held_out_scores(block: np.ndarray, where: Where, final: Steps, centroids: np
     n = block.shape[0]
     return (np.concatenate([score, score, residual]),
             np.concatenate([segments, np.full(n, k + 1), np.full(n, k)]))
+
+
+# --------------------------------------------------------------------------- merging block results
+# Each merge takes the results of consecutive blocks, in block order, and returns one result of the same form,
+# so merges can be merged again (a tree) and row-ordered results stay in row order.
+def apply_block(fn: Callable, block: np.ndarray, where: Where, args: tuple) -> Any:
+    """``fn(block, where, *args)``: the arguments arrive as one object, shared by every block's task."""
+    return fn(block, where, *args)
+
+
+def smallest_distinct(arrays: list[np.ndarray]) -> np.ndarray:
+    """The DISTINCT_PROBE smallest distinct values of the arrays together (sorted): a feature with at most
+    MAX_CATEGORIES distinct values gets them all, and more than that is all the drift bins need to know."""
+    return np.unique(np.concatenate(arrays))[:DISTINCT_PROBE]
+
+
+def combine_sums(parts: list[Any]) -> Any:
+    """Elementwise sum of results of one form: numbers, arrays, and lists, tuples or dicts of them."""
+    first = parts[0]
+    if isinstance(first, dict):
+        return {key: combine_sums([part[key] for part in parts]) for key in first}
+    if isinstance(first, (list, tuple)):
+        return type(first)(combine_sums([part[i] for part in parts]) for i in range(len(first)))
+    return reduce(operator.add, parts)
+
+
+def combine_statistics(parts: list[dict[str, Any]]) -> dict[str, Any]:
+    """Merge dicts of column or fold statistics: "min" by minimum, "max" and "abs_max" by maximum, "probe"
+    (per column) by ``smallest_distinct``, every other entry by sum."""
+    out = {}
+    for key in parts[0]:
+        values = [part[key] for part in parts]
+        if key == "min":
+            out[key] = reduce(np.minimum, values)
+        elif key in ("max", "abs_max"):
+            out[key] = reduce(np.maximum, values)
+        elif key == "probe":
+            out[key] = [smallest_distinct([value[j] for value in values]) for j in range(len(values[0]))]
+        else:
+            out[key] = combine_sums(values)
+    return out
+
+
+def combine_rows(parts: list[np.ndarray]) -> np.ndarray:
+    """Rows (or values) of consecutive blocks, in order."""
+    return np.concatenate(parts, axis=0)
+
+
+def combine_extents(parts: list[np.ndarray]) -> np.ndarray:
+    """``group_extent`` results: counts added, minima and maxima kept."""
+    stacked = np.stack(parts)
+    return np.column_stack([stacked[:, :, 0].sum(axis=0), stacked[:, :, 1].min(axis=0), stacked[:, :, 2].max(axis=0)])
+
+
+def combine_narrowing(parts: list[tuple[np.ndarray, dict[int, np.ndarray]]]
+                      ) -> tuple[np.ndarray, dict[int, np.ndarray]]:
+    """``narrow`` results: histograms added, each pulled query's values put together."""
+    counts = combine_sums([part[0] for part in parts])
+    pulled = {q: np.concatenate([part[1][q] for part in parts if q in part[1]])
+              for q in sorted({q for part in parts for q in part[1]})}
+    return counts, pulled
+
+
+# How the results of each block function merge.
+COMBINE: dict[Callable, Callable[[list[Any]], Any]] = {
+    column_moments: combine_statistics,
+    squared_deviations: combine_sums,
+    imputed_moments: combine_statistics,
+    seed_rows: combine_rows,
+    candidate_cost: combine_sums,
+    candidate_draw: combine_rows,
+    candidate_weights: combine_sums,
+    lloyd_step: combine_sums,
+    fold_lloyd_step: combine_sums,
+    fold_statistics: combine_statistics,
+    segment_moments: combine_sums,
+    bin_counts: combine_sums,
+    scores_above: combine_sums,
+    gather_values: combine_rows,
+    group_extent: combine_extents,
+    narrow: combine_narrowing,
+}

@@ -104,6 +104,10 @@ def test_dask_fit_agrees_with_the_in_memory_fit_and_the_reference_libraries(blob
     reference = PCA(n_components=0.9, svd_solver="full").fit(StandardScaler().fit_transform(values))
     assert np.allclose(on_cluster.report["explained_variance_ratio"], reference.explained_variance_ratio_,
                        rtol=0, atol=1e-6)
+    assert_profiles_and_reference(on_cluster, in_memory, values)
+
+
+def assert_profiles_and_reference(on_cluster, in_memory, values):
     # Profiles: pandas group-by means (and population stds, medians) over the version's own segments.
     segments = labels_of(on_cluster, values)
     grouped = pd.DataFrame(values, columns=FEATURES).groupby(segments)
@@ -432,3 +436,43 @@ def test_fold_numbers_and_draws_depend_on_the_rows_not_on_the_blocks():
     assert not np.array_equal(folds_of(Where(0, 0), 1000, seed=4), whole)
     # Binomial(1000, 1/5) per fold: mean 200, sd 12.6; 5 sd either side.
     assert np.all(np.abs(np.bincount(whole, minlength=N_FOLDS) - 200) < 63)
+
+
+def test_what_the_server_receives_from_the_cluster_does_not_grow_with_the_blocks(dask_client, blobs, in_memory,
+                                                                                 tmp_path, monkeypatch):
+    """The same rows fitted as 4 and as 16 blocks: the bytes this process receives from the cluster (the pickled
+    size of everything ``_Cluster.compute`` gathers) stay about the same, because the blocks' results are merged
+    on the workers. Gathering each block's result made them grow with the blocks (about 4x here)."""
+    import pickle
+
+    from service.engines import dask_engine
+
+    values, _ = blobs
+    received: list[int] = []
+    gather = dask_engine._Cluster.compute
+
+    def counting(self, *collections):
+        results = gather(self, *collections)
+        received.append(sum(len(pickle.dumps(result, protocol=5)) for result in results))
+        return results
+
+    monkeypatch.setattr(dask_engine._Cluster, "compute", counting)
+    monkeypatch.setattr(dask_engine, "MIN_BLOCK_ROWS", 250)
+    source = spill_records(values, FEATURES, tmp_path)
+    totals, fits = {}, {}
+    for blocks in (4, 16):
+        monkeypatch.setattr(dask_engine, "MAX_BLOCK_ROWS", values.shape[0] // blocks)
+        received.clear()
+        fits[blocks] = fit_on_dask(source, config(), client=dask_client)
+        totals[blocks] = sum(received)
+        assert fits[blocks].report["engine_details"]["partitions"] == blocks
+    # The same fit either way (the chunked digest of the rows, the chosen k), and the results merged over
+    # several blocks still match pandas' group-by and numpy's sample and deciles (the other fits here are one
+    # block) ...
+    assert fits[4].report["data_sha256"] == fits[16].report["data_sha256"] == data_chunks_sha256(values)
+    assert fits[4].k == fits[16].k == in_memory.k
+    assert adjusted_rand_score(labels_of(in_memory, values), labels_of(fits[16], values)) >= 0.95
+    for fit in fits.values():
+        assert_profiles_and_reference(fit, in_memory, values)
+    # ... and 4x the blocks may not bring 4x the bytes: allow 25 % for the merged results' own variation.
+    assert totals[16] <= 1.25 * totals[4], totals

@@ -106,8 +106,31 @@ def test_order_statistics_match_numpy_on_ties_and_wide_ranges():
     everything = np.sort(np.concatenate(blocks).ravel())
 
     def compute_blocks(fn, *args):
-        return [fn(block, dask_ops.Where(i, 0), *args) for i, block in enumerate(blocks)]
+        return dask_ops.COMBINE[fn]([fn(block, dask_ops.Where(i, 0), *args) for i, block in enumerate(blocks)])
 
     ranks = [0, 1, 50_000, 100_000, 150_000, everything.size - 1]
     found = dask_ops.select(compute_blocks, dask_ops.observed_by_feature, [(0, r) for r in ranks])
     assert np.array_equal(found, everything[ranks])
+
+
+def test_column_statistics_merged_over_blocks_equal_those_of_the_whole_matrix():
+    """dask_ops.COMBINE merges block results in a tree on the workers: merging the column statistics of 7 blocks
+    (in groups of 3, then again) gives numpy's counts, sums, extremes and distinct values of the whole matrix;
+    the drift-bin probe keeps each column's 21 smallest distinct values (all of them for a column with fewer)."""
+    rng = np.random.default_rng(5)
+    values = np.column_stack([rng.integers(0, 8, 7000).astype(float), rng.normal(size=7000), np.full(7000, 2.5)])
+    values[rng.random(values.shape) < 0.05] = np.nan
+    bounds = [0, 1, 900, 2000, 2001, 4500, 6000, 7000]
+    merge = dask_ops.COMBINE[dask_ops.column_moments]
+    parts = [dask_ops.column_moments(values[a:b], dask_ops.Where(i, a))
+             for i, (a, b) in enumerate(zip(bounds, bounds[1:]))]
+    merged = merge([merge(parts[i:i + 3]) for i in range(0, len(parts), 3)])
+    assert merged["rows"] == 7000
+    assert np.array_equal(merged["observed"], (~np.isnan(values)).sum(axis=0))
+    assert np.allclose(merged["sum"], np.nansum(values, axis=0), rtol=1e-12, atol=0)
+    assert np.array_equal(merged["min"], np.nanmin(values, axis=0))
+    assert np.array_equal(merged["max"], np.nanmax(values, axis=0))
+    for j in range(values.shape[1]):
+        distinct = np.unique(values[~np.isnan(values[:, j]), j])
+        assert np.array_equal(merged["probe"][j], distinct[:dask_ops.DISTINCT_PROBE])
+    assert merged["probe"][0].size == 8 and merged["probe"][1].size == dask_ops.DISTINCT_PROBE
