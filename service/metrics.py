@@ -10,13 +10,15 @@ from __future__ import annotations
 
 import logging
 import os
+import threading
 import time
+from bisect import bisect_left
 from typing import Any, Callable, Iterable
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest, multiprocess
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
-__all__ = ["CONTENT_TYPE_LATEST", "Metrics", "MetricsMiddleware"]
+__all__ = ["CONTENT_TYPE_LATEST", "Metrics", "MetricsMiddleware", "RequestTally"]
 
 request_log = logging.getLogger("segscore.requests")
 
@@ -28,6 +30,56 @@ def multiprocess_mode() -> bool:
     return bool(os.environ.get(MULTIPROCESS_DIRECTORY_VARIABLE))
 
 
+LATENCY_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30, 60)
+
+
+class RequestTally:
+    """The per-request counters (requests by method, route and status; latency by route; records assigned by
+    segmentation, version and segment; outliers by segmentation) as plain integers, added into the Prometheus
+    series only when they are read (``Metrics.flush``, before each exposition).
+
+    Per request that is one lock and a few dict updates, where the Prometheus objects cost a label look-up, a
+    lock per series and, for the latency histogram, a Python loop over the buckets. Counts are added on the
+    event loop and taken by ``/metrics`` from a worker thread, hence the lock. With several worker processes
+    the series are written at once instead (``Metrics.tally`` is None): another worker's scrape reads them from
+    the files, not from this process's memory."""
+
+    def __init__(self, bounds: Iterable[float]) -> None:
+        self.bounds = (*map(float, bounds), float("inf"))       # the histogram's upper bounds, +Inf last
+        self.lock = threading.Lock()
+        self.requests: dict[tuple[str, str, int], int] = {}
+        self.latency: dict[str, list[float]] = {}               # route -> per-bucket counts, then the sum
+        self.assigned: dict[tuple[str, int, int], int] = {}
+        self.outliers: dict[str, int] = {}
+
+    def request(self, method: str, route: str, status: int, elapsed: float) -> None:
+        key = (method, route, status)
+        with self.lock:
+            requests = self.requests
+            requests[key] = requests.get(key, 0) + 1
+            series = self.latency.get(route)
+            if series is None:
+                series = self.latency[route] = [0] * len(self.bounds) + [0.0]
+            series[bisect_left(self.bounds, elapsed)] += 1      # the first bound >= elapsed, as observe() picks
+            series[-1] += elapsed
+
+    def assigned_records(self, name: str, version: int, counts: Iterable[tuple[int, int]], flagged: int) -> None:
+        with self.lock:
+            assigned = self.assigned
+            for segment, count in counts:
+                key = (name, version, segment)
+                assigned[key] = assigned.get(key, 0) + count
+            if flagged:
+                self.outliers[name] = self.outliers.get(name, 0) + flagged
+
+    def take(self) -> tuple[dict, dict, dict, dict]:
+        """What was counted since the last call (and start afresh)."""
+        with self.lock:
+            taken = self.requests, self.latency, self.assigned, self.outliers
+            self.requests, self.latency, self.assigned, self.outliers = {}, {}, {}, {}
+        return taken
+
+
 class Metrics:
     def __init__(self) -> None:
         self.multiprocess = multiprocess_mode()
@@ -37,9 +89,7 @@ class Metrics:
         self.requests = Counter("segscore_http_requests", "HTTP requests by route and status",
                                 ["method", "route", "status"], registry=self.registry)
         self.latency = Histogram("segscore_http_request_seconds", "HTTP request time by route",
-                                 ["route"], registry=self.registry,
-                                 buckets=(0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5,
-                                          5, 10, 30, 60))
+                                 ["route"], registry=self.registry, buckets=LATENCY_BUCKETS)
         self.assigned = Counter("segscore_records_assigned", "Records assigned, by segmentation, version and segment",
                                 ["segmentation", "version", "segment"], registry=self.registry)
         self.outliers = Counter("segscore_outliers_flagged", "Assigned records flagged as outliers",
@@ -65,9 +115,13 @@ class Metrics:
                                          "an assign call tallied it itself, since start (all workers)",
                                          registry=self.registry, multiprocess_mode="livesum")
 
-        # Label look-ups bound once per label set: ``labels()`` costs a lock and a tuple hash per call, several
-        # times per request on the assign path. Series are never removed, so a bound child stays valid; the
-        # label sets are bounded by the route table, the statuses and the stored versions' segments.
+        # One server process: requests and assigned records are tallied as integers (``RequestTally``) and added
+        # into the series above when /metrics reads them. Several: written to the series at once (see there).
+        self.tally: RequestTally | None = None if self.multiprocess else RequestTally(LATENCY_BUCKETS)
+        self._flush_lock = threading.Lock()
+        # Label look-ups bound once per label set: ``labels()`` costs a lock and a tuple hash per call. Series
+        # are never removed, so a bound child stays valid; the label sets are bounded by the route table, the
+        # statuses and the stored versions' segments.
         self._request_series: dict[tuple[str, str, int], tuple[Any, Any]] = {}
         self._assigned_series: dict[tuple[str, int, int], Any] = {}
         self._outlier_series: dict[str, Any] = {}
@@ -89,7 +143,42 @@ class Metrics:
 
     DRIFT_STATUS_NUMBER = {"stable": 0, "watch": 1, "alert": 2}
 
-    def request_series(self, method: str, route: str, status: int) -> tuple[Any, Any]:
+    def flush(self) -> None:
+        """Add what the tally counted since the last flush into the Prometheus series."""
+        if self.tally is None:
+            return
+        with self._flush_lock:            # two scrapes at once: each batch of counts is added exactly once
+            requests, latency, assigned, outliers = self.tally.take()
+            for (method, route, status), count in requests.items():
+                self._request_series_of(method, route, status)[0].inc(count)
+            for route, series in latency.items():
+                histogram = self.latency.labels(route)
+                # prometheus_client keeps a histogram child's per-bucket counts and sum as value objects
+                # (``_buckets``, ``_sum``; what ``observe`` increments): adding the tallied counts there gives the
+                # same exposition as one ``observe`` per request.
+                for bucket, count in zip(histogram._buckets, series):
+                    if count:
+                        bucket.inc(count)
+                histogram._sum.inc(series[-1])
+            for (name, version, segment), count in assigned.items():
+                self._assigned_series_of(name, version, segment).inc(count)
+            for name, count in outliers.items():
+                self._outlier_series_of(name).inc(count)
+
+    def _assigned_series_of(self, name: str, version: int, segment: int):
+        key = (name, version, segment)
+        series = self._assigned_series.get(key)
+        if series is None:
+            series = self._assigned_series[key] = self.assigned.labels(name, str(version), str(segment))
+        return series
+
+    def _outlier_series_of(self, name: str):
+        series = self._outlier_series.get(name)
+        if series is None:
+            series = self._outlier_series[name] = self.outliers.labels(name)
+        return series
+
+    def _request_series_of(self, method: str, route: str, status: int) -> tuple[Any, Any]:
         """(request counter, latency histogram) bound to one request's labels."""
         key = (method, route, status)
         series = self._request_series.get(key)
@@ -102,9 +191,12 @@ class Metrics:
                      log_request: bool) -> None:
         """Count and time one answered request (and write its access-log line when ``log_request``): the
         middleware's end of every request, and the assign lane's (service/api/assign.py)."""
-        count, latency = self.request_series(method, template, status)
-        count.inc()
-        latency.observe(elapsed)
+        if self.tally is not None:
+            self.tally.request(method, template, status, elapsed)
+        else:
+            count, latency = self._request_series_of(method, template, status)
+            count.inc()
+            latency.observe(elapsed)
         if log_request:
             request_log.info("%s %s %s", method, template, status, extra={
                 "method": method, "route": template, "status": status, "duration_ms": round(elapsed * 1000, 3),
@@ -112,17 +204,13 @@ class Metrics:
 
     def count_assigned(self, name: str, version: int, counts: Iterable[tuple[int, int]], flagged: int) -> None:
         """Add one request's records: ``counts`` holds (segment, records) pairs; ``flagged``: its outliers."""
+        if self.tally is not None:
+            self.tally.assigned_records(name, version, counts, flagged)
+            return
         for segment, count in counts:
-            key = (name, version, segment)
-            series = self._assigned_series.get(key)
-            if series is None:
-                series = self._assigned_series[key] = self.assigned.labels(name, str(version), str(segment))
-            series.inc(count)
+            self._assigned_series_of(name, version, segment).inc(count)
         if flagged:
-            series = self._outlier_series.get(name)
-            if series is None:
-                series = self._outlier_series[name] = self.outliers.labels(name)
-            series.inc(flagged)
+            self._outlier_series_of(name).inc(flagged)
 
     def live_figures(self, figures: list[dict]) -> None:
         """Replace every live gauge by ``figures``: one dict per (segmentation, live version) with ``n_records``,
@@ -172,6 +260,7 @@ class Metrics:
 
     def exposition(self) -> bytes:
         if not self.multiprocess:
+            self.flush()
             return generate_latest(self.registry)
         self.sync()
         merged = CollectorRegistry()

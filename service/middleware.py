@@ -59,37 +59,80 @@ class RequestIdMiddleware(HttpMiddleware):
             request_id_var.reset(token)
 
 
+class _Resumed:
+    """Awaits the rest of an awaitable whose first step already ran (``receive_one_within``): each value it
+    yields (the future it waits on) goes up to the task, and what the task sends or throws back (a result, a
+    cancellation) goes down to it, exactly as ``await`` would have done from the start."""
+
+    __slots__ = ("step", "pending")
+
+    def __init__(self, step, pending) -> None:
+        self.step, self.pending = step, pending
+
+    def __await__(self):
+        step, pending = self.step, self.pending
+        while True:
+            try:
+                sent = yield pending
+            except GeneratorExit:
+                step.close()
+                raise
+            except BaseException as exc:
+                try:
+                    pending = step.throw(exc)
+                except StopIteration as done:
+                    return done.value
+            else:
+                try:
+                    pending = step.send(sent)
+                except StopIteration as done:
+                    return done.value
+
+
+async def receive_one_within(receive, seconds: float) -> dict:
+    """``await receive()``, or BodyTimeout (408, connection closed) when nothing arrives for ``seconds``.
+
+    A message that is already there (a small body arrives with the headers) is returned from the first step
+    of ``receive()``, with no timer. Only a ``receive()`` that has to wait gets one: a bare loop timer that
+    cancels this task when it expires (~2 us per timer, where anyio.fail_after cost ~11 us and asyncio.timeout
+    ~5 us, on a single-record request of a few tens of us)."""
+    step = receive().__await__()
+    try:
+        pending = step.send(None)
+    except StopIteration as done:
+        return done.value
+    task = asyncio.current_task()
+    expired = False
+
+    def expire() -> None:
+        nonlocal expired
+        expired = True
+        task.cancel()
+
+    timer = asyncio.get_running_loop().call_later(seconds, expire)
+    try:
+        return await _Resumed(step, pending)
+    except asyncio.CancelledError:
+        if not expired:
+            raise
+        task.uncancel()
+        raise BodyTimeout(seconds) from None
+    finally:
+        timer.cancel()
+
+
 def timed_receive(receive, seconds: float):
-    """``receive`` with a time limit on the body: a ``receive`` call that gets nothing for ``seconds`` while the
-    body is incomplete raises BodyTimeout (408, connection closed). Once the body is complete, later calls
-    (waiting for a disconnect) are passed through untouched. Used by ``BodyReadTimeout`` and by the assign
-    lane (service/api/assign.py), which reads its body outside this middleware stack."""
+    """``receive`` with a time limit on the body (``receive_one_within`` per call while the body is incomplete).
+    Once the body is complete, later calls (waiting for a disconnect) are passed through untouched. Used by
+    ``BodyReadTimeout`` and by the assign lane's other bodies (service/api/assign.py), which are read outside
+    this middleware stack."""
     body_done = False
 
     async def timed() -> dict:
         nonlocal body_done
         if body_done:
             return await receive()
-        # A bare loop timer that cancels this task (the server runs on asyncio): ~2 us per receive, where
-        # anyio.fail_after cost ~11 us and asyncio.timeout ~5 us, on a single-record request of ~100 us.
-        task = asyncio.current_task()
-        expired = False
-
-        def expire() -> None:
-            nonlocal expired
-            expired = True
-            task.cancel()
-
-        timer = asyncio.get_running_loop().call_later(seconds, expire)
-        try:
-            message = await receive()
-        except asyncio.CancelledError:
-            if not expired:
-                raise
-            task.uncancel()
-            raise BodyTimeout(seconds) from None
-        finally:
-            timer.cancel()
+        message = await receive_one_within(receive, seconds)
         if message["type"] != "http.request" or not message.get("more_body", False):
             body_done = True
         return message

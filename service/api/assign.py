@@ -24,7 +24,7 @@ from service.api.payload import (
     kind_of_content_type,
     length_is_small,
     read_version_batch,
-    receive_body,
+    receive_within,
     refuse_declared_length,
     request_body_openapi,
     too_many_missing,
@@ -299,7 +299,6 @@ class AssignLane:
         authorization = headers.get(b"authorization")
         key = None if authorization is None else key_of_authorization(authorization.decode("latin-1"))
         actor_of(self.keyring, key, ASSIGN_SCOPE)          # assign writes nothing: the actor is not kept
-        receive = timed_receive(receive, settings.body_read_timeout_seconds)
         content_type = headers.get(b"content-type", b"").decode("latin-1")
         declared = headers.get(b"content-length")
         declared = None if declared is None else declared.decode("latin-1")
@@ -307,14 +306,17 @@ class AssignLane:
         arrow = accept is not None and accepts_arrow(accept.decode("latin-1"))
         if arrow or kind_of_content_type(content_type, arrow=True) != "json" or not length_is_small(declared, settings):
             # CSV, Arrow, a large or unannounced body: the route's own reader (slot, worker thread).
+            receive = timed_receive(receive, settings.body_read_timeout_seconds)
             response = await answer_assign(Request(scope, receive), name, version, on_error, settings, self.store)
             return response.status_code, response.media_type.encode("latin-1"), response.body
         # A small JSON body, checked in the order of read_version_batch: name, version, body.
         check_name(name)
         loaded, labels = await self.store.serving(name, version)
         refuse_declared_length(declared, settings.max_body_bytes)
-        body = await receive_body(receive, settings.max_body_bytes)
-        batch = payload.parse_batch("json", body, list(loaded.compiled.features), loaded.bundle.config.id_column,
-                            settings.max_assign_rows)
+        body = await receive_within(receive, settings.max_body_bytes, settings.body_read_timeout_seconds)
+        features, id_column = loaded.compiled.features, loaded.bundle.config.id_column
+        batch = payload.plain_single_record(body, features, id_column)   # one plain record: parsed once
+        if batch is None:
+            batch = payload.parse_batch("json", body, list(features), id_column, settings.max_assign_rows)
         answer = await assign_answer(settings, self.metrics, self.live, name, loaded, labels, batch, on_error, False)
         return 200, b"application/json", answer

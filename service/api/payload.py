@@ -13,11 +13,12 @@ from typing import Any, AsyncIterator, Literal
 
 import anyio
 import numpy as np
+import orjson
 from fastapi import Request
 from pydantic import BaseModel
 from starlette.requests import ClientDisconnect
 
-from service.core.frame import Batch, batch_from_frame, batch_from_json, read_csv
+from service.core.frame import Batch, batch_from_frame, batch_from_json, plain_record_batch, read_csv
 from service.errors import (
     InvalidInput,
     PayloadTooLarge,
@@ -35,6 +36,7 @@ from service.inputs.checks import (  # noqa: F401
     parse_json,
     records_of,
 )
+from service.middleware import receive_one_within
 from service.settings import Settings
 from service.store import BundleStore, LoadedVersion
 
@@ -118,13 +120,15 @@ async def read_body(request: Request, limit: int) -> bytes:
     return _non_empty(b"".join(chunks))
 
 
-async def receive_body(receive, limit: int) -> bytes:
-    """``read_body`` for a caller without a Request (the assign lane): the body straight from ASGI ``receive``
-    calls (what ``Request.stream`` reads), with the same limit and checks; a client that disconnects first
-    ends it with ClientDisconnect, as there. (A plain loop: an async generator costs more than the read.)"""
+async def receive_within(receive, limit: int, seconds: float) -> bytes:
+    """``read_body`` for a caller without a Request (the assign lane), with the body time limit of
+    ``BodyReadTimeout``: the body straight from ASGI ``receive`` calls (what ``Request.stream`` reads), at most
+    ``limit`` bytes, each call bounded by ``seconds`` (``receive_one_within``), with the same checks; a client
+    that disconnects first ends it with ClientDisconnect, as there. One plain loop: no wrapper around
+    ``receive`` and no async generator (either costs more than reading a small body)."""
     chunks, size = [], 0
     while True:
-        message = await receive()
+        message = await receive_one_within(receive, seconds)
         kind = message["type"]
         if kind == "http.request":
             chunk = message.get("body", b"")
@@ -195,6 +199,22 @@ def parse_batch(kind: BodyKind, body: bytes, features: list[str], id_column: str
     records = records_of(parse_json(body))
     _check_rows(len(records), max_rows)
     return batch_from_json(records, features, id_column)
+
+
+def plain_single_record(body: bytes, features: list[str], id_column: str | None) -> Batch | None:
+    """The Batch of a JSON body that is ``{"records": [one record]}`` whose record holds every feature as a plain
+    number or null and, if it has one, a usable id (``plain_record_batch``), parsed once; None for any other
+    body, which ``parse_batch`` then reads and checks in full (so its answers and errors are the same)."""
+    try:
+        document = orjson.loads(body)
+    except orjson.JSONDecodeError:
+        return None
+    if type(document) is not dict or len(document) != 1:
+        return None
+    records = document.get("records")
+    if type(records) is not list or len(records) != 1 or type(records[0]) is not dict:
+        return None
+    return plain_record_batch(records[0], features, id_column)
 
 
 async def read_batch(request: Request, features: list[str], id_column: str | None, *, settings: Settings,

@@ -9,7 +9,14 @@ space is ``u`` itself. Centroids are ranked by the expansion ``||z - m||^2 = ||z
 more small product); rows where that expansion cannot be trusted to about 1e-10 (a record very close to a
 centroid, or two centroids nearly tied) are recomputed directly. Batches are processed in chunks laid out one
 row per dimension, so that every step is an elementwise operation over a whole chunk. No scikit-learn call
-and no DataFrame run per request. ``tests/core/test_assign.py`` checks labels, distances, runner-ups and
+and no DataFrame run per request.
+
+One record (the single-record call, where each numpy call costs about a microsecond whatever its size) is
+scored with one product: the projection, the centroids' cross terms and the projection onto the complement of
+the PCA plane are folded into one (p, k + d + p) matrix when the bundle is built (``SingleRecordForm``), so
+``u @ matrix`` gives every ``z.m``, ``z`` and the residual vector at once; the same expansion and the same
+recompute rule as the batch path apply. That matrix holds p x p entries, so it is built only while it stays
+under ``FOLD_MAX_ENTRIES``; larger bundles score one record step by step (still no p x p matrix). ``tests/core/test_assign.py`` checks labels, distances, runner-ups and
 residuals against the stored scikit-learn objects on every supported configuration.
 
 The outlier flag is per segment: a record of segment c is flagged when its distance exceeds
@@ -40,6 +47,41 @@ DIRECT_ROWS = 16
 # recomputed directly; elsewhere the relative error of a distance stays under about 1e-10 for d <= 100.
 DOUBT = 1e-4
 RECOMPUTE_ELEMENTS = 1 << 20  # bounds the (rows, k, d) temporary of a direct recompute (8 MiB)
+# Largest folded single-record matrix (p x (k + d + p) floats, 256 KiB): beyond it the product costs more than
+# the numpy calls it saves, and the p x p block would grow with the square of the feature count.
+FOLD_MAX_ENTRIES = 32_768
+
+
+@dataclass(frozen=True)
+class SingleRecordForm:
+    """The single-record path's constants, derived from a ``CompiledBundle`` when it is built (never stored):
+    ``(x - centre) @ matrix - offset`` is ``[z.m_0 .. z.m_{k-1}, z_0 .. z_{d-1}, r_0 .. r_{t-1}]`` for a raw row
+    ``x`` (no NaN), with ``z`` its clustering coordinates and ``r`` the centred scaled row minus its PCA
+    reconstruction (t = p when PCA drops dimensions, else 0). The scale is folded into the matrix's rows and the
+    space centre into ``offset``; the centre is still subtracted first (no cancellation of a large offset)."""
+
+    matrix: np.ndarray                # (p, k + d + t)
+    offset: np.ndarray                # (k + d + t,)
+    k: int
+    d: int
+    centroid_sq_norms: list[float]    # ||m_c||^2 as Python floats
+    doubt_floor: float                # max ||m_c||^2 (the expansion's error scale, as in _assign_chunked)
+
+
+def fold_single_record(compiled: "CompiledBundle") -> SingleRecordForm | None:
+    """The folded matrix of ``SingleRecordForm``, or None when it would exceed ``FOLD_MAX_ENTRIES``."""
+    p, (k, d) = compiled.scale.shape[0], compiled.centroids.shape
+    t = p if compiled.has_residual else 0
+    if p * (k + d + t) > FOLD_MAX_ENTRIES:
+        return None
+    to_space = np.eye(p) if compiled.axes is None else compiled.axes.T        # (p, d): z = u @ to_space
+    blocks = [to_space @ compiled.centroids.T, to_space]
+    if t:
+        blocks.append(np.eye(p) - compiled.axes.T @ compiled.axes)             # u minus its reconstruction
+    folded = np.hstack(blocks)                                                # u @ folded, u centred and scaled
+    norms = compiled.centroid_sq_norms
+    return SingleRecordForm(np.ascontiguousarray(compiled.scale[:, None] * folded), compiled.space_centre @ folded,
+                            k, d, norms.tolist(), float(norms.max()))
 
 
 @dataclass(frozen=True)
@@ -56,6 +98,13 @@ class CompiledBundle:
     centroid_sq_norms: np.ndarray   # (k,)
     distance_thresholds: np.ndarray  # (k,)
     residual_thresholds: np.ndarray  # (k,) 0 without a residual
+
+    def __post_init__(self) -> None:
+        self.single_record_form          # built with the bundle (compile_bundle or an artifact read), not per call
+
+    @cached_property
+    def single_record_form(self) -> SingleRecordForm | None:
+        return fold_single_record(self)
 
     @cached_property
     def distance_thresholds_list(self) -> list[float]:
@@ -195,9 +244,30 @@ def assign(compiled: CompiledBundle, values: np.ndarray) -> Assignment:
 
 
 def _assign_one(compiled: CompiledBundle, row: np.ndarray) -> Assignment:
-    """One record (the single-record call): the direct path's arithmetic on vectors, with the ranking of k
-    squared distances and the threshold tests done on Python floats (a dozen numpy calls instead of ~30; each
-    costs about a microsecond however small its array)."""
+    """One record (the single-record call): one product with the folded matrix (``SingleRecordForm``), then the
+    ranking of the k squared distances, the residual and the threshold tests on Python floats (four numpy calls
+    to score, three to build the answer's arrays; each costs about a microsecond however small its array). Where the expansion is in doubt (as the batch
+    path's rule says), a value is not finite, or the bundle has no folded matrix: ``_assign_one_directly``."""
+    form = compiled.single_record_form
+    if form is None:
+        return _assign_one_directly(compiled, row)
+    out = ((row - compiled.centre) @ form.matrix - form.offset).tolist()
+    k, d = form.k, form.d
+    z_sq = math.hypot(*out[k:k + d]) ** 2
+    squared = [z_sq - 2.0 * cross + norm for cross, norm in zip(out[:k], form.centroid_sq_norms)]
+    order = sorted(range(k), key=squared.__getitem__)      # stable: ties go to the lower id
+    nearest = order[0]
+    doubt = DOUBT * (z_sq + form.doubt_floor)
+    if not (doubt < math.inf and squared[nearest] >= doubt
+            and (k == 1 or squared[order[1]] - squared[nearest] >= doubt)):
+        return _assign_one_directly(compiled, row)          # also NaN and overflow: compared False above
+    has_residual = compiled.has_residual
+    residual = math.hypot(*out[k + d:]) if has_residual else 0.0
+    return _one_assignment(compiled, order, squared, residual, has_residual)
+
+
+def _assign_one_directly(compiled: CompiledBundle, row: np.ndarray) -> Assignment:
+    """One record step by step: the direct path's arithmetic on vectors (no expansion, no p x p matrix)."""
     u = row - compiled.centre
     u *= compiled.scale
     u -= compiled.space_centre
@@ -214,6 +284,12 @@ def _assign_one(compiled: CompiledBundle, row: np.ndarray) -> Assignment:
     diff = z - compiled.centroids
     squared = np.einsum("ij,ij->i", diff, diff).tolist()   # (k,) direct squared distances, as _two_nearest
     order = sorted(range(len(squared)), key=squared.__getitem__)   # stable: ties go to the lower id
+    return _one_assignment(compiled, order, squared, residual, has_residual)
+
+
+def _one_assignment(compiled: CompiledBundle, order: list[int], squared: list[float], residual: float,
+                    has_residual: bool) -> Assignment:
+    """The Assignment of one record from its ranked squared distances and its residual (Python floats)."""
     nearest = order[0]
     distance = math.sqrt(squared[nearest])
     far = distance > compiled.distance_thresholds_list[nearest]

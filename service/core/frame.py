@@ -32,6 +32,7 @@ import pandas as pd
 from service.errors import BadBody, FeatureMismatch, InvalidInput, InvalidRecords, PayloadTooLarge, RecordProblem
 
 _NUMBER_TYPES = frozenset({int, float, type(None)})
+_PLAIN_TYPES = frozenset({int, float})
 MAX_LISTED_PROBLEMS = 200
 # Largest magnitude accepted for a value. The fit squares values and sums the squares over up to a million
 # records and a thousand features (1e100^2 * 1e6 * 1e3 = 1e209), and assign divides by a training standard
@@ -233,6 +234,34 @@ def _plain_numbers(row: tuple[Any, ...]) -> bool:
         if (kind is not float and kind is not int) or not -MAX_ABS_VALUE <= value <= MAX_ABS_VALUE:
             return False
     return True
+
+
+def plain_record_batch(record: dict[str, Any], features: Sequence[str], id_column: str | None) -> Batch | None:
+    """``batch_from_json([record], ...)`` when that call would find no problem and every feature key is present
+    (each value a plain number within range, as ``_plain_numbers``, or null), computed on Python values; None
+    otherwise, and the caller goes the general way, which names what is wrong (or misspelt: an absent key)."""
+    try:
+        row = itemgetter(*features)(record) if len(features) > 1 else (record[features[0]],)
+    except KeyError:
+        return None
+    kinds = set(map(type, row))
+    if kinds <= _PLAIN_TYPES:
+        nulls = False
+        # min/max may step over a NaN, a sum may not (an int beyond float64's range fails max/min first).
+        if not (-MAX_ABS_VALUE <= min(row) and max(row) <= MAX_ABS_VALUE and math.isfinite(sum(row))):
+            return None
+    elif kinds <= _NUMBER_TYPES:
+        nulls = True
+        if not _plain_numbers(tuple(value for value in row if value is not None)):
+            return None
+    else:
+        return None
+    ident = 0 if id_column is None else record.get(id_column)
+    if ident is None:
+        ident = 0                                   # no id: the record's index, as _ids
+    elif id_column is not None and check_id(ident) is not None:
+        return None
+    return Batch(np.array([row], dtype=np.float64), [ident], [], may_have_nan=nulls)
 
 
 def _matrix_from_table(table: list[tuple[Any, ...]], features: Sequence[str],

@@ -72,21 +72,26 @@ def test_many_empty_records_are_refused_before_parsing(tmp_path, monkeypatch):
 def test_large_bodies_are_parsed_in_a_worker_thread(tmp_path, monkeypatch):
     settings = Settings(store_dir=tmp_path / "s", large_body_bytes=1024)
     where = []
-    real = payload.parse_batch
 
-    def spy(*args):
-        try:
-            where.append(sniffio.current_async_library())
-        except sniffio.AsyncLibraryNotFoundError:
-            where.append("worker thread")
-        return real(*args)
+    def spying(name):
+        real = getattr(payload, name)
 
-    monkeypatch.setattr(payload, "parse_batch", spy)
+        def spy(*args):
+            try:
+                where.append((name, sniffio.current_async_library()))
+            except sniffio.AsyncLibraryNotFoundError:
+                where.append((name, "worker thread"))
+            return real(*args)
+        return spy
+
+    # A single plain record is read by the assign lane's shortcut, anything else by parse_batch.
+    for name in ("parse_batch", "plain_single_record"):
+        monkeypatch.setattr(payload, name, spying(name))
     with TestClient(create_app(settings)) as client:
         assert client.post("/v1/segmentations/x/fit", json={"records": _records(200), "k": 2}).status_code == 201
         assert client.post("/v1/segmentations/x/assign", json={"records": _records(1)}).status_code == 200
         assert client.post("/v1/segmentations/x/assign", json={"records": _records(300)}).status_code == 200
-    assert where == ["asyncio", "worker thread"]
+    assert where == [("plain_single_record", "asyncio"), ("parse_batch", "worker thread")]
 
 
 def test_large_requests_in_flight_are_bounded(tmp_path, monkeypatch):

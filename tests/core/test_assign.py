@@ -167,6 +167,69 @@ def test_single_record_matches_pipeline_predict():
         assert_matches_reference(bundle, result, ref)
 
 
+@pytest.mark.parametrize("data, scaling, components, method", CONFIGS)
+def test_every_record_alone_matches_sklearn_and_the_batch_path(data, scaling, components, method, monkeypatch):
+    # Reference: the stored scikit-learn objects (Pipeline.predict, KMeans.transform, PCA.inverse_transform; see
+    # sklearn_reference) and the batch path, record by record through the single-record path: with the folded
+    # matrix, and step by step (a fold limit of 0 entries) as bundles too large to fold are scored.
+    bundle, training = fitted(data, scaling, components, method)
+    compiled = compile_bundle(bundle)
+    x = evaluation_rows(training)
+    ref = sklearn_reference(bundle, training, x)
+    batch = assign(compiled, x)
+    for folded in (True, False):
+        if not folded:
+            monkeypatch.setattr(core_assign, "FOLD_MAX_ENTRIES", 0)
+            compiled = compile_bundle(bundle)
+        assert (compiled.single_record_form is not None) == folded
+        alone = [assign(compiled, x[i:i + 1]) for i in range(x.shape[0])]
+        joined = {field: None if getattr(alone[0], field) is None
+                  else np.concatenate([getattr(one, field) for one in alone])
+                  for field in ("segment", "distance", "runner_up", "margin", "residual", "far", "off_plane")}
+        result = core_assign.Assignment(**joined)
+        assert_matches_reference(bundle, result, ref)
+        np.testing.assert_array_equal(result.segment, batch.segment)
+        np.testing.assert_array_equal(result.runner_up, batch.runner_up)
+        np.testing.assert_allclose(result.distance, batch.distance, rtol=RTOL, atol=0)
+        np.testing.assert_allclose(result.residual, batch.residual, rtol=RTOL, atol=RTOL * ref["scaled_norm"].max())
+
+
+def test_single_record_folded_matrix_is_the_pipeline_as_one_product():
+    # Reference: the stored StandardScaler and PCA (transform, inverse_transform) and KMeans.cluster_centers_:
+    # the folded product of a Wine row gives its centroid cross terms, its PCA scores and its reconstruction error.
+    bundle, training = fitted("wine", "standard", "share-0.8", "kmeans")
+    form = compile_bundle(bundle).single_record_form
+    scaled = bundle.scaler.transform(training[:5])
+    scores = bundle.pca.transform(scaled)
+    out = (training[:5] - compile_bundle(bundle).centre) @ form.matrix - form.offset
+    k, d = bundle.k, scores.shape[1]
+    np.testing.assert_allclose(out[:, :k], scores @ bundle.clusterer.cluster_centers_.T, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(out[:, k:k + d], scores, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(out[:, k + d:], scaled - bundle.pca.inverse_transform(scores), rtol=1e-9, atol=1e-12)
+
+
+def test_single_records_on_centroids_and_midpoints_are_recomputed(monkeypatch):
+    # Reference: as test_records_on_centroids_and_midpoints (the stored objects' inverse_transform): one record
+    # at a time, those in doubt (on a centroid, on a tie) take the step-by-step path and stay exact.
+    bundle, _ = fitted("iris", "standard", "components-2", "kmeans")
+    compiled = compile_bundle(bundle)
+    raw_centroids = bundle.scaler.inverse_transform(bundle.pca.inverse_transform(bundle.centroids))
+    midpoint = (raw_centroids[0] + raw_centroids[1]) / 2
+    direct = core_assign._assign_one_directly
+    recomputed = []
+    monkeypatch.setattr(core_assign, "_assign_one_directly",
+                        lambda compiled, row: recomputed.append(1) or direct(compiled, row))
+    scale = np.abs(bundle.centroids).max()
+    for c in range(3):
+        result = assign(compiled, raw_centroids[c:c + 1])
+        assert result.segment[0] == c and result.distance[0] < 1e-9 * scale
+    result = assign(compiled, midpoint[None, :])
+    assert {int(result.segment[0]), int(result.runner_up[0])} == {0, 1} and result.margin[0] < 1e-9 * scale
+    assert len(recomputed) == 4
+    assign(compiled, bundle.scaler.inverse_transform(bundle.pca.inverse_transform(bundle.centroids[:1] + 1.0)))
+    assert len(recomputed) == 4                          # a record off every centroid and tie: the product
+
+
 # --------------------------------------------------------------------------- imputation
 def test_impute_uses_training_medians_like_simple_imputer():
     # Reference: numpy.nanmedian of the training columns, and the stored SimpleImputer(strategy="median").

@@ -1,0 +1,163 @@
+"""Benchmark (not a test): in-process CPU per single-record assign request, the assign lane against the
+framework floor, as direct ASGI calls (no sockets, no HTTP parsing), and where the lane's time goes.
+
+The same bundle and the same single-record body as the HTTP benchmarks (bench/http/run_http_bench.py: make_blobs
+100,000 x 20, StandardScaler -> PCA(5) -> KMeans(8)); the service app (``create_app``, its lifespan run, so the
+garbage-collector settings, the warmed cache and live drift are as in a server) and the floor
+(bench/http/floor_app.py) each get the same ASGI scope, body and headers as wrk sends. What this leaves out is
+what both servers share: uvicorn's HTTP parsing and socket writes. So the ratio here is the web-layer part of
+the HTTP goal, measured without the noise of the load generator on the same cores.
+
+Timing: ``--rounds`` rounds of ``--calls`` requests per app, the apps alternating within each round; CPU time
+of the process (``time.process_time``: every thread, as the HTTP bench's server CPU is) and wall time, medians
+over the rounds. Then a cProfile of ``--profile-calls`` lane requests: the top entries by cumulative and by
+own time (the profiler inflates every call; read the shares, not the times).
+
+    PYTHONPATH=$PWD .venv/bin/python bench/profile_lane.py [--rounds 15] [--calls 2000] [--profile-calls 3000]
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import cProfile
+import io
+import os
+import pstats
+import shutil
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent))
+sys.path.insert(0, str(HERE / "http"))
+os.environ.setdefault("OMP_NUM_THREADS", "1")          # as the HTTP bench's servers (docker/Dockerfile)
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+from bench.machine import cpu_model, load_average  # noqa: E402
+from floor_app import app as floor_app  # noqa: E402
+from run_http_bench import NAME, prepare_store, write_bodies  # noqa: E402
+from service.app import create_app  # noqa: E402
+from service.settings import Settings  # noqa: E402
+
+PATH = f"/v1/segmentations/{NAME}/assign"
+
+
+def asgi_call(app, body: bytes):
+    """An awaitable factory: one POST of ``body`` as wrk's post.lua sends it; returns the status."""
+    scope = {"type": "http", "asgi": {"version": "3.0", "spec_version": "2.3"}, "http_version": "1.1",
+             "method": "POST", "scheme": "http", "path": PATH, "raw_path": PATH.encode(), "query_string": b"",
+             "root_path": "", "server": ("127.0.0.1", 8000), "client": ("127.0.0.1", 5000),
+             "headers": [(b"host", b"127.0.0.1:8000"), (b"content-length", str(len(body)).encode()),
+                         (b"content-type", b"application/json")]}
+    message = {"type": "http.request", "body": body, "more_body": False}
+    status = [0]
+
+    async def receive():
+        return message
+
+    async def send(sent):
+        if sent["type"] == "http.response.start":
+            status[0] = sent["status"]
+
+    async def call() -> int:
+        await app(dict(scope), receive, send)
+        return status[0]
+
+    return call
+
+
+async def run_lifespan(app):
+    """Start ``app``'s lifespan (as uvicorn does); returns the coroutine that shuts it down."""
+    inbox: asyncio.Queue = asyncio.Queue()
+    outbox: asyncio.Queue = asyncio.Queue()
+    task = asyncio.create_task(app({"type": "lifespan", "asgi": {"version": "3.0"}, "state": {}},
+                                   inbox.get, outbox.put))
+    await inbox.put({"type": "lifespan.startup"})
+    answer = await outbox.get()
+    assert answer["type"] == "lifespan.startup.complete", answer
+
+    async def stop() -> None:
+        await inbox.put({"type": "lifespan.shutdown"})
+        await outbox.get()
+        await task
+
+    return stop
+
+
+async def timed(call, calls: int) -> tuple[float, float]:
+    """(CPU seconds, wall seconds) per request over ``calls`` requests."""
+    cpu, wall = time.process_time(), time.perf_counter()
+    for _ in range(calls):
+        await call()
+    return (time.process_time() - cpu) / calls, (time.perf_counter() - wall) / calls
+
+
+async def main_async(args) -> None:
+    workdir = Path(tempfile.mkdtemp(prefix="segscore-profile-lane-"))
+    try:
+        print("fitting the bundle and writing the body ...", flush=True)
+        store = workdir / "store"
+        prepare_store(store)
+        body = write_bodies(workdir)[1].read_bytes()
+        service = create_app(Settings(store_dir=store))
+        stop = await run_lifespan(service)
+        try:
+            calls = {"floor": asgi_call(floor_app, body), "segscore": asgi_call(service, body)}
+            for label, call in calls.items():
+                assert await call() == 200, label
+                await timed(call, 300)                                  # warm-up
+            samples: dict[str, list[tuple[float, float]]] = {label: [] for label in calls}
+            for round_number in range(args.rounds):
+                order = list(calls) if round_number % 2 == 0 else list(calls)[::-1]
+                for label in order:
+                    samples[label].append(await timed(calls[label], args.calls))
+            print()
+            print(f"machine: {cpu_model()}, {os.cpu_count()} logical CPUs; load average {load_average()}")
+            print(f"{args.rounds} alternating rounds x {args.calls} direct ASGI calls per app; single-record body "
+                  f"of {len(body)} bytes; medians")
+            cpu = {label: statistics.median(s[0] for s in runs) * 1e6 for label, runs in samples.items()}
+            wall = {label: statistics.median(s[1] for s in runs) * 1e6 for label, runs in samples.items()}
+            for label in calls:
+                print(f"{label:9s} CPU {cpu[label]:7.1f} us per request   wall {wall[label]:7.1f} us")
+            print(f"segscore / floor: CPU {cpu['segscore'] / cpu['floor']:.2f}x, "
+                  f"wall {wall['segscore'] / wall['floor']:.2f}x")
+
+            profiler = cProfile.Profile(time.process_time)
+            call = calls["segscore"]
+            profiler.enable()
+            for _ in range(args.profile_calls):
+                await call()
+            profiler.disable()
+            stats = pstats.Stats(profiler, stream=(out := io.StringIO()))
+            total_calls = stats.total_calls
+            stats.strip_dirs()
+            print()
+            print(f"cProfile of {args.profile_calls} lane requests: {total_calls / args.profile_calls:.0f} "
+                  "Python-level calls per request")
+            for key in ("cumulative", "tottime"):
+                out.seek(0)
+                out.truncate()
+                stats.sort_stats(key).print_stats(args.top)
+                print(f"-- top {args.top} by {key}")
+                print(out.getvalue().split("ncalls", 1)[1].join(("   ncalls", "")).rstrip())
+        finally:
+            await stop()
+    finally:
+        shutil.rmtree(workdir, ignore_errors=True)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rounds", type=int, default=15, help="alternating rounds (default 15)")
+    parser.add_argument("--calls", type=int, default=2000, help="requests per app per round (default 2000)")
+    parser.add_argument("--profile-calls", type=int, default=3000, help="lane requests profiled (default 3000)")
+    parser.add_argument("--top", type=int, default=20, help="profile entries shown per ordering (default 20)")
+    asyncio.run(main_async(parser.parse_args()))
+
+
+if __name__ == "__main__":
+    main()
