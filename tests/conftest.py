@@ -198,10 +198,10 @@ def store_settings(request, tmp_path):
 # drive real server processes take most of the time. xdist's default (`load`) hands out single tests, so a
 # module's fixtures are built again on each worker and the long tests may land together at the end. Instead
 # (pytest_xdist_make_scheduler below): one module is one unit of work (its module-scoped fixtures are built
-# once), except the modules in
-# SPLIT_MODULES, whose tests are long and independent, which go out one test at a time; and the units are
-# queued longest first (SLOW_FIRST: module paths or test ids, in that order), so that the last units to
-# start are short ones and the two workers finish together.
+# once), except in SPLIT_MODULES, whose tests are long and independent and go out one at a time; and the
+# units are queued longest first (SLOW_FIRST: module paths or test ids, in the order of their times in such
+# a run; the rest follow in collection order), so that the last units to start are short ones and the two
+# workers finish together.
 SPLIT_MODULES = (
     "tests/core/test_calibration.py",
     "tests/test_jobs_processes.py",
@@ -209,23 +209,31 @@ SPLIT_MODULES = (
     "tests/test_shutdown.py",
 )
 SLOW_FIRST = (
-    "tests/test_jobs_processes.py::test_fit_follows_its_job_and_jobs_lists_it_end_to_end",
-    "tests/test_replica_faults.py::test_a_database_outage_with_assigns_running_on_both_replicas",
-    "tests/test_replica_faults.py::test_a_replica_killed_mid_fit_leaves_the_other_serving_and_the_store_consistent",
-    "tests/test_jobs_processes.py::test_a_job_on_one_postgres_replica_is_seen_and_cancelled_through_another",
-    "tests/test_replicas.py",
-    "tests/test_workers.py",
-    "tests/core/test_calibration.py::test_every_p_value_is_calibrated_under_the_null[10000]",
-    "tests/test_shutdown.py::test_sigterm_finishes_requests_in_flight_and_exits_zero[2]",
     "tests/test_cli_client.py",
-    "tests/api/test_segmentations.py",
-    "tests/core/test_drift.py",
+    "tests/test_workers.py",
     "tests/engines/test_dask_engine.py",
-    "tests/test_shutdown.py::test_sigterm_finishes_requests_in_flight_and_exits_zero[1]",
     "tests/store/test_filesystem.py",
+    "tests/core/test_calibration.py::test_every_p_value_is_calibrated_under_the_null[10000]",
+    "tests/test_replica_faults.py::test_a_database_outage_with_assigns_running_on_both_replicas",
+    "tests/core/test_drift.py",
+    "tests/test_replicas.py",
+    "tests/test_jobs_processes.py::test_a_server_killed_with_a_running_job_is_followed_by_one_that_marks_it_failed",
+    "tests/test_jobs_processes.py::test_fit_follows_its_job_and_jobs_lists_it_end_to_end",
+    "tests/api/test_segmentations.py",
+    "tests/test_shutdown.py::test_sigterm_finishes_requests_in_flight_and_exits_zero[2]",
+    "tests/api/test_jobs.py",
+    "tests/test_jobs_processes.py::test_a_job_on_one_postgres_replica_is_seen_and_cancelled_through_another",
+    "tests/test_replica_faults.py::test_a_replica_killed_mid_fit_leaves_the_other_serving_and_the_store_consistent",
+    "tests/api/test_fit.py",
     "tests/store/test_faults.py",
-    "tests/test_jobs_processes.py",
-    "tests/core/test_calibration.py",
+    "tests/core/test_calibration.py::test_every_p_value_is_calibrated_under_the_null[1000]",
+    "tests/api/test_auth.py",
+    "tests/test_shutdown.py::test_sigterm_finishes_requests_in_flight_and_exits_zero[1]",
+    "tests/client/test_client.py",
+    "tests/api/test_assign.py",
+    "tests/api/test_drift.py",
+    "tests/api/test_compare.py",
+    "tests/test_connections.py",
 )
 
 

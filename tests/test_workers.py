@@ -67,11 +67,15 @@ def until_both_workers(tmp_dir: Path, base: str, send, sample_name: str, what: s
         on_new_connections(base, 8, send)
 
 
-@pytest.fixture
-def two_workers(tmp_path):
+@pytest.fixture(scope="module")
+def two_workers(tmp_path_factory):
+    """One 2-worker server for the module's first two tests (a server start is much of their time). They use
+    segmentations of their own; the metrics test counts from a fresh server, so it runs first, and the promote
+    test, whose key turns authentication on, runs last."""
+    tmp_path = tmp_path_factory.mktemp("workers")
     store_dir = tmp_path / "store"
-    # A short TMPDIR of the test's own: the fit workers' forkserver puts a Unix socket under it, and a socket's
-    # path may not exceed 107 bytes (pytest's tmp_path, under a long test name, can).
+    # A short TMPDIR of the module's own: the fit workers' forkserver puts a Unix socket under it, and a
+    # socket's path may not exceed 107 bytes (pytest's tmp_path, under a long test name, can).
     tmp_dir = Path(tempfile.mkdtemp(prefix="ssw-", dir="/tmp"))
     try:
         with segscore_server(tmp_path, "--workers", "2", "--store", str(store_dir),
@@ -118,14 +122,15 @@ def test_a_promote_and_a_new_key_reach_both_workers(two_workers, iris):
     records = records_from(iris)
     with httpx2.Client(base_url=base, timeout=300) as client:
         for k in (3, 2):
-            assert client.post("/v1/segmentations/shop/fit", json={"records": records, "k": k,
-                                                                  "make_live": k == 3}).status_code == 201
-        assert client.put("/v1/segmentations/shop/live", json={"version": 2}).status_code == 200
+            assert client.post("/v1/segmentations/promoted/fit", json={"records": records, "k": k,
+                                                                      "make_live": k == 3}).status_code == 201
+        assert client.put("/v1/segmentations/promoted/live", json={"version": 2}).status_code == 200
 
-    route = ASSIGN_TEMPLATE.format(name="shop")
+    route = ASSIGN_TEMPLATE.format(name="promoted")
     # Each worker runs its own store watcher: both end up serving version 2, though one made the promote.
     until_both_workers(tmp_dir, base, lambda c: c.post(route, json={"records": records[:1]}),
-                       "segscore_records_assigned_total", "the promote", version="2")
+                       "segscore_records_assigned_total", "the promote", segmentation="promoted",
+                       version="2")
     answers = on_new_connections(base, 16, lambda c: c.post(route, json={"records": records[:1]}))
     assert {a.json()["version"] for a in answers} == {2}
 

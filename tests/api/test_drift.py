@@ -65,6 +65,12 @@ def stored(client, name=NAME, query=""):
 
 
 @pytest.fixture
+def settings(tmp_path) -> Settings:
+    # For conftest's ``client``. No test here reads the fit's silhouette: 500 sampled rows of it, not all 3,000.
+    return Settings(store_dir=tmp_path / "store", silhouette_sample=500)
+
+
+@pytest.fixture
 def fitted(client):
     fit(client)
     return client

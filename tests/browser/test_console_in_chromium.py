@@ -79,8 +79,9 @@ def save_full_page(driver, name: str) -> Path:
 
 
 def test_console_in_chromium_open_then_behind_a_key(browser, tmp_path):
-    """One test, two server processes on one store, so the demo is fitted once: first without keys (the
-    loopback demo), then with a key, where the login form comes first."""
+    """One test and one server process (its start fits the demo): first without keys (the loopback demo),
+    then with a key made in its store while it runs (servers pick up new keys), where the login form comes
+    first."""
     from selenium.webdriver.common.by import By
 
     store = tmp_path / "store"
@@ -95,12 +96,12 @@ def test_console_in_chromium_open_then_behind_a_key(browser, tmp_path):
             assert complete and natural_width >= 800, (name, natural_width)
         assert browser.execute_script(SEGMENT_ROWS) == report["k"]
         shot = save_full_page(browser, "console-segmentation.png")
-    width, height = png_size(shot.read_bytes())
-    assert width >= 1000 and height > 2000          # the whole page, charts included
+        width, height = png_size(shot.read_bytes())
+        assert width >= 1000 and height > 2000          # the whole page, charts included
 
-    browser.set_window_size(1280, 1000)
-    read_key = create_keys(store, {"reader": ["read"]})["reader"]
-    with segscore_server(tmp_path, "--demo", "--store", str(store)) as base:
+        browser.set_window_size(1280, 1000)
+        read_key = create_keys(store, {"reader": ["read"]})["reader"]
+        until_authentication_is_on(base)
         browser.get(f"{base}/console/segmentations/demo")
         assert browser.find_elements(By.ID, "login") and not browser.find_elements(By.ID, "segments")
         assert browser.execute_script("return document.images.length;") == 0
@@ -112,3 +113,19 @@ def test_console_in_chromium_open_then_behind_a_key(browser, tmp_path):
         assert browser.execute_script(SEGMENT_ROWS) == report["k"]
         # The session cookie is out of reach of page scripts (HttpOnly).
         assert "segscore" not in browser.execute_script("return document.cookie;")
+
+
+def until_authentication_is_on(base: str) -> None:
+    """Wait until the server refuses a request without a key (it polls its store for key changes)."""
+    import time
+    import urllib.error
+
+    deadline = time.monotonic() + PAGE_LOAD_SECONDS
+    while True:
+        try:
+            get_json(f"{base}/v1/segmentations")
+        except urllib.error.HTTPError as refusal:
+            assert refusal.code == 401, refusal.code
+            return
+        assert time.monotonic() < deadline, "the new key did not turn authentication on"
+        time.sleep(0.1)
