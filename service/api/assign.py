@@ -47,12 +47,15 @@ RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per
                                     answer=AssignResponse)
 _REASONS = ([], ["distance"], ["residual"], ["distance", "residual"])
 _NO_IMPUTED: list[str] = []
+_ONE_ROW = np.zeros(1, dtype=np.intp)      # the row indices of a one-record batch (read only, shared)
+_ONE_ROW.flags.writeable = False
 
 
 def split_good_rows(batch: Batch, skip_bad: bool) -> tuple[np.ndarray, list[dict[str, Any]]]:
     """Row indices to compute, and the error items to return (raises unless ``skip_bad``)."""
     if not batch.problems:
-        return np.arange(batch.values.shape[0]), []
+        n = batch.values.shape[0]
+        return (_ONE_ROW if n == 1 else np.arange(n)), []
     if not skip_bad:
         raise InvalidRecords(batch.problems[:MAX_LISTED_PROBLEMS])
     good = np.ones(batch.values.shape[0], dtype=bool)
@@ -288,8 +291,9 @@ class AssignLane:
             await send(start)
             await send(end)
         finally:
-            self.metrics.request_done("POST", ASSIGN_PATH, status, perf_counter() - started, {"name": name},
-                                      self.settings.access_log)
+            access_log = self.settings.access_log
+            self.metrics.request_done("POST", ASSIGN_PATH, status, perf_counter() - started,
+                                      {"name": name} if access_log else _NO_PATH_PARAMS, access_log)
             request_id_var.reset(token)
 
     async def _answer(self, scope, receive, headers: dict[bytes, bytes], name: str, version: int | None,
@@ -299,12 +303,14 @@ class AssignLane:
         authorization = headers.get(b"authorization")
         key = None if authorization is None else key_of_authorization(authorization.decode("latin-1"))
         actor_of(self.keyring, key, ASSIGN_SCOPE)          # assign writes nothing: the actor is not kept
-        content_type = headers.get(b"content-type", b"").decode("latin-1")
+        content_type = headers.get(b"content-type", b"")
         declared = headers.get(b"content-length")
         declared = None if declared is None else declared.decode("latin-1")
         accept = headers.get(b"accept")
         arrow = accept is not None and accepts_arrow(accept.decode("latin-1"))
-        if arrow or kind_of_content_type(content_type, arrow=True) != "json" or not length_is_small(declared, settings):
+        json = content_type == b"application/json" or kind_of_content_type(content_type.decode("latin-1"),
+                                                                           arrow=True) == "json"
+        if arrow or not json or not length_is_small(declared, settings):
             # CSV, Arrow, a large or unannounced body: the route's own reader (slot, worker thread).
             receive = timed_receive(receive, settings.body_read_timeout_seconds)
             response = await answer_assign(Request(scope, receive), name, version, on_error, settings, self.store)
