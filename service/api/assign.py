@@ -76,9 +76,9 @@ def run_assignment(loaded: LoadedVersion, values: np.ndarray, rows: np.ndarray |
         # Only where numpy's overflow warnings are errors (the tests): compute again, then refuse below.
         with np.errstate(over="ignore", invalid="ignore"):
             result = assign(loaded.compiled, filled)
-    if result.distance.size == 1:     # one record: three float tests instead of five array operations
-        margin = 0.0 if result.margin is None else result.margin.item()
-        if math.isfinite(result.distance.item()) and math.isfinite(result.residual.item()) and math.isfinite(margin):
+    one = result.one
+    if one is not None:               # one record: three float tests instead of five array operations
+        if math.isfinite(one[1]) and math.isfinite(one[4]) and (one[3] is None or math.isfinite(one[3])):
             return result, missing
     finite = np.isfinite(result.distance) & np.isfinite(result.residual)
     if result.margin is not None:
@@ -98,6 +98,14 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
     features = loaded.compiled.features
     label_of = labels.get
     n = rows.size
+    one = result.one
+    if one is not None and n == 1 == len(ids):     # one record: its Python values, no array reads
+        segment, distance, runner_up, margin, residual, far, off_plane = one
+        reason = int(far) + 2 * int(off_plane)
+        imputed = _NO_IMPUTED if missing is None else [features[j] for j in np.flatnonzero(missing[0]).tolist()]
+        return [{"id": ids[0], "segment": segment, "label": label_of(segment), "distance": distance,
+                 "outlier": reason > 0, "outlier_reasons": _REASONS[reason], "runner_up": runner_up,
+                 "margin": margin, "residual": residual, "imputed": imputed}]
     if n == len(ids):
         ids_out = ids
     else:
@@ -122,7 +130,11 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
 
 
 def count_assigned(metrics, name: str, version: int, result: Assignment) -> None:
-    if result.segment.size == 1:     # one record: item reads instead of a bincount and a count
+    one = result.one
+    if one is not None:              # one record: its Python values instead of a bincount and a count
+        metrics.count_assigned(name, version, ((one[0], 1),), int(one[5] or one[6]))
+        return
+    if result.segment.size == 1:
         metrics.count_assigned(name, version, ((result.segment.item(), 1),),
                                int(result.far.item() or result.off_plane.item()))
         return

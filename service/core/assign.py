@@ -170,6 +170,10 @@ class Assignment:
     residual: np.ndarray           # (n,) distance to the PCA reconstruction (0 without PCA)
     far: np.ndarray                # (n,) bool: distance over the segment's threshold
     off_plane: np.ndarray          # (n,) bool: residual over the segment's residual threshold
+    # One record scored by the single-record path: the same values as Python numbers (segment, distance,
+    # runner_up, margin, residual, far, off_plane; runner_up and margin None when k == 1), so that callers
+    # reading one record need not read them back out of the arrays. None otherwise.
+    one: tuple | None = None
 
     @property
     def outlier(self) -> np.ndarray:
@@ -298,13 +302,16 @@ def _one_assignment(compiled: CompiledBundle, order: list[int], squared: list[fl
     flags = np.array([far, off_plane])
     if len(order) > 1:
         runner = order[1]
+        gap = math.sqrt(squared[runner]) - distance
         segments = np.array([nearest, runner])
-        floats = np.array([distance, residual, math.sqrt(squared[runner]) - distance])
+        floats = np.array([distance, residual, gap])
         runner_up, margin = segments[1:], floats[2:]
     else:
+        runner = gap = None
         segments, floats = np.array([nearest]), np.array([distance, residual])
         runner_up = margin = None
-    return Assignment(segments[:1], floats[:1], runner_up, margin, floats[1:2], flags[:1], flags[1:])
+    return Assignment(segments[:1], floats[:1], runner_up, margin, floats[1:2], flags[:1], flags[1:],
+                      (nearest, distance, runner, gap, residual, far, bool(off_plane)))
 
 
 def _two_nearest(compiled: CompiledBundle, z: np.ndarray):
