@@ -31,7 +31,7 @@ from service.api.payload import (
     wants_arrow,
 )
 from service.api.validation import MAX_VERSION, PLAIN_DECIMAL, StrictQuery, VersionNumber, error_responses
-from service.core.assign import Assignment, assign, impute
+from service.core.assign import Assignment, assign, assign_one, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
 from service.deps import AssignScope, SettingsDep, StoreDep, actor_of, key_of_authorization
 from service.errors import InvalidRecords, RecordProblem, ServiceError
@@ -63,6 +63,10 @@ def split_good_rows(batch: Batch, skip_bad: bool) -> tuple[np.ndarray, list[dict
     return np.flatnonzero(good), [p.as_dict() for p in batch.problems]
 
 
+TOO_FAR = "the record's values are too far from the training data for its distances to be computed in float64; " \
+          "check the units"
+
+
 def run_assignment(loaded: LoadedVersion, values: np.ndarray, rows: np.ndarray | None = None, *,
                    may_have_nan: bool = True) -> tuple[Assignment, np.ndarray | None]:
     """Impute and assign; a record whose distances overflow float64 is a 422 (never a null in the answer).
@@ -86,10 +90,31 @@ def run_assignment(loaded: LoadedVersion, values: np.ndarray, rows: np.ndarray |
     if not finite.all():
         bad = np.flatnonzero(~finite)
         index = bad if rows is None else rows[bad]
-        raise InvalidRecords([RecordProblem(int(i), "", "the record's values are too far from the training data "
-                                            "for its distances to be computed in float64; check the units")
-                              for i in index[:MAX_LISTED_PROBLEMS]])
+        raise InvalidRecords([RecordProblem(int(i), "", TOO_FAR) for i in index[:MAX_LISTED_PROBLEMS]])
     return result, missing
+
+
+def score_one(loaded: LoadedVersion, row: np.ndarray) -> tuple:
+    """``run_assignment`` for one record with no missing value, as ``assign_one``'s tuple of Python numbers (no
+    arrays): the same scoring and the same 422 for a record whose distances overflow float64."""
+    try:
+        one = assign_one(loaded.compiled, row)
+    except (FloatingPointError, RuntimeWarning):
+        with np.errstate(over="ignore", invalid="ignore"):      # as run_assignment
+            one = assign_one(loaded.compiled, row)
+    margin = one[3]
+    if not (math.isfinite(one[1]) and math.isfinite(one[4]) and (margin is None or math.isfinite(margin))):
+        raise InvalidRecords([RecordProblem(0, "", TOO_FAR)])
+    return one
+
+
+def result_of(record_id: Any, one: tuple, label_of, imputed: list[str]) -> dict[str, Any]:
+    """One answer item from ``assign_one``'s tuple (``build_results`` for one record)."""
+    segment, distance, runner_up, margin, residual, far, off_plane = one
+    reason = int(far) + 2 * int(off_plane)
+    return {"id": record_id, "segment": segment, "label": label_of(segment), "distance": distance,
+            "outlier": reason > 0, "outlier_reasons": _REASONS[reason], "runner_up": runner_up, "margin": margin,
+            "residual": residual, "imputed": imputed}
 
 
 def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any], rows: np.ndarray,
@@ -100,12 +125,8 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
     n = rows.size
     one = result.one
     if one is not None and n == 1 == len(ids):     # one record: its Python values, no array reads
-        segment, distance, runner_up, margin, residual, far, off_plane = one
-        reason = int(far) + 2 * int(off_plane)
         imputed = _NO_IMPUTED if missing is None else [features[j] for j in np.flatnonzero(missing[0]).tolist()]
-        return [{"id": ids[0], "segment": segment, "label": label_of(segment), "distance": distance,
-                 "outlier": reason > 0, "outlier_reasons": _REASONS[reason], "runner_up": runner_up,
-                 "margin": margin, "residual": residual, "imputed": imputed}]
+        return [result_of(ids[0], one, label_of, imputed)]
     if n == len(ids):
         ids_out = ids
     else:
@@ -176,6 +197,14 @@ async def assign_answer(settings: Settings, metrics, live, name: str, loaded: Lo
                         batch: Batch, on_error: str, arrow: bool) -> bytes:
     """A checked batch -> scoring (``run_assignment``) -> counters (``metrics``) and live drift (``live``) -> the
     answer's bytes (``build_results`` as JSON, or Arrow). Shared by the FastAPI route and the assign lane."""
+    if not arrow and not batch.may_have_nan and not batch.problems and batch.values.shape[0] == 1:
+        # One record with every value present (the single-record call): scored as Python numbers, no arrays.
+        one = score_one(loaded, batch.values[0])
+        segment, far, off_plane = one[0], one[5], one[6]
+        metrics.count_assigned(name, loaded.version, ((segment, 1),), int(far or off_plane))
+        live.observe_one(loaded, batch.values, segment, far, off_plane, one[4])
+        return orjson.dumps({"name": name, "version": loaded.version,
+                             "results": [result_of(batch.ids[0], one, labels.get, _NO_IMPUTED)], "errors": []})
     features = loaded.compiled.features
     too_many_missing(batch, features)
     rows, errors = split_good_rows(batch, on_error == "skip")

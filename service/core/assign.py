@@ -170,9 +170,8 @@ class Assignment:
     residual: np.ndarray           # (n,) distance to the PCA reconstruction (0 without PCA)
     far: np.ndarray                # (n,) bool: distance over the segment's threshold
     off_plane: np.ndarray          # (n,) bool: residual over the segment's residual threshold
-    # One record scored by the single-record path: the same values as Python numbers (segment, distance,
-    # runner_up, margin, residual, far, off_plane; runner_up and margin None when k == 1), so that callers
-    # reading one record need not read them back out of the arrays. None otherwise.
+    # One record scored by the single-record path: the same values as Python numbers (``assign_one``'s tuple),
+    # so that callers reading one record need not read them back out of the arrays. None otherwise.
     one: tuple | None = None
 
     @property
@@ -234,7 +233,7 @@ def impute(compiled: CompiledBundle, values: np.ndarray) -> tuple[np.ndarray, np
 def assign(compiled: CompiledBundle, values: np.ndarray) -> Assignment:
     """Nearest segment of each row of ``values`` (n, p), which must hold no NaN (impute first)."""
     if values.shape[0] == 1:
-        return _assign_one(compiled, values[0])
+        return as_assignment(assign_one(compiled, values[0]))
     if values.shape[0] <= DIRECT_ROWS:
         segment, first_sq, runner_up, second_sq, residual = _assign_direct(compiled, values)
     else:
@@ -247,11 +246,14 @@ def assign(compiled: CompiledBundle, values: np.ndarray) -> Assignment:
     return Assignment(segment, distance, runner_up, margin, residual, far, off_plane)
 
 
-def _assign_one(compiled: CompiledBundle, row: np.ndarray) -> Assignment:
-    """One record (the single-record call): one product with the folded matrix (``SingleRecordForm``), then the
-    ranking of the k squared distances, the residual and the threshold tests on Python floats (four numpy calls
-    to score, three to build the answer's arrays; each costs about a microsecond however small its array). Where the expansion is in doubt (as the batch
-    path's rule says), a value is not finite, or the bundle has no folded matrix: ``_assign_one_directly``."""
+def assign_one(compiled: CompiledBundle, row: np.ndarray) -> tuple:
+    """One record (p,) with no NaN -> its assignment as Python numbers: (segment, distance, runner_up, margin,
+    residual, far, off_plane), runner_up and margin None when k == 1 (``as_assignment`` makes the arrays).
+
+    One product with the folded matrix (``SingleRecordForm``), then the ranking of the k squared distances, the
+    residual and the threshold tests on Python floats: four numpy calls, each of which costs about a
+    microsecond however small its array. Where the expansion is in doubt (as the batch path's rule says), a
+    value is not finite, or the bundle has no folded matrix: ``_assign_one_directly``."""
     form = compiled.single_record_form
     if form is None:
         return _assign_one_directly(compiled, row)
@@ -267,10 +269,10 @@ def _assign_one(compiled: CompiledBundle, row: np.ndarray) -> Assignment:
         return _assign_one_directly(compiled, row)          # also NaN and overflow: compared False above
     has_residual = compiled.has_residual
     residual = math.hypot(*out[k + d:]) if has_residual else 0.0
-    return _one_assignment(compiled, order, squared, residual, has_residual)
+    return _one_values(compiled, order, squared, residual, has_residual)
 
 
-def _assign_one_directly(compiled: CompiledBundle, row: np.ndarray) -> Assignment:
+def _assign_one_directly(compiled: CompiledBundle, row: np.ndarray) -> tuple:
     """One record step by step: the direct path's arithmetic on vectors (no expansion, no p x p matrix)."""
     u = row - compiled.centre
     u *= compiled.scale
@@ -288,30 +290,35 @@ def _assign_one_directly(compiled: CompiledBundle, row: np.ndarray) -> Assignmen
     diff = z - compiled.centroids
     squared = np.einsum("ij,ij->i", diff, diff).tolist()   # (k,) direct squared distances, as _two_nearest
     order = sorted(range(len(squared)), key=squared.__getitem__)   # stable: ties go to the lower id
-    return _one_assignment(compiled, order, squared, residual, has_residual)
+    return _one_values(compiled, order, squared, residual, has_residual)
 
 
-def _one_assignment(compiled: CompiledBundle, order: list[int], squared: list[float], residual: float,
-                    has_residual: bool) -> Assignment:
-    """The Assignment of one record from its ranked squared distances and its residual (Python floats)."""
+def _one_values(compiled: CompiledBundle, order: list[int], squared: list[float], residual: float,
+                has_residual: bool) -> tuple:
+    """``assign_one``'s tuple from the ranked squared distances and the residual (Python floats)."""
     nearest = order[0]
     distance = math.sqrt(squared[nearest])
     far = distance > compiled.distance_thresholds_list[nearest]
     off_plane = has_residual and residual > compiled.residual_thresholds_list[nearest]
-    # One array per type, sliced into the 1-element fields (a slice costs a third of a new array).
-    flags = np.array([far, off_plane])
     if len(order) > 1:
         runner = order[1]
-        gap = math.sqrt(squared[runner]) - distance
-        segments = np.array([nearest, runner])
-        floats = np.array([distance, residual, gap])
-        runner_up, margin = segments[1:], floats[2:]
+        return nearest, distance, runner, math.sqrt(squared[runner]) - distance, residual, far, off_plane
+    return nearest, distance, None, None, residual, far, off_plane
+
+
+def as_assignment(one: tuple) -> Assignment:
+    """``assign_one``'s tuple as a one-record Assignment (which keeps the tuple as ``one``)."""
+    segment, distance, runner_up, margin, residual, far, off_plane = one
+    # One array per type, sliced into the 1-element fields (a slice costs a third of a new array).
+    flags = np.array([far, off_plane])
+    if runner_up is not None:
+        segments = np.array([segment, runner_up])
+        floats = np.array([distance, residual, margin])
+        runner_ups, margins = segments[1:], floats[2:]
     else:
-        runner = gap = None
-        segments, floats = np.array([nearest]), np.array([distance, residual])
-        runner_up = margin = None
-    return Assignment(segments[:1], floats[:1], runner_up, margin, floats[1:2], flags[:1], flags[1:],
-                      (nearest, distance, runner, gap, residual, far, bool(off_plane)))
+        segments, floats = np.array([segment]), np.array([distance, residual])
+        runner_ups = margins = None
+    return Assignment(segments[:1], floats[:1], runner_ups, margins, floats[1:2], flags[:1], flags[1:], one)
 
 
 def _two_nearest(compiled: CompiledBundle, z: np.ndarray):
