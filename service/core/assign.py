@@ -50,6 +50,11 @@ RECOMPUTE_ELEMENTS = 1 << 20  # bounds the (rows, k, d) temporary of a direct re
 # Largest folded single-record matrix (p x (k + d + p) floats, 256 KiB): beyond it the product costs more than
 # the numpy calls it saves, and the p x p block would grow with the square of the feature count.
 FOLD_MAX_ENTRIES = 32_768
+# The centre is folded into the single-record offset (one numpy call less) only while every |centre * scale| is at
+# most this: a raw value then exceeds its centred scaled form by at most ~1e3 standard units, so computing
+# x * scale and subtracting centre * scale afterwards loses at most ~3 of float64's ~16 digits. A feature like
+# 1e9 + N(0, 1) would lose 9: there the centre is subtracted first.
+CENTRE_FOLD_LIMIT = 1e3
 
 
 @dataclass(frozen=True)
@@ -58,10 +63,12 @@ class SingleRecordForm:
     ``(x - centre) @ matrix - offset`` is ``[z.m_0 .. z.m_{k-1}, z_0 .. z_{d-1}, r_0 .. r_{t-1}]`` for a raw row
     ``x`` (no NaN), with ``z`` its clustering coordinates and ``r`` the centred scaled row minus its PCA
     reconstruction (t = p when PCA drops dimensions, else 0). The scale is folded into the matrix's rows and the
-    space centre into ``offset``; the centre is still subtracted first (no cancellation of a large offset)."""
+    space centre into ``offset``; so is the centre (``centre`` None) where that costs at most a few digits
+    (``CENTRE_FOLD_LIMIT``), else it is subtracted first (no cancellation of a large offset)."""
 
     matrix: np.ndarray                # (p, k + d + t)
     offset: np.ndarray                # (k + d + t,)
+    centre: np.ndarray | None         # (p,) subtracted before the product, or None when folded into offset
     k: int
     d: int
     centroid_sq_norms: list[float]    # ||m_c||^2 as Python floats
@@ -80,7 +87,11 @@ def fold_single_record(compiled: "CompiledBundle") -> SingleRecordForm | None:
         blocks.append(np.eye(p) - compiled.axes.T @ compiled.axes)             # u minus its reconstruction
     folded = np.hstack(blocks)                                                # u @ folded, u centred and scaled
     norms = compiled.centroid_sq_norms
-    return SingleRecordForm(np.ascontiguousarray(compiled.scale[:, None] * folded), compiled.space_centre @ folded,
+    offset = compiled.space_centre @ folded
+    centre = compiled.centre
+    if np.all(np.abs(centre * compiled.scale) <= CENTRE_FOLD_LIMIT):
+        offset, centre = offset + (centre * compiled.scale) @ folded, None
+    return SingleRecordForm(np.ascontiguousarray(compiled.scale[:, None] * folded), offset, centre,
                             k, d, norms.tolist(), float(norms.max()))
 
 
@@ -251,13 +262,13 @@ def assign_one(compiled: CompiledBundle, row: np.ndarray) -> tuple:
     residual, far, off_plane), runner_up and margin None when k == 1 (``as_assignment`` makes the arrays).
 
     One product with the folded matrix (``SingleRecordForm``), then the ranking of the k squared distances, the
-    residual and the threshold tests on Python floats: four numpy calls, each of which costs about a
-    microsecond however small its array. Where the expansion is in doubt (as the batch path's rule says), a
+    residual and the threshold tests on Python floats: three or four numpy calls, each of which costs about a
+    microsecond however small its array (several when the caches are cold, as between a server's requests). Where the expansion is in doubt (as the batch path's rule says), a
     value is not finite, or the bundle has no folded matrix: ``_assign_one_directly``."""
     form = compiled.single_record_form
     if form is None:
         return _assign_one_directly(compiled, row)
-    out = ((row - compiled.centre) @ form.matrix - form.offset).tolist()
+    out = ((row if form.centre is None else row - form.centre) @ form.matrix - form.offset).tolist()
     k, d = form.k, form.d
     z_sq = math.hypot(*out[k:k + d]) ** 2
     squared = [z_sq - 2.0 * cross + norm for cross, norm in zip(out[:k], form.centroid_sq_norms)]
