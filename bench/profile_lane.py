@@ -13,7 +13,12 @@ of the process (``time.process_time``: every thread, as the HTTP bench's server 
 over the rounds. Then a cProfile of ``--profile-calls`` lane requests: the top entries by cumulative and by
 own time (the profiler inflates every call; read the shares, not the times).
 
-    PYTHONPATH=$PWD .venv/bin/python bench/profile_lane.py [--rounds 15] [--calls 2000] [--profile-calls 3000]
+``--cold``: also time each request after evicting the CPU caches (a pass over a 4 MiB array and over 20,000
+small dicts, the work of other processes between two requests of a server at one connection), minus the
+eviction's own CPU time measured alone in the same rounds: how much each app's request costs when its code and
+data are no longer cached.
+
+    PYTHONPATH=$PWD .venv/bin/python bench/profile_lane.py [--rounds 15] [--calls 2000] [--profile-calls 3000] [--cold]
 """
 
 from __future__ import annotations
@@ -96,6 +101,30 @@ async def timed(call, calls: int) -> tuple[float, float]:
     return (time.process_time() - cpu) / calls, (time.perf_counter() - wall) / calls
 
 
+EVICT_ARRAY = None
+EVICT_OBJECTS = None
+
+
+def evict() -> None:
+    """Touch 4 MiB of array and 20,000 small dicts: what other processes leave in the caches between requests."""
+    global EVICT_ARRAY, EVICT_OBJECTS
+    if EVICT_ARRAY is None:
+        import numpy as np
+        EVICT_ARRAY = np.ones(4 * 1024 * 1024 // 8)
+        EVICT_OBJECTS = [{"a": i, "b": str(i)} for i in range(20_000)]
+    EVICT_ARRAY.sum()
+    sum(len(item) for item in EVICT_OBJECTS)
+
+
+async def timed_cold(call, calls: int) -> float:
+    """CPU seconds per request, each request after ``evict()`` (the eviction's own time included)."""
+    cpu = time.process_time()
+    for _ in range(calls):
+        evict()
+        await call()
+    return (time.process_time() - cpu) / calls
+
+
 async def main_async(args) -> None:
     workdir = Path(tempfile.mkdtemp(prefix="segscore-profile-lane-"))
     try:
@@ -125,6 +154,25 @@ async def main_async(args) -> None:
                 print(f"{label:9s} CPU {cpu[label]:7.1f} us per request   wall {wall[label]:7.1f} us")
             print(f"segscore / floor: CPU {cpu['segscore'] / cpu['floor']:.2f}x, "
                   f"wall {wall['segscore'] / wall['floor']:.2f}x")
+            if args.cold:
+                cold: dict[str, list[float]] = {label: [] for label in calls}
+                alone: list[float] = []
+                calls_cold = max(50, args.calls // 10)
+                for round_number in range(args.rounds):
+                    started = time.process_time()
+                    for _ in range(calls_cold):
+                        evict()
+                    alone.append((time.process_time() - started) / calls_cold)
+                    order = list(calls) if round_number % 2 == 0 else list(calls)[::-1]
+                    for label in order:
+                        cold[label].append(await timed_cold(calls[label], calls_cold))
+                base = statistics.median(alone)
+                cold_cpu = {label: (statistics.median(runs) - base) * 1e6 for label, runs in cold.items()}
+                print(f"after a cache eviction ({args.rounds} rounds x {calls_cold} requests; the eviction's own "
+                      f"{base * 1e6:.0f} us subtracted):")
+                for label in calls:
+                    print(f"{label:9s} CPU {cold_cpu[label]:7.1f} us per request")
+                print(f"segscore / floor after an eviction: CPU {cold_cpu['segscore'] / cold_cpu['floor']:.2f}x")
 
             profiler = cProfile.Profile(time.process_time)
             call = calls["segscore"]
@@ -156,6 +204,7 @@ def main() -> None:
     parser.add_argument("--calls", type=int, default=2000, help="requests per app per round (default 2000)")
     parser.add_argument("--profile-calls", type=int, default=3000, help="lane requests profiled (default 3000)")
     parser.add_argument("--top", type=int, default=20, help="profile entries shown per ordering (default 20)")
+    parser.add_argument("--cold", action="store_true", help="also time requests after a cache eviction")
     asyncio.run(main_async(parser.parse_args()))
 
 

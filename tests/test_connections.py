@@ -170,3 +170,32 @@ def test_a_large_body_in_one_write_is_not_taken_for_a_large_head(server):
         assert status == 422 and b"name" in answer
         sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: t\r\n\r\n")          # and the connection lives on
         assert _read_response(sock)[0] == 200
+
+
+def test_the_assign_lane_reads_a_body_in_parts_and_times_out_one_that_stops(server):
+    """The assign lane reads its body itself (service/api/payload.py, receive_within): on a real server, a body
+    whose second part comes 0.4 s after the first (under the 1 s limit) is read and answered; on the same
+    kept-alive connection, a body that stops arriving is the same 408 with Connection: close as elsewhere.
+    Reference data: the Iris data set shipped with scikit-learn."""
+    import orjson
+    from sklearn.datasets import load_iris
+
+    base, port, _ = server
+    iris = load_iris()
+    records = [dict(zip(iris.feature_names, map(float, row))) for row in iris.data]
+    fitted = httpx2.post(f"{base}/v1/segmentations/lane/fit", json={"records": records, "k": 3}, timeout=120)
+    assert fitted.status_code == 201, fitted.text
+    body = orjson.dumps({"records": records[:1]})
+    head = (f"POST /v1/segmentations/lane/assign HTTP/1.1\r\nHost: t\r\nContent-Type: application/json\r\n"
+            f"Content-Length: {len(body)}\r\n\r\n").encode()
+    with socket.create_connection(("127.0.0.1", port), timeout=SOCKET_TIMEOUT) as sock:
+        sock.sendall(head + body[:10])
+        time.sleep(0.4)
+        sock.sendall(body[10:])
+        status, _, answer = _read_response(sock)
+        assert status == 200 and len(orjson.loads(answer)["results"]) == 1
+        sock.sendall(head + body[:10])
+        status, headers, answer = _read_response(sock)    # the server's time-out is 1 s; we wait up to 15 s
+        assert status == 408 and headers["connection"].lower() == "close"
+        assert b"request body" in answer
+        assert _closed_by_server(sock)

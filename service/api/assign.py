@@ -31,7 +31,7 @@ from service.api.payload import (
     wants_arrow,
 )
 from service.api.validation import MAX_VERSION, PLAIN_DECIMAL, StrictQuery, VersionNumber, error_responses
-from service.core.assign import Assignment, assign, impute
+from service.core.assign import Assignment, assign, assign_one, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
 from service.deps import AssignScope, SettingsDep, StoreDep, actor_of, key_of_authorization
 from service.errors import InvalidRecords, RecordProblem, ServiceError
@@ -47,17 +47,24 @@ RECORDS_BODY = request_body_openapi(AssignRequest, "header row, then one row per
                                     answer=AssignResponse)
 _REASONS = ([], ["distance"], ["residual"], ["distance", "residual"])
 _NO_IMPUTED: list[str] = []
+_ONE_ROW = np.zeros(1, dtype=np.intp)      # the row indices of a one-record batch (read only, shared)
+_ONE_ROW.flags.writeable = False
 
 
 def split_good_rows(batch: Batch, skip_bad: bool) -> tuple[np.ndarray, list[dict[str, Any]]]:
     """Row indices to compute, and the error items to return (raises unless ``skip_bad``)."""
     if not batch.problems:
-        return np.arange(batch.values.shape[0]), []
+        n = batch.values.shape[0]
+        return (_ONE_ROW if n == 1 else np.arange(n)), []
     if not skip_bad:
         raise InvalidRecords(batch.problems[:MAX_LISTED_PROBLEMS])
     good = np.ones(batch.values.shape[0], dtype=bool)
     good[batch.bad_rows] = False
     return np.flatnonzero(good), [p.as_dict() for p in batch.problems]
+
+
+TOO_FAR = "the record's values are too far from the training data for its distances to be computed in float64; " \
+          "check the units"
 
 
 def run_assignment(loaded: LoadedVersion, values: np.ndarray, rows: np.ndarray | None = None, *,
@@ -73,9 +80,9 @@ def run_assignment(loaded: LoadedVersion, values: np.ndarray, rows: np.ndarray |
         # Only where numpy's overflow warnings are errors (the tests): compute again, then refuse below.
         with np.errstate(over="ignore", invalid="ignore"):
             result = assign(loaded.compiled, filled)
-    if result.distance.size == 1:     # one record: three float tests instead of five array operations
-        margin = 0.0 if result.margin is None else result.margin.item()
-        if math.isfinite(result.distance.item()) and math.isfinite(result.residual.item()) and math.isfinite(margin):
+    one = result.one
+    if one is not None:               # one record: three float tests instead of five array operations
+        if math.isfinite(one[1]) and math.isfinite(one[4]) and (one[3] is None or math.isfinite(one[3])):
             return result, missing
     finite = np.isfinite(result.distance) & np.isfinite(result.residual)
     if result.margin is not None:
@@ -83,10 +90,31 @@ def run_assignment(loaded: LoadedVersion, values: np.ndarray, rows: np.ndarray |
     if not finite.all():
         bad = np.flatnonzero(~finite)
         index = bad if rows is None else rows[bad]
-        raise InvalidRecords([RecordProblem(int(i), "", "the record's values are too far from the training data "
-                                            "for its distances to be computed in float64; check the units")
-                              for i in index[:MAX_LISTED_PROBLEMS]])
+        raise InvalidRecords([RecordProblem(int(i), "", TOO_FAR) for i in index[:MAX_LISTED_PROBLEMS]])
     return result, missing
+
+
+def score_one(loaded: LoadedVersion, row: np.ndarray) -> tuple:
+    """``run_assignment`` for one record with no missing value, as ``assign_one``'s tuple of Python numbers (no
+    arrays): the same scoring and the same 422 for a record whose distances overflow float64."""
+    try:
+        one = assign_one(loaded.compiled, row)
+    except (FloatingPointError, RuntimeWarning):
+        with np.errstate(over="ignore", invalid="ignore"):      # as run_assignment
+            one = assign_one(loaded.compiled, row)
+    margin = one[3]
+    if not (math.isfinite(one[1]) and math.isfinite(one[4]) and (margin is None or math.isfinite(margin))):
+        raise InvalidRecords([RecordProblem(0, "", TOO_FAR)])
+    return one
+
+
+def result_of(record_id: Any, one: tuple, label_of, imputed: list[str]) -> dict[str, Any]:
+    """One answer item from ``assign_one``'s tuple (``build_results`` for one record)."""
+    segment, distance, runner_up, margin, residual, far, off_plane = one
+    reason = int(far) + 2 * int(off_plane)
+    return {"id": record_id, "segment": segment, "label": label_of(segment), "distance": distance,
+            "outlier": reason > 0, "outlier_reasons": _REASONS[reason], "runner_up": runner_up, "margin": margin,
+            "residual": residual, "imputed": imputed}
 
 
 def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any], rows: np.ndarray,
@@ -95,6 +123,10 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
     features = loaded.compiled.features
     label_of = labels.get
     n = rows.size
+    one = result.one
+    if one is not None and n == 1 == len(ids):     # one record: its Python values, no array reads
+        imputed = _NO_IMPUTED if missing is None else [features[j] for j in np.flatnonzero(missing[0]).tolist()]
+        return [result_of(ids[0], one, label_of, imputed)]
     if n == len(ids):
         ids_out = ids
     else:
@@ -119,7 +151,11 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
 
 
 def count_assigned(metrics, name: str, version: int, result: Assignment) -> None:
-    if result.segment.size == 1:     # one record: item reads instead of a bincount and a count
+    one = result.one
+    if one is not None:              # one record: its Python values instead of a bincount and a count
+        metrics.count_assigned(name, version, ((one[0], 1),), int(one[5] or one[6]))
+        return
+    if result.segment.size == 1:
         metrics.count_assigned(name, version, ((result.segment.item(), 1),),
                                int(result.far.item() or result.off_plane.item()))
         return
@@ -161,6 +197,14 @@ async def assign_answer(settings: Settings, metrics, live, name: str, loaded: Lo
                         batch: Batch, on_error: str, arrow: bool) -> bytes:
     """A checked batch -> scoring (``run_assignment``) -> counters (``metrics``) and live drift (``live``) -> the
     answer's bytes (``build_results`` as JSON, or Arrow). Shared by the FastAPI route and the assign lane."""
+    if not arrow and not batch.may_have_nan and not batch.problems and batch.values.shape[0] == 1:
+        # One record with every value present (the single-record call): scored as Python numbers, no arrays.
+        one = score_one(loaded, batch.values[0])
+        segment, far, off_plane = one[0], one[5], one[6]
+        metrics.count_assigned(name, loaded.version, ((segment, 1),), int(far or off_plane))
+        live.observe_one(loaded, batch.values, segment, far, off_plane, one[4])
+        return orjson.dumps({"name": name, "version": loaded.version,
+                             "results": [result_of(batch.ids[0], one, labels.get, _NO_IMPUTED)], "errors": []})
     features = loaded.compiled.features
     too_many_missing(batch, features)
     rows, errors = split_good_rows(batch, on_error == "skip")
@@ -288,8 +332,9 @@ class AssignLane:
             await send(start)
             await send(end)
         finally:
-            self.metrics.request_done("POST", ASSIGN_PATH, status, perf_counter() - started, {"name": name},
-                                      self.settings.access_log)
+            access_log = self.settings.access_log
+            self.metrics.request_done("POST", ASSIGN_PATH, status, perf_counter() - started,
+                                      {"name": name} if access_log else _NO_PATH_PARAMS, access_log)
             request_id_var.reset(token)
 
     async def _answer(self, scope, receive, headers: dict[bytes, bytes], name: str, version: int | None,
@@ -299,12 +344,14 @@ class AssignLane:
         authorization = headers.get(b"authorization")
         key = None if authorization is None else key_of_authorization(authorization.decode("latin-1"))
         actor_of(self.keyring, key, ASSIGN_SCOPE)          # assign writes nothing: the actor is not kept
-        content_type = headers.get(b"content-type", b"").decode("latin-1")
+        content_type = headers.get(b"content-type", b"")
         declared = headers.get(b"content-length")
         declared = None if declared is None else declared.decode("latin-1")
         accept = headers.get(b"accept")
         arrow = accept is not None and accepts_arrow(accept.decode("latin-1"))
-        if arrow or kind_of_content_type(content_type, arrow=True) != "json" or not length_is_small(declared, settings):
+        json = content_type == b"application/json" or kind_of_content_type(content_type.decode("latin-1"),
+                                                                           arrow=True) == "json"
+        if arrow or not json or not length_is_small(declared, settings):
             # CSV, Arrow, a large or unannounced body: the route's own reader (slot, worker thread).
             receive = timed_receive(receive, settings.body_read_timeout_seconds)
             response = await answer_assign(Request(scope, receive), name, version, on_error, settings, self.store)

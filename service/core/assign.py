@@ -50,6 +50,11 @@ RECOMPUTE_ELEMENTS = 1 << 20  # bounds the (rows, k, d) temporary of a direct re
 # Largest folded single-record matrix (p x (k + d + p) floats, 256 KiB): beyond it the product costs more than
 # the numpy calls it saves, and the p x p block would grow with the square of the feature count.
 FOLD_MAX_ENTRIES = 32_768
+# The centre is folded into the single-record offset (one numpy call less) only while every |centre * scale| is at
+# most this: a raw value then exceeds its centred scaled form by at most ~1e3 standard units, so computing
+# x * scale and subtracting centre * scale afterwards loses at most ~3 of float64's ~16 digits. A feature like
+# 1e9 + N(0, 1) would lose 9: there the centre is subtracted first.
+CENTRE_FOLD_LIMIT = 1e3
 
 
 @dataclass(frozen=True)
@@ -58,10 +63,12 @@ class SingleRecordForm:
     ``(x - centre) @ matrix - offset`` is ``[z.m_0 .. z.m_{k-1}, z_0 .. z_{d-1}, r_0 .. r_{t-1}]`` for a raw row
     ``x`` (no NaN), with ``z`` its clustering coordinates and ``r`` the centred scaled row minus its PCA
     reconstruction (t = p when PCA drops dimensions, else 0). The scale is folded into the matrix's rows and the
-    space centre into ``offset``; the centre is still subtracted first (no cancellation of a large offset)."""
+    space centre into ``offset``; so is the centre (``centre`` None) where that costs at most a few digits
+    (``CENTRE_FOLD_LIMIT``), else it is subtracted first (no cancellation of a large offset)."""
 
     matrix: np.ndarray                # (p, k + d + t)
     offset: np.ndarray                # (k + d + t,)
+    centre: np.ndarray | None         # (p,) subtracted before the product, or None when folded into offset
     k: int
     d: int
     centroid_sq_norms: list[float]    # ||m_c||^2 as Python floats
@@ -80,7 +87,11 @@ def fold_single_record(compiled: "CompiledBundle") -> SingleRecordForm | None:
         blocks.append(np.eye(p) - compiled.axes.T @ compiled.axes)             # u minus its reconstruction
     folded = np.hstack(blocks)                                                # u @ folded, u centred and scaled
     norms = compiled.centroid_sq_norms
-    return SingleRecordForm(np.ascontiguousarray(compiled.scale[:, None] * folded), compiled.space_centre @ folded,
+    offset = compiled.space_centre @ folded
+    centre = compiled.centre
+    if np.all(np.abs(centre * compiled.scale) <= CENTRE_FOLD_LIMIT):
+        offset, centre = offset + (centre * compiled.scale) @ folded, None
+    return SingleRecordForm(np.ascontiguousarray(compiled.scale[:, None] * folded), offset, centre,
                             k, d, norms.tolist(), float(norms.max()))
 
 
@@ -161,7 +172,7 @@ class CompiledBundle:
         return np.sqrt(np.einsum("ij,ij->i", u, u))
 
 
-@dataclass(frozen=True)
+@dataclass(slots=True)      # not frozen: a frozen dataclass's __init__ costs ~1 us, a tenth of one record's scoring
 class Assignment:
     segment: np.ndarray            # (n,) int
     distance: np.ndarray           # (n,) to the nearest centroid
@@ -170,6 +181,9 @@ class Assignment:
     residual: np.ndarray           # (n,) distance to the PCA reconstruction (0 without PCA)
     far: np.ndarray                # (n,) bool: distance over the segment's threshold
     off_plane: np.ndarray          # (n,) bool: residual over the segment's residual threshold
+    # One record scored by the single-record path: the same values as Python numbers (``assign_one``'s tuple),
+    # so that callers reading one record need not read them back out of the arrays. None otherwise.
+    one: tuple | None = None
 
     @property
     def outlier(self) -> np.ndarray:
@@ -230,7 +244,7 @@ def impute(compiled: CompiledBundle, values: np.ndarray) -> tuple[np.ndarray, np
 def assign(compiled: CompiledBundle, values: np.ndarray) -> Assignment:
     """Nearest segment of each row of ``values`` (n, p), which must hold no NaN (impute first)."""
     if values.shape[0] == 1:
-        return _assign_one(compiled, values[0])
+        return as_assignment(assign_one(compiled, values[0]))
     if values.shape[0] <= DIRECT_ROWS:
         segment, first_sq, runner_up, second_sq, residual = _assign_direct(compiled, values)
     else:
@@ -243,15 +257,18 @@ def assign(compiled: CompiledBundle, values: np.ndarray) -> Assignment:
     return Assignment(segment, distance, runner_up, margin, residual, far, off_plane)
 
 
-def _assign_one(compiled: CompiledBundle, row: np.ndarray) -> Assignment:
-    """One record (the single-record call): one product with the folded matrix (``SingleRecordForm``), then the
-    ranking of the k squared distances, the residual and the threshold tests on Python floats (four numpy calls
-    to score, three to build the answer's arrays; each costs about a microsecond however small its array). Where the expansion is in doubt (as the batch
-    path's rule says), a value is not finite, or the bundle has no folded matrix: ``_assign_one_directly``."""
+def assign_one(compiled: CompiledBundle, row: np.ndarray) -> tuple:
+    """One record (p,) with no NaN -> its assignment as Python numbers: (segment, distance, runner_up, margin,
+    residual, far, off_plane), runner_up and margin None when k == 1 (``as_assignment`` makes the arrays).
+
+    One product with the folded matrix (``SingleRecordForm``), then the ranking of the k squared distances, the
+    residual and the threshold tests on Python floats: three or four numpy calls, each of which costs about a
+    microsecond however small its array (several when the caches are cold, as between a server's requests). Where the expansion is in doubt (as the batch path's rule says), a
+    value is not finite, or the bundle has no folded matrix: ``_assign_one_directly``."""
     form = compiled.single_record_form
     if form is None:
         return _assign_one_directly(compiled, row)
-    out = ((row - compiled.centre) @ form.matrix - form.offset).tolist()
+    out = ((row if form.centre is None else row - form.centre) @ form.matrix - form.offset).tolist()
     k, d = form.k, form.d
     z_sq = math.hypot(*out[k:k + d]) ** 2
     squared = [z_sq - 2.0 * cross + norm for cross, norm in zip(out[:k], form.centroid_sq_norms)]
@@ -263,10 +280,10 @@ def _assign_one(compiled: CompiledBundle, row: np.ndarray) -> Assignment:
         return _assign_one_directly(compiled, row)          # also NaN and overflow: compared False above
     has_residual = compiled.has_residual
     residual = math.hypot(*out[k + d:]) if has_residual else 0.0
-    return _one_assignment(compiled, order, squared, residual, has_residual)
+    return _one_values(compiled, order, squared, residual, has_residual)
 
 
-def _assign_one_directly(compiled: CompiledBundle, row: np.ndarray) -> Assignment:
+def _assign_one_directly(compiled: CompiledBundle, row: np.ndarray) -> tuple:
     """One record step by step: the direct path's arithmetic on vectors (no expansion, no p x p matrix)."""
     u = row - compiled.centre
     u *= compiled.scale
@@ -284,27 +301,35 @@ def _assign_one_directly(compiled: CompiledBundle, row: np.ndarray) -> Assignmen
     diff = z - compiled.centroids
     squared = np.einsum("ij,ij->i", diff, diff).tolist()   # (k,) direct squared distances, as _two_nearest
     order = sorted(range(len(squared)), key=squared.__getitem__)   # stable: ties go to the lower id
-    return _one_assignment(compiled, order, squared, residual, has_residual)
+    return _one_values(compiled, order, squared, residual, has_residual)
 
 
-def _one_assignment(compiled: CompiledBundle, order: list[int], squared: list[float], residual: float,
-                    has_residual: bool) -> Assignment:
-    """The Assignment of one record from its ranked squared distances and its residual (Python floats)."""
+def _one_values(compiled: CompiledBundle, order: list[int], squared: list[float], residual: float,
+                has_residual: bool) -> tuple:
+    """``assign_one``'s tuple from the ranked squared distances and the residual (Python floats)."""
     nearest = order[0]
     distance = math.sqrt(squared[nearest])
     far = distance > compiled.distance_thresholds_list[nearest]
     off_plane = has_residual and residual > compiled.residual_thresholds_list[nearest]
-    # One array per type, sliced into the 1-element fields (a slice costs a third of a new array).
-    flags = np.array([far, off_plane])
     if len(order) > 1:
         runner = order[1]
-        segments = np.array([nearest, runner])
-        floats = np.array([distance, residual, math.sqrt(squared[runner]) - distance])
-        runner_up, margin = segments[1:], floats[2:]
+        return nearest, distance, runner, math.sqrt(squared[runner]) - distance, residual, far, off_plane
+    return nearest, distance, None, None, residual, far, off_plane
+
+
+def as_assignment(one: tuple) -> Assignment:
+    """``assign_one``'s tuple as a one-record Assignment (which keeps the tuple as ``one``)."""
+    segment, distance, runner_up, margin, residual, far, off_plane = one
+    # One array per type, sliced into the 1-element fields (a slice costs a third of a new array).
+    flags = np.array([far, off_plane])
+    if runner_up is not None:
+        segments = np.array([segment, runner_up])
+        floats = np.array([distance, residual, margin])
+        runner_ups, margins = segments[1:], floats[2:]
     else:
-        segments, floats = np.array([nearest]), np.array([distance, residual])
-        runner_up = margin = None
-    return Assignment(segments[:1], floats[:1], runner_up, margin, floats[1:2], flags[:1], flags[1:])
+        segments, floats = np.array([segment]), np.array([distance, residual])
+        runner_ups = margins = None
+    return Assignment(segments[:1], floats[:1], runner_ups, margins, floats[1:2], flags[:1], flags[1:], one)
 
 
 def _two_nearest(compiled: CompiledBundle, z: np.ndarray):

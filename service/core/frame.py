@@ -247,8 +247,8 @@ def plain_record_batch(record: dict[str, Any], features: Sequence[str], id_colum
     kinds = set(map(type, row))
     if kinds <= _PLAIN_TYPES:
         nulls = False
-        # min/max may step over a NaN, a sum may not (an int beyond float64's range fails max/min first).
-        if not (-MAX_ABS_VALUE <= min(row) and max(row) <= MAX_ABS_VALUE and math.isfinite(sum(row))):
+        # max may step over a NaN, a sum may not (an int beyond float64's range fails max first).
+        if not (max(map(abs, row)) <= MAX_ABS_VALUE and math.isfinite(sum(row))):
             return None
     elif kinds <= _NUMBER_TYPES:
         nulls = True
@@ -261,7 +261,7 @@ def plain_record_batch(record: dict[str, Any], features: Sequence[str], id_colum
         ident = 0                                   # no id: the record's index, as _ids
     elif id_column is not None and check_id(ident) is not None:
         return None
-    return Batch(np.array([row], dtype=np.float64), [ident], [], may_have_nan=nulls)
+    return Batch(np.array(row, dtype=np.float64)[None], [ident], [], may_have_nan=nulls)   # a flat build: faster
 
 
 def _matrix_from_table(table: list[tuple[Any, ...]], features: Sequence[str],

@@ -1,8 +1,9 @@
 """The live recorder: takes assigned batches off the assign path, counts them into time buckets, flushes the
 buckets to the store, where replicas' counts merge by addition.
 
-The assign route makes ONE call, ``observe``, after scoring: it appends references to the batch's checked
-matrix and its assignment to a queue (a lock, an append and an addition, whatever the batch size). The queue holds at most
+The assign route makes ONE call, ``observe`` (``observe_one`` for a single record scored as Python numbers),
+after scoring: it appends references to the batch's checked matrix and its assignment to a queue (a lock, an
+append and an addition, whatever the batch size). The queue holds at most
 ``MAX_QUEUED_BYTES`` of record values: past that, ``observe`` tallies on the caller's thread. A background thread
 (``run``) then, every ``TALLY_SECONDS``, bins what is queued (``service.live.counts.tally``, vectorised over all
 the queued records of a version at once), adds the counts to the bucket of the moment each batch was assigned,
@@ -43,6 +44,15 @@ def layout_of(loaded) -> CountLayout:
                         loaded.compiled.has_residual)
 
 
+def _column(parts: list) -> np.ndarray:
+    """One column of queued assignments: arrays (``observe``) and Python numbers (``observe_one``), in order."""
+    if not any(isinstance(part, np.ndarray) for part in parts):
+        return np.array(parts)                               # single records only: one array build for all
+    if len(parts) == 1:
+        return parts[0]
+    return np.concatenate([part if isinstance(part, np.ndarray) else np.array([part]) for part in parts])
+
+
 class LiveOff:
     """The recorder when live drift is off (``SEGSCORE_LIVE_DRIFT=false``): nothing is kept."""
 
@@ -50,6 +60,9 @@ class LiveOff:
     inline_tallies = 0
 
     def observe(self, loaded, values, assignment) -> None:
+        return None
+
+    def observe_one(self, loaded, values, segment, far, off_plane, residual) -> None:
         return None
 
     def queued_bytes(self) -> int:
@@ -106,6 +119,19 @@ class LiveRecorder:
             self.inline_tallies += 1
             self.tally()
 
+    def observe_one(self, loaded, values: np.ndarray, segment: int, far: bool, off_plane: bool,
+                    residual: float) -> None:
+        """``observe`` for one record (``values`` of shape (1, p)) whose assignment is Python numbers (the
+        single-record call): the arrays the counts need are built for many such records at once, in ``tally``."""
+        item = (loaded, values, segment, far, off_plane, residual, self.clock())
+        with self._queue_lock:
+            self._queue.append(item)
+            self._queued_bytes += values.nbytes
+            over = self._queued_bytes > self.max_queued_bytes
+        if over:
+            self.inline_tallies += 1
+            self.tally()
+
     # ----------------------------------------------------------------- background work
     def bucket_of(self, moment: float) -> int:
         return int(moment // self.bucket_seconds) * self.bucket_seconds
@@ -137,9 +163,8 @@ class LiveRecorder:
             for key, items in groups.items():
                 layout = self._layout(loaded_of[key])
                 # columns 1-5 of the queued items: values, segment, far, off_plane, residual
-                values, segment, far, off_plane, residual = (
-                    (items[0][i] if len(items) == 1 else np.concatenate([item[i] for item in items]))
-                    for i in range(1, 6))
+                values = items[0][1] if len(items) == 1 else np.concatenate([item[1] for item in items])
+                segment, far, off_plane, residual = (_column([item[i] for item in items]) for i in range(2, 6))
                 counts = tally(layout, values, segment, far, off_plane, residual)
                 with self._flush_lock:
                     held = self._unflushed.get(key)

@@ -243,7 +243,8 @@ def test_an_unexpected_error_is_the_same_plain_500_on_both_routes(shop, seen, ir
     def broken(*args, **kwargs):
         raise RuntimeError("a record value that must not leak")
 
-    monkeypatch.setattr(assign_module, "run_assignment", broken)
+    for scoring in ("run_assignment", "score_one"):      # batches, and one record scored as Python numbers
+        monkeypatch.setattr(assign_module, scoring, broken)
     caplog.handler.addFilter(RequestIdFilter())       # as the service's stderr handler: the id on every line
     with TestClient(create_app(shop), raise_server_exceptions=True) as client:
         with caplog.at_level(logging.ERROR, logger="segscore"):

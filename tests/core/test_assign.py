@@ -201,11 +201,37 @@ def test_single_record_folded_matrix_is_the_pipeline_as_one_product():
     form = compile_bundle(bundle).single_record_form
     scaled = bundle.scaler.transform(training[:5])
     scores = bundle.pca.transform(scaled)
-    out = (training[:5] - compile_bundle(bundle).centre) @ form.matrix - form.offset
+    assert form.centre is None                      # Wine's centres are within a few standard units: folded
+    out = training[:5] @ form.matrix - form.offset
     k, d = bundle.k, scores.shape[1]
     np.testing.assert_allclose(out[:, :k], scores @ bundle.clusterer.cluster_centers_.T, rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(out[:, k:k + d], scores, rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(out[:, k + d:], scaled - bundle.pca.inverse_transform(scores), rtol=1e-9, atol=1e-12)
+
+
+def test_single_records_with_a_large_offset_feature_keep_their_precision():
+    # Reference: scikit-learn's stored StandardScaler, PCA and KMeans (KMeans.transform, KMeans.predict) and
+    # PCA.inverse_transform, as test_large_offset_feature_keeps_distances_exact_against_sklearn for the batch
+    # path: a feature of 1e9 + N(0, 1) one record at a time. Folding its centre would cancel ~9 digits, so the
+    # single-record form keeps subtracting it first, and distances stay within 1e-9.
+    rng = np.random.default_rng(8)
+    latent = rng.standard_normal((3_000, 3)) + rng.choice([-2.0, 0.0, 2.0], size=(3_000, 1))
+    x = np.column_stack([1e9 + latent[:, 0], latent[:, 1] * 3 + 5, latent[:, 2] - 1, latent.sum(axis=1)])
+    bundle = fit_bundle(x, config_for(range(4), components=3, k=3, n_init=1))
+    compiled = compile_bundle(bundle)
+    assert compiled.single_record_form.centre is not None
+    space = bundle.pca.transform(bundle.scaler.transform(x[:300]))
+    reference = bundle.clusterer.transform(space)                           # KMeans.transform
+    labels = bundle.clusterer.predict(space)                                # KMeans.predict
+    scaled = bundle.scaler.transform(x[:300])
+    residual = np.linalg.norm(scaled - bundle.pca.inverse_transform(space), axis=1)
+    ordered = np.sort(reference, axis=1)
+    for i in range(300):
+        one = core_assign.assign_one(compiled, x[i])
+        if ordered[i, 1] - ordered[i, 0] > 1e-12 * ordered[i, 1]:           # not an exact tie
+            assert one[0] == labels[i]
+        np.testing.assert_allclose(one[1], reference[i, labels[i]], rtol=1e-9, atol=0)
+        np.testing.assert_allclose(one[4], residual[i], rtol=1e-9, atol=1e-9 * np.linalg.norm(scaled[i]))
 
 
 def test_single_records_on_centroids_and_midpoints_are_recomputed(monkeypatch):

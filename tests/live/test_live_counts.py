@@ -194,3 +194,33 @@ def test_queue_is_bounded_in_bytes_and_nothing_is_dropped(version, tmp_path):
     recorder.flush()
     assert recorder.queued_bytes() == 0
     assert stored_counts(store, version) == reference_counts(version, values)
+
+
+def test_single_records_and_batches_mixed_in_one_tally_are_each_counted_once(version, tmp_path):
+    # Reference: tally of all the records at once (the definition, reference_counts): records observed one by
+    # one as Python numbers (observe_one, the single-record call) and batches (observe) queued together in the
+    # same bucket give the counts of the whole set, whether the single records are alone in a tally or mixed.
+    from service.core.assign import assign_one
+    from service.store import FilesystemStore
+
+    store = FilesystemStore(tmp_path / "store")
+    recorder = LiveRecorder(store, bucket_seconds=300, flush_seconds=2, retention_days=30, clock=lambda: 1_000_000.0)
+    values = drift_model(300, np.random.default_rng(33))
+    filled, _ = impute(version.compiled, values)
+    for i in range(0, 300, 30):
+        if i % 60:
+            recorder.observe(version, values[i:i + 30], assigned(version, values[i:i + 30]))
+        else:
+            for j in range(i, i + 30):
+                one = assign_one(version.compiled, filled[j])
+                recorder.observe_one(version, values[j:j + 1], one[0], one[5], one[6], one[4])
+        if i == 120:
+            recorder.tally()                  # a tally of batches and single records mixed
+    recorder.flush()
+    single = drift_model(5, np.random.default_rng(34))
+    filled_single, _ = impute(version.compiled, single)
+    for j in range(5):                        # a tally of single records only
+        one = assign_one(version.compiled, filled_single[j])
+        recorder.observe_one(version, single[j:j + 1], one[0], one[5], one[6], one[4])
+    recorder.flush()
+    assert stored_counts(store, version) == reference_counts(version, np.vstack([values, single]))
