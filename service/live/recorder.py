@@ -109,26 +109,22 @@ class LiveRecorder:
         """Queue one assigned batch (references only; no work here). ``values``: the checked matrix, NaN =
         missing, one row per assigned record."""
         # Only the four arrays the counts need are held (the rest of the assignment is freed with the answer).
-        item = (loaded, values, assignment.segment, assignment.far, assignment.off_plane, assignment.residual,
-                self.clock())
-        with self._queue_lock:
-            self._queue.append(item)
-            self._queued_bytes += values.nbytes
-            over = self._queued_bytes > self.max_queued_bytes
-        if over:
-            self.inline_tallies += 1
-            self.tally()
+        self._enqueue((loaded, values, assignment.segment, assignment.far, assignment.off_plane,
+                       assignment.residual, self.clock()))
 
     def observe_one(self, loaded, values: np.ndarray, segment: int, far: bool, off_plane: bool,
                     residual: float) -> None:
         """``observe`` for one record (``values`` of shape (1, p)) whose assignment is Python numbers (the
         single-record call): the arrays the counts need are built for many such records at once, in ``tally``."""
-        item = (loaded, values, segment, far, off_plane, residual, self.clock())
+        self._enqueue((loaded, values, segment, far, off_plane, residual, self.clock()))
+
+    def _enqueue(self, item: tuple) -> None:
+        values = item[1]
         with self._queue_lock:
             self._queue.append(item)
             self._queued_bytes += values.nbytes
             over = self._queued_bytes > self.max_queued_bytes
-        if over:
+        if over:    # the tally thread is behind: count here rather than hold unbounded memory
             self.inline_tallies += 1
             self.tally()
 
