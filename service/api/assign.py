@@ -80,10 +80,8 @@ def run_assignment(loaded: LoadedVersion, values: np.ndarray, rows: np.ndarray |
         # Only where numpy's overflow warnings are errors (the tests): compute again, then refuse below.
         with np.errstate(over="ignore", invalid="ignore"):
             result = assign(loaded.compiled, filled)
-    one = result.one
-    if one is not None:               # one record: three float tests instead of five array operations
-        if math.isfinite(one[1]) and math.isfinite(one[4]) and (one[3] is None or math.isfinite(one[3])):
-            return result, missing
+    if result.one is not None and _finite(result.one):    # one record: three float tests, not five array operations
+        return result, missing
     finite = np.isfinite(result.distance) & np.isfinite(result.residual)
     if result.margin is not None:
         finite &= np.isfinite(result.margin)
@@ -94,6 +92,12 @@ def run_assignment(loaded: LoadedVersion, values: np.ndarray, rows: np.ndarray |
     return result, missing
 
 
+def _finite(one: tuple) -> bool:
+    """Whether ``assign_one``'s distance, residual and margin (None when k == 1) are all finite."""
+    margin = one[3]
+    return math.isfinite(one[1]) and math.isfinite(one[4]) and (margin is None or math.isfinite(margin))
+
+
 def score_one(loaded: LoadedVersion, row: np.ndarray) -> tuple:
     """``run_assignment`` for one record with no missing value, as ``assign_one``'s tuple of Python numbers (no
     arrays): the same scoring and the same 422 for a record whose distances overflow float64."""
@@ -102,8 +106,7 @@ def score_one(loaded: LoadedVersion, row: np.ndarray) -> tuple:
     except (FloatingPointError, RuntimeWarning):
         with np.errstate(over="ignore", invalid="ignore"):      # as run_assignment
             one = assign_one(loaded.compiled, row)
-    margin = one[3]
-    if not (math.isfinite(one[1]) and math.isfinite(one[4]) and (margin is None or math.isfinite(margin))):
+    if not _finite(one):
         raise InvalidRecords([RecordProblem(0, "", TOO_FAR)])
     return one
 
@@ -154,10 +157,6 @@ def count_assigned(metrics, name: str, version: int, result: Assignment) -> None
     one = result.one
     if one is not None:              # one record: its Python values instead of a bincount and a count
         metrics.count_assigned(name, version, ((one[0], 1),), int(one[5] or one[6]))
-        return
-    if result.segment.size == 1:
-        metrics.count_assigned(name, version, ((result.segment.item(), 1),),
-                               int(result.far.item() or result.off_plane.item()))
         return
     flagged = int(np.count_nonzero(result.far | result.off_plane))
     counts = np.bincount(result.segment).tolist()
