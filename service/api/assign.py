@@ -98,7 +98,7 @@ def _finite(one: tuple) -> bool:
     return math.isfinite(one[1]) and math.isfinite(one[4]) and (margin is None or math.isfinite(margin))
 
 
-def score_one(loaded: LoadedVersion, row: np.ndarray) -> tuple:
+def score_one(loaded: LoadedVersion, row) -> tuple:
     """``run_assignment`` for one record with no missing value, as ``assign_one``'s tuple of Python numbers (no
     arrays): the same scoring and the same 422 for a record whose distances overflow float64."""
     try:
@@ -192,18 +192,24 @@ async def answer_assign(request: Request, name: str, version: int | None, on_err
     return Response(answer, media_type=ARROW_STREAM_TYPE if arrow else "application/json", headers=VARY_ACCEPT)
 
 
+def one_record_answer(metrics, live, name: str, loaded: LoadedVersion, labels: dict[int, str], row, record_id) -> bytes:
+    """``assign_answer`` for one record with every value present (the single-record call), its p values a tuple
+    of Python numbers (the assign lane's ``PlainRecord.row``) or a 1-D array: scored as Python numbers
+    (``score_one``), no arrays built per request, the same answer bytes, counters and live drift."""
+    one = score_one(loaded, row)
+    segment, far, off_plane = one[0], one[5], one[6]
+    metrics.count_assigned(name, loaded.version, ((segment, 1),), int(far or off_plane))
+    live.observe_one(loaded, row, segment, far, off_plane, one[4])
+    return orjson.dumps({"name": name, "version": loaded.version,
+                         "results": [result_of(record_id, one, labels.get, _NO_IMPUTED)], "errors": []})
+
+
 async def assign_answer(settings: Settings, metrics, live, name: str, loaded: LoadedVersion, labels: dict[int, str],
                         batch: Batch, on_error: str, arrow: bool) -> bytes:
     """A checked batch -> scoring (``run_assignment``) -> counters (``metrics``) and live drift (``live``) -> the
     answer's bytes (``build_results`` as JSON, or Arrow). Shared by the FastAPI route and the assign lane."""
     if not arrow and not batch.may_have_nan and not batch.problems and batch.values.shape[0] == 1:
-        # One record with every value present (the single-record call): scored as Python numbers, no arrays.
-        one = score_one(loaded, batch.values[0])
-        segment, far, off_plane = one[0], one[5], one[6]
-        metrics.count_assigned(name, loaded.version, ((segment, 1),), int(far or off_plane))
-        live.observe_one(loaded, batch.values, segment, far, off_plane, one[4])
-        return orjson.dumps({"name": name, "version": loaded.version,
-                             "results": [result_of(batch.ids[0], one, labels.get, _NO_IMPUTED)], "errors": []})
+        return one_record_answer(metrics, live, name, loaded, labels, batch.values[0], batch.ids[0])
     features = loaded.compiled.features
     too_many_missing(batch, features)
     rows, errors = split_good_rows(batch, on_error == "skip")
@@ -361,8 +367,13 @@ class AssignLane:
         refuse_declared_length(declared, settings.max_body_bytes)
         body = await receive_within(receive, settings.max_body_bytes, settings.body_read_timeout_seconds)
         features, id_column = loaded.compiled.features, loaded.bundle.config.id_column
-        batch = payload.plain_single_record(body, features, id_column)   # one plain record: parsed once
-        if batch is None:
+        record = payload.plain_single_record(body, features, id_column)   # one plain record: parsed once
+        if record is not None and not record.nulls:
+            return 200, b"application/json", one_record_answer(self.metrics, self.live, name, loaded, labels,
+                                                               record.row, record.ident)
+        if record is not None:
+            batch = record.batch()
+        else:
             batch = payload.parse_batch("json", body, list(features), id_column, settings.max_assign_rows)
         answer = await assign_answer(settings, self.metrics, self.live, name, loaded, labels, batch, on_error, False)
         return 200, b"application/json", answer

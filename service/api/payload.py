@@ -18,7 +18,7 @@ from fastapi import Request
 from pydantic import BaseModel
 from starlette.requests import ClientDisconnect
 
-from service.core.frame import Batch, batch_from_frame, batch_from_json, plain_record_batch, read_csv
+from service.core.frame import Batch, PlainRecord, batch_from_frame, batch_from_json, plain_record, read_csv
 from service.errors import (
     InvalidInput,
     PayloadTooLarge,
@@ -201,10 +201,10 @@ def parse_batch(kind: BodyKind, body: bytes, features: list[str], id_column: str
     return batch_from_json(records, features, id_column)
 
 
-def plain_single_record(body: bytes, features: list[str], id_column: str | None) -> Batch | None:
-    """The Batch of a JSON body that is ``{"records": [one record]}`` whose record holds every feature as a plain
-    number or null and, if it has one, a usable id (``plain_record_batch``), parsed once; None for any other
-    body, which ``parse_batch`` then reads and checks in full (so its answers and errors are the same)."""
+def plain_single_record(body: bytes, features: list[str], id_column: str | None) -> PlainRecord | None:
+    """The record of a JSON body that is ``{"records": [one record]}`` whose record holds every feature as a plain
+    number or null and, if it has one, a usable id (``plain_record``), parsed once; None for any other body,
+    which ``parse_batch`` then reads and checks in full (so its answers and errors are the same)."""
     try:
         document = orjson.loads(body)
     except orjson.JSONDecodeError:
@@ -214,7 +214,7 @@ def plain_single_record(body: bytes, features: list[str], id_column: str | None)
     records = document.get("records")
     if type(records) is not list or len(records) != 1 or type(records[0]) is not dict:
         return None
-    return plain_record_batch(records[0], features, id_column)
+    return plain_record(records[0], features, id_column)
 
 
 async def read_batch(request: Request, features: list[str], id_column: str | None, *, settings: Settings,

@@ -27,8 +27,11 @@ held-out rows by ``service.core.calibration``).
 from __future__ import annotations
 
 import math
+from array import array
 from dataclasses import dataclass
 from functools import cached_property
+from operator import sub
+from typing import Sequence
 
 import numpy as np
 from sklearn.preprocessing import MinMaxScaler, RobustScaler, StandardScaler
@@ -64,7 +67,11 @@ class SingleRecordForm:
     ``x`` (no NaN), with ``z`` its clustering coordinates and ``r`` the centred scaled row minus its PCA
     reconstruction (t = p when PCA drops dimensions, else 0). The scale is folded into the matrix's rows and the
     space centre into ``offset``; so is the centre (``centre`` None) where that costs at most a few digits
-    (``CENTRE_FOLD_LIMIT``), else it is subtracted first (no cancellation of a large offset)."""
+    (``CENTRE_FOLD_LIMIT``), else it is subtracted first (no cancellation of a large offset).
+
+    ``product`` is the same map as one matrix-vector product: ``product @ [x_0 .. x_{p-1}, 1]``, the offset in the
+    last column, so that a record read as Python numbers is scored with a single numpy call on a buffer of its
+    values (no array built from Python objects, no subtraction as a second call)."""
 
     matrix: np.ndarray                # (p, k + d + t)
     offset: np.ndarray                # (k + d + t,)
@@ -73,6 +80,16 @@ class SingleRecordForm:
     d: int
     centroid_sq_norms: list[float]    # ||m_c||^2 as Python floats
     doubt_floor: float                # max ||m_c||^2 (the expansion's error scale, as in _assign_chunked)
+
+    @cached_property
+    def product(self) -> np.ndarray:
+        """(k + d + t, p + 1): ``matrix`` transposed, then minus ``offset`` as its last column."""
+        return np.ascontiguousarray(np.hstack([self.matrix.T, -self.offset[:, None]]))
+
+    @cached_property
+    def centre_list(self) -> list[float] | None:
+        """``centre`` as Python floats (subtracted from a record's Python numbers one by one), or None."""
+        return None if self.centre is None else self.centre.tolist()
 
 
 def fold_single_record(compiled: "CompiledBundle") -> SingleRecordForm | None:
@@ -91,8 +108,10 @@ def fold_single_record(compiled: "CompiledBundle") -> SingleRecordForm | None:
     centre = compiled.centre
     if np.all(np.abs(centre * compiled.scale) <= CENTRE_FOLD_LIMIT):
         offset, centre = offset + (centre * compiled.scale) @ folded, None
-    return SingleRecordForm(np.ascontiguousarray(compiled.scale[:, None] * folded), offset, centre,
+    form = SingleRecordForm(np.ascontiguousarray(compiled.scale[:, None] * folded), offset, centre,
                             k, d, norms.tolist(), float(norms.max()))
+    form.product, form.centre_list         # built with the bundle, not by the first record
+    return form
 
 
 @dataclass(frozen=True)
@@ -257,18 +276,25 @@ def assign(compiled: CompiledBundle, values: np.ndarray) -> Assignment:
     return Assignment(segment, distance, runner_up, margin, residual, far, off_plane)
 
 
-def assign_one(compiled: CompiledBundle, row: np.ndarray) -> tuple:
-    """One record (p,) with no NaN -> its assignment as Python numbers: (segment, distance, runner_up, margin,
-    residual, far, off_plane), runner_up and margin None when k == 1 (``as_assignment`` makes the arrays).
+def assign_one(compiled: CompiledBundle, row: Sequence[float]) -> tuple:
+    """One record with no NaN (p numbers: a tuple of Python numbers, as the single-record call reads them, or a
+    1-D array) -> its assignment as Python numbers: (segment, distance, runner_up, margin, residual, far,
+    off_plane), runner_up and margin None when k == 1 (``as_assignment`` makes the arrays).
 
-    One product with the folded matrix (``SingleRecordForm``), then the ranking of the k squared distances, the
-    residual and the threshold tests on Python floats: three or four numpy calls, each of which costs about a
-    microsecond however small its array (several when the caches are cold, as between a server's requests). Where the expansion is in doubt (as the batch path's rule says), a
-    value is not finite, or the bundle has no folded matrix: ``_assign_one_directly``."""
+    One product with the folded matrix (``SingleRecordForm.product``) on a buffer of the record's values, then
+    the ranking of the k squared distances, the residual and the threshold tests on Python floats: two numpy
+    calls (the product and ``tolist``). Each numpy call costs about a microsecond however small its array, and
+    several when the caches are cold, as between a server's requests; building an array from Python numbers
+    costs more. Where the expansion is in doubt (as the batch path's rule says), a value is not finite, or the
+    bundle has no folded matrix: ``_assign_one_directly``."""
+    if type(row) is np.ndarray:
+        row = row.tolist()
     form = compiled.single_record_form
     if form is None:
-        return _assign_one_directly(compiled, row)
-    out = ((row if form.centre is None else row - form.centre) @ form.matrix - form.offset).tolist()
+        return _assign_one_directly(compiled, np.array(row, dtype=np.float64))
+    values = array("d", row if form.centre_list is None else map(sub, row, form.centre_list))
+    values.append(1.0)
+    out = form.product.dot(values).tolist()
     k, d = form.k, form.d
     z_sq = math.hypot(*out[k:k + d]) ** 2
     squared = [z_sq - 2.0 * cross + norm for cross, norm in zip(out[:k], form.centroid_sq_norms)]
@@ -277,7 +303,7 @@ def assign_one(compiled: CompiledBundle, row: np.ndarray) -> tuple:
     doubt = DOUBT * (z_sq + form.doubt_floor)
     if not (doubt < math.inf and squared[nearest] >= doubt
             and (k == 1 or squared[order[1]] - squared[nearest] >= doubt)):
-        return _assign_one_directly(compiled, row)          # also NaN and overflow: compared False above
+        return _assign_one_directly(compiled, np.array(row, dtype=np.float64))   # also NaN, overflow: False above
     has_residual = compiled.has_residual
     residual = math.hypot(*out[k + d:]) if has_residual else 0.0
     return _one_values(compiled, order, squared, residual, has_residual)

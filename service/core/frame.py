@@ -236,10 +236,24 @@ def _plain_numbers(row: tuple[Any, ...]) -> bool:
     return True
 
 
-def plain_record_batch(record: dict[str, Any], features: Sequence[str], id_column: str | None) -> Batch | None:
-    """``batch_from_json([record], ...)`` when that call would find no problem and every feature key is present
-    (each value a plain number within range, as ``_plain_numbers``, or null), computed on Python values; None
-    otherwise, and the caller goes the general way, which names what is wrong (or misspelt: an absent key)."""
+@dataclass(slots=True)
+class PlainRecord:
+    """One JSON record that ``batch_from_json`` would read with no problem, as Python values (``plain_record``)."""
+
+    row: tuple[Any, ...]     # the features' values in order: ints and floats, and None (missing) when ``nulls``
+    ident: Any               # its id (0, its index, when the version has no id column or the record none)
+    nulls: bool              # whether a feature is null
+
+    def batch(self) -> Batch:
+        """The record as ``batch_from_json([record], ...)`` reads it."""
+        return Batch(np.array(self.row, dtype=np.float64)[None], [self.ident], [], may_have_nan=self.nulls)
+
+
+def plain_record(record: dict[str, Any], features: Sequence[str], id_column: str | None) -> PlainRecord | None:
+    """The record's values when ``batch_from_json([record], ...)`` would find no problem and every feature key
+    is present (each value a plain number within range, as ``_plain_numbers``, or null), checked on Python
+    values; None otherwise, and the caller goes the general way, which names what is wrong (or misspelt: an
+    absent key). No array is built: a record of plain numbers can be scored from them (``assign_one``)."""
     try:
         row = itemgetter(*features)(record) if len(features) > 1 else (record[features[0]],)
     except KeyError:
@@ -261,7 +275,7 @@ def plain_record_batch(record: dict[str, Any], features: Sequence[str], id_colum
         ident = 0                                   # no id: the record's index, as _ids
     elif id_column is not None and check_id(ident) is not None:
         return None
-    return Batch(np.array(row, dtype=np.float64)[None], [ident], [], may_have_nan=nulls)   # a flat build: faster
+    return PlainRecord(row, ident, nulls)
 
 
 def _matrix_from_table(table: list[tuple[Any, ...]], features: Sequence[str],

@@ -20,6 +20,7 @@ import logging
 import threading
 import time
 from collections import defaultdict, deque
+from itertools import groupby
 from typing import Any, Callable
 
 import numpy as np
@@ -53,6 +54,20 @@ def _column(parts: list) -> np.ndarray:
     return np.concatenate([part if isinstance(part, np.ndarray) else np.array([part]) for part in parts])
 
 
+def _rows(parts: list) -> np.ndarray:
+    """The queued records' values as one (n, p) matrix, in order: (m, p) arrays (``observe``) and single rows of
+    p numbers (``observe_one``), each run of single rows built as one array."""
+    if len(parts) == 1 and _is_matrix(parts[0]):
+        return parts[0]
+    blocks = [np.concatenate(run) if matrices else np.array(run, dtype=np.float64)
+              for matrices, run in ((key, list(group)) for key, group in groupby(parts, key=_is_matrix))]
+    return blocks[0] if len(blocks) == 1 else np.concatenate(blocks)
+
+
+def _is_matrix(part) -> bool:
+    return isinstance(part, np.ndarray) and part.ndim == 2
+
+
 class LiveOff:
     """The recorder when live drift is off (``SEGSCORE_LIVE_DRIFT=false``): nothing is kept."""
 
@@ -62,7 +77,7 @@ class LiveOff:
     def observe(self, loaded, values, assignment) -> None:
         return None
 
-    def observe_one(self, loaded, values, segment, far, off_plane, residual) -> None:
+    def observe_one(self, loaded, row, segment, far, off_plane, residual) -> None:
         return None
 
     def queued_bytes(self) -> int:
@@ -110,19 +125,18 @@ class LiveRecorder:
         missing, one row per assigned record."""
         # Only the four arrays the counts need are held (the rest of the assignment is freed with the answer).
         self._enqueue((loaded, values, assignment.segment, assignment.far, assignment.off_plane,
-                       assignment.residual, self.clock()))
+                       assignment.residual, self.clock()), values.nbytes)
 
-    def observe_one(self, loaded, values: np.ndarray, segment: int, far: bool, off_plane: bool,
-                    residual: float) -> None:
-        """``observe`` for one record (``values`` of shape (1, p)) whose assignment is Python numbers (the
-        single-record call): the arrays the counts need are built for many such records at once, in ``tally``."""
-        self._enqueue((loaded, values, segment, far, off_plane, residual, self.clock()))
+    def observe_one(self, loaded, row, segment: int, far: bool, off_plane: bool, residual: float) -> None:
+        """``observe`` for one record whose values (``row``: p numbers, a tuple or a 1-D array; NaN or None =
+        missing) and assignment are Python numbers (the single-record call): the arrays the counts need are built
+        for many such records at once, in ``tally``, off the assign path."""
+        self._enqueue((loaded, row, segment, far, off_plane, residual, self.clock()), 8 * len(row))
 
-    def _enqueue(self, item: tuple) -> None:
-        values = item[1]
+    def _enqueue(self, item: tuple, nbytes: int) -> None:
         with self._queue_lock:
             self._queue.append(item)
-            self._queued_bytes += values.nbytes
+            self._queued_bytes += nbytes
             over = self._queued_bytes > self.max_queued_bytes
         if over:    # the tally thread is behind: count here rather than hold unbounded memory
             self.inline_tallies += 1
@@ -159,7 +173,7 @@ class LiveRecorder:
             for key, items in groups.items():
                 layout = self._layout(loaded_of[key])
                 # columns 1-5 of the queued items: values, segment, far, off_plane, residual
-                values = items[0][1] if len(items) == 1 else np.concatenate([item[1] for item in items])
+                values = _rows([item[1] for item in items])
                 segment, far, off_plane, residual = (_column([item[i] for item in items]) for i in range(2, 6))
                 counts = tally(layout, values, segment, far, off_plane, residual)
                 with self._flush_lock:

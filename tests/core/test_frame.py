@@ -178,26 +178,29 @@ def test_pairs_one_edit_apart_match_the_pairwise_definition():
     assert ("tenure_months", "tenure_month") in expected and ("ab", "ba") not in expected
 
 
-def test_plain_record_batch_is_batch_from_json_on_plain_records():
+def test_plain_record_is_batch_from_json_on_plain_records():
     # Reference: batch_from_json itself, the general reader (common practice: a shortcut must agree with the
     # path it shortens). Every record it takes must give the same matrix, ids and missing-value flag; every
     # record it leaves (None) must be one the general way would treat differently (a problem, an absent key).
-    from service.core.frame import plain_record_batch
+    from service.core.frame import plain_record
 
     features = ["a", "b", "c"]
     taken = [{"a": 1, "b": 2.5, "c": -3e99}, {"a": None, "b": 0, "c": 1.0, "id": "x7"}, {"c": 1, "b": 2, "a": 3, "x": "y"},
              {"a": 1, "b": 2, "c": 3, "id": None}, {"a": 1, "b": 2, "c": 3, "id": 2 ** 64 - 1}]
     for id_column in (None, "id"):
         for record in taken:
-            fast, general = plain_record_batch(record, features, id_column), batch_from_json([record], features, id_column)
-            assert fast is not None and not general.problems, record
+            plain, general = plain_record(record, features, id_column), batch_from_json([record], features, id_column)
+            assert plain is not None and not general.problems, record
+            fast = plain.batch()
             np.testing.assert_array_equal(fast.values, general.values)
-            assert fast.ids == general.ids and fast.may_have_nan == general.may_have_nan, record
+            assert fast.ids == general.ids and fast.may_have_nan == general.may_have_nan == plain.nulls, record
+            # the row scored without an array (assign_one) holds the same numbers, in the features' order
+            np.testing.assert_array_equal(np.array(plain.row, dtype=np.float64), general.values[0])
     left = [{"a": 1, "b": 2}, {"a": True, "b": 2, "c": 3}, {"a": "1", "b": 2, "c": 3}, {"a": 1e101, "b": 2, "c": 3},
             {"a": float("nan"), "b": 2, "c": 3}, {"a": 1, "b": float("inf"), "c": 3}, {"a": 1, "b": 2, "c": [3]},
             {"a": None, "b": 2, "c": -1e300}, {"a": 10 ** 400, "b": 1, "c": 2}, {"a": 1, "b": 2, "c": 3, "id": 1.5},
             {"a": 1, "b": 2, "c": 3, "id": 2 ** 64}, {"a": 1, "b": 2, "c": 3, "id": False}]
     for record in left:
-        assert plain_record_batch(record, features, "id") is None, record
+        assert plain_record(record, features, "id") is None, record
         general = batch_from_json([record], features, "id")
         assert general.problems or np.isnan(general.values).any(), record
