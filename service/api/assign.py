@@ -30,6 +30,7 @@ from service.api.payload import (
     too_many_missing,
     wants_arrow,
 )
+from service.api.turns import TurnBatch
 from service.api.validation import MAX_VERSION, PLAIN_DECIMAL, StrictQuery, VersionNumber, error_responses
 from service.core.assign import Assignment, assign, assign_one, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
@@ -304,6 +305,7 @@ class AssignLane:
         self.keyring = state.keyring
         self.metrics = state.metrics
         self.live = state.live
+        self.single_records = TurnBatch()
 
     async def __call__(self, scope, receive, send) -> None:
         name = lane_name(scope)
@@ -369,8 +371,10 @@ class AssignLane:
         features, id_column = loaded.compiled.features, loaded.bundle.config.id_column
         record = payload.plain_single_record(body, features, id_column)   # one plain record: parsed once
         if record is not None and not record.nulls:
-            return 200, b"application/json", one_record_answer(self.metrics, self.live, name, loaded, labels,
-                                                               record.row, record.ident)
+            # Scored with the other single records of this turn of the loop, back to back (service/api/turns.py).
+            answer = await self.single_records.call(one_record_answer, self.metrics, self.live, name, loaded, labels,
+                                                    record.row, record.ident)
+            return 200, b"application/json", answer
         if record is not None:
             batch = record.batch()
         else:

@@ -256,3 +256,70 @@ def test_an_unexpected_error_is_the_same_plain_500_on_both_routes(shop, seen, ir
     errors = [r for r in caplog.records if r.levelno == logging.ERROR]
     assert [r.getMessage().split("\n")[0] for r in errors] == [f"unexpected RuntimeError on POST {PATH}"] * 2
     assert [r.request_id for r in errors] == ["bug-1"] * 2
+
+
+async def _post_at_once(app, bodies: list[bytes]) -> list[tuple[int, dict, bytes]]:
+    """Every body as a direct ASGI call, all started in the same turn of one event loop (as uvicorn starts the
+    requests of connections that became readable together). Returns (status, headers, body) per call."""
+    async def one(i: int, body: bytes):
+        scope = {"type": "http", "asgi": {"version": "3.0"}, "http_version": "1.1", "method": "POST",
+                 "scheme": "http", "path": PATH, "raw_path": PATH.encode(), "query_string": b"", "root_path": "",
+                 "server": ("127.0.0.1", 8000), "client": ("127.0.0.1", 5000),
+                 "headers": [(b"content-type", b"application/json"), (b"content-length", str(len(body)).encode()),
+                             (b"x-request-id", f"at-once-{i}".encode())]}
+        sent = []
+
+        async def receive():
+            return {"type": "http.request", "body": body, "more_body": False}
+
+        async def send(message):
+            sent.append(message)
+
+        await app(scope, receive, send)
+        start, end = sent
+        return start["status"], {k.decode(): v.decode() for k, v in start["headers"]}, end["body"]
+
+    return await asyncio.gather(*(one(i, body) for i, body in enumerate(bodies)))
+
+
+def test_single_records_arriving_together_get_the_answers_they_get_alone(shop, iris, monkeypatch, caplog):
+    """Single records that reach scoring in the same turn are scored back to back (service/api/turns.py): each
+    answer is byte for byte the one the record gets when sent alone, each request keeps its own id, and an error
+    in one record's scoring (simulated) is that request's 500 only, logged under its own id."""
+    records = records_from(iris, id_prefix="c")[::5]            # 30 records from every part of Iris
+    bodies = [orjson.dumps({"records": [record]}) for record in records]
+    batches: list[int] = []
+    original_run = assign_module.TurnBatch._run
+
+    def recording(self, calls):
+        batches.append(len(calls))
+        original_run(self, calls)
+
+    monkeypatch.setattr(assign_module.TurnBatch, "_run", recording)
+    app = create_app(shop)
+    alone = [asyncio.run(_post_at_once(app, [body]))[0] for body in bodies]
+    assert batches == [1] * len(bodies)
+    batches.clear()
+    together = asyncio.run(_post_at_once(app, bodies))
+    assert max(batches) > 1 and sum(batches) == len(bodies)
+    for i, ((status, headers, body), (status_alone, _, body_alone)) in enumerate(zip(together, alone)):
+        assert status == status_alone == 200 and body == body_alone
+        assert headers["x-request-id"] == f"at-once-{i}"
+
+    original_score = assign_module.score_one
+    broken_row = tuple(records[4][name] for name in iris.feature_names)
+
+    def broken_for_one(loaded, row):
+        if tuple(row) == broken_row:
+            raise RuntimeError("a record value that must not leak")
+        return original_score(loaded, row)
+
+    monkeypatch.setattr(assign_module, "score_one", broken_for_one)
+    caplog.handler.addFilter(RequestIdFilter())
+    with caplog.at_level(logging.ERROR, logger="segscore"):
+        together = asyncio.run(_post_at_once(app, bodies))
+    assert [status for status, _, _ in together] == [500 if i == 4 else 200 for i in range(len(bodies))]
+    assert all(body == body_alone for i, ((_, _, body), (_, _, body_alone)) in enumerate(zip(together, alone))
+               if i != 4)
+    errors = [r for r in caplog.records if r.levelno == logging.ERROR]
+    assert [r.request_id for r in errors] == ["at-once-4"]
