@@ -18,7 +18,11 @@ small dicts, the work of other processes between two requests of a server at one
 eviction's own CPU time measured alone in the same rounds: how much each app's request costs when its code and
 data are no longer cached.
 
+``--steps``: also time each step of scoring one record (``assign_one``) in a warm loop and right after an
+eviction: where the cold-cache cost of a server's request goes.
+
     PYTHONPATH=$PWD .venv/bin/python bench/profile_lane.py [--rounds 15] [--calls 2000] [--profile-calls 3000] [--cold]
+        [--steps]
 """
 
 from __future__ import annotations
@@ -125,6 +129,61 @@ async def timed_cold(call, calls: int) -> float:
     return (time.process_time() - cpu) / calls
 
 
+def scoring_steps(compiled, body: bytes, rounds: int) -> None:
+    """Time each step of scoring one record (``assign_one``) in a warm loop and right after ``evict()``: what a
+    step costs when other work has run since its last call, as between two requests of a server."""
+    import math
+    from array import array
+
+    import orjson
+
+    from service.core.assign import assign_one
+
+    row = tuple(orjson.loads(body)["records"][0][name] for name in compiled.features)
+    form = compiled.single_record_form
+    values = array("d", row)
+    values.append(1.0)
+    product = form.product.dot(values)
+    out = product.tolist()
+    k, d = form.k, form.d
+
+    def buffer():
+        built = array("d", row)
+        built.append(1.0)
+
+    steps = [
+        ("nothing (the timer alone)", lambda: None),
+        ("buffer of the values (array.array)", buffer),
+        ("the product (ndarray.dot on the buffer)", lambda: form.product.dot(values)),
+        ("product.tolist()", product.tolist),
+        ("math.hypot of the d coordinates", lambda: math.hypot(*out[k:k + d])),
+        ("the k squared distances (list comprehension)",
+         lambda: [1e3 - 2.0 * cross + norm for cross, norm in zip(out[:k], form.centroid_sq_norms)]),
+        ("assign_one, whole", lambda: assign_one(compiled, row)),
+    ]
+    warm: dict[str, list[float]] = {label: [] for label, _ in steps}
+    cold: dict[str, list[float]] = {label: [] for label, _ in steps}
+    for _ in range(rounds):
+        for label, step in steps:
+            started = time.perf_counter()
+            for _ in range(2000):
+                step()
+            warm[label].append((time.perf_counter() - started) / 2000)
+            spent = 0.0
+            for _ in range(200):
+                evict()
+                started = time.perf_counter()
+                step()
+                spent += time.perf_counter() - started
+            cold[label].append(spent / 200)
+    print()
+    print(f"scoring one record, step by step ({rounds} rounds; wall time per call, medians): warm loop / right "
+          "after an eviction")
+    for label, _ in steps:
+        print(f"  {label:48s} {statistics.median(warm[label]) * 1e6:6.2f} us / "
+              f"{statistics.median(cold[label]) * 1e6:6.2f} us")
+
+
 async def main_async(args) -> None:
     workdir = Path(tempfile.mkdtemp(prefix="segscore-profile-lane-"))
     try:
@@ -174,6 +233,10 @@ async def main_async(args) -> None:
                     print(f"{label:9s} CPU {cold_cpu[label]:7.1f} us per request")
                 print(f"segscore / floor after an eviction: CPU {cold_cpu['segscore'] / cold_cpu['floor']:.2f}x")
 
+            if args.steps:
+                loaded, _ = await service.state.store.serving(NAME, None)
+                scoring_steps(loaded.compiled, body, args.rounds)
+
             profiler = cProfile.Profile(time.process_time)
             call = calls["segscore"]
             profiler.enable()
@@ -205,6 +268,8 @@ def main() -> None:
     parser.add_argument("--profile-calls", type=int, default=3000, help="lane requests profiled (default 3000)")
     parser.add_argument("--top", type=int, default=20, help="profile entries shown per ordering (default 20)")
     parser.add_argument("--cold", action="store_true", help="also time requests after a cache eviction")
+    parser.add_argument("--steps", action="store_true",
+                        help="also time each step of scoring one record, warm and after a cache eviction")
     asyncio.run(main_async(parser.parse_args()))
 
 

