@@ -8,9 +8,9 @@ garbage-collector settings, the warmed cache and live drift are as in a server) 
 what both servers share: uvicorn's HTTP parsing and socket writes. So the ratio here is the web-layer part of
 the HTTP goal, measured without the noise of the load generator on the same cores.
 
-Timing: ``--rounds`` rounds of ``--calls`` requests per app, the apps alternating within each round; CPU time
-of the process (``time.process_time``: every thread, as the HTTP bench's server CPU is) and wall time, medians
-over the rounds. Then a cProfile of ``--profile-calls`` lane requests: the top entries by cumulative and by
+Both apps run on the event loop uvicorn would give them (uvloop when installed). Timing: ``--rounds`` rounds
+of ``--calls`` requests per app, the apps alternating within each round; CPU time of the process
+(``time.process_time``: every thread, as the HTTP bench's server CPU is) and wall time, medians over the rounds. Then a cProfile of ``--profile-calls`` lane requests: the top entries by cumulative and by
 own time (the profiler inflates every call; read the shares, not the times).
 
 ``--cold``: also time each request after evicting the CPU caches (a pass over a 4 MiB array and over 20,000
@@ -270,7 +270,14 @@ def main() -> None:
     parser.add_argument("--cold", action="store_true", help="also time requests after a cache eviction")
     parser.add_argument("--steps", action="store_true",
                         help="also time each step of scoring one record, warm and after a cache eviction")
-    asyncio.run(main_async(parser.parse_args()))
+    args = parser.parse_args()
+    try:                    # the event loop uvicorn runs the servers on (its loop="auto" takes uvloop when installed)
+        import uvloop
+        loop_factory = uvloop.new_event_loop
+    except ImportError:
+        loop_factory = None
+    with asyncio.Runner(loop_factory=loop_factory) as runner:
+        runner.run(main_async(args))
 
 
 if __name__ == "__main__":
