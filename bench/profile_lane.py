@@ -10,8 +10,9 @@ the HTTP goal, measured without the noise of the load generator on the same core
 
 Both apps run on the event loop uvicorn would give them (uvloop when installed). Timing: ``--rounds`` rounds
 of ``--calls`` requests per app, the apps alternating within each round; CPU time of the process
-(``time.process_time``: every thread, as the HTTP bench's server CPU is) and wall time, medians over the rounds. Then a cProfile of ``--profile-calls`` lane requests: the top entries by cumulative and by
-own time (the profiler inflates every call; read the shares, not the times).
+(``time.process_time``: every thread, as the HTTP bench's server CPU is) and wall time, medians over the rounds.
+Then a cProfile of ``--profile-calls`` lane requests: the top entries by cumulative and by own time (the
+profiler inflates every call; read the shares, not the times).
 
 ``--cold``: also time each request after evicting the CPU caches (a pass over a 4 MiB array and over 20,000
 small dicts, the work of other processes between two requests of a server at one connection), minus the
