@@ -11,8 +11,8 @@ Each caller adds its call to the turn's list and yields for one turn (``asyncio.
 tasks of the turn add theirs; the first caller to resume runs the whole list, and the others find their results.
 Each call still runs alone, with the same code (its result is the one a direct call gives, bit for bit), in its
 caller's context (the request id of log lines); its exception goes to its caller only, and the call of a caller
-cancelled while it waited is not run (it would count a record that is never answered). With one request in flight the list holds one call, and the price is one
-turn of the loop (a few microseconds).
+cancelled while it waited is not run (it would count a record that is never answered). With one request in
+flight the list holds one call, and the price is one turn of the loop (a few microseconds).
 """
 
 from __future__ import annotations
@@ -64,7 +64,7 @@ class TurnBatch:
         if self._calls is calls:
             self._calls = None           # calls made from here on wait for the next turn
         for call in calls:
-            if call.state != "waiting" or call.task.cancelling():
+            if call.state != "waiting" or (call.task is not None and call.task.cancelling()):
                 continue                 # cancelled, also when the cancellation is not yet delivered
             try:
                 call.value = call.context.run(call.function, *call.args)

@@ -14,10 +14,12 @@ and no DataFrame run per request.
 One record (the single-record call, where each numpy call costs about a microsecond whatever its size) is
 scored with one product: the projection, the centroids' cross terms and the projection onto the complement of
 the PCA plane are folded into one (p, k + d + p) matrix when the bundle is built (``SingleRecordForm``), so
-``u @ matrix`` gives every ``z.m``, ``z`` and the residual vector at once; the same expansion and the same
+``u @ matrix`` gives every ``z.m``, ``z`` and the residual vector at once (computed on a buffer of the record's
+Python numbers, the offset folded in too: ``SingleRecordForm.product``); the same expansion and the same
 recompute rule as the batch path apply. That matrix holds p x p entries, so it is built only while it stays
-under ``FOLD_MAX_ENTRIES``; larger bundles score one record step by step (still no p x p matrix). ``tests/core/test_assign.py`` checks labels, distances, runner-ups and
-residuals against the stored scikit-learn objects on every supported configuration.
+under ``FOLD_MAX_ENTRIES``; larger bundles score one record step by step (still no p x p matrix).
+``tests/core/test_assign.py`` checks labels, distances, runner-ups and residuals against the stored scikit-learn
+objects on every supported configuration.
 
 The outlier flag is per segment: a record of segment c is flagged when its distance exceeds
 ``distance_thresholds[c]`` or its residual exceeds ``residual_thresholds[c]`` (both calibrated together on

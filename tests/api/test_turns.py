@@ -14,9 +14,9 @@ from service.api.turns import TurnBatch
 caller = contextvars.ContextVar("caller", default="none")
 
 
-def test_calls_of_one_turn_run_together_in_order_each_with_its_own_result():
-    batch = TurnBatch()
-    runs: list[list[int]] = []
+def recording_runs(batch: TurnBatch) -> list[list]:
+    """The first argument of each call in each list ``batch`` runs, one list per run, from now on."""
+    runs: list[list] = []
     original = batch._run
 
     def recording(calls):
@@ -24,6 +24,12 @@ def test_calls_of_one_turn_run_together_in_order_each_with_its_own_result():
         original(calls)
 
     batch._run = recording
+    return runs
+
+
+def test_calls_of_one_turn_run_together_in_order_each_with_its_own_result():
+    batch = TurnBatch()
+    runs = recording_runs(batch)
 
     async def one(i: int) -> int:
         return await batch.call(lambda x: x * x, i)
@@ -109,14 +115,7 @@ def test_a_new_event_loop_starts_afresh():
 
 def test_a_call_made_in_the_turn_its_batch_runs_waits_for_the_next_batch():
     batch = TurnBatch()
-    runs: list[list[str]] = []
-    original = batch._run
-
-    def recording(calls):
-        runs.append([call.args[0] for call in calls])
-        original(calls)
-
-    batch._run = recording
+    runs = recording_runs(batch)
 
     async def main():
         first = asyncio.ensure_future(batch.call(str, "a"))     # makes its call in the next turn
