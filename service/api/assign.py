@@ -32,7 +32,7 @@ from service.api.payload import (
 )
 from service.api.turns import TurnBatch
 from service.api.validation import MAX_VERSION, PLAIN_DECIMAL, StrictQuery, VersionNumber, error_responses
-from service.core.assign import Assignment, assign, assign_one, impute
+from service.core.assign import Assignment, OneAssignment, assign, assign_one, impute
 from service.core.frame import MAX_LISTED_PROBLEMS, Batch
 from service.deps import AssignScope, SettingsDep, StoreDep, actor_of, key_of_authorization
 from service.errors import InvalidRecords, RecordProblem, ServiceError
@@ -93,15 +93,15 @@ def run_assignment(loaded: LoadedVersion, values: np.ndarray, rows: np.ndarray |
     return result, missing
 
 
-def _finite(one: tuple) -> bool:
-    """Whether ``assign_one``'s distance, residual and margin (None when k == 1) are all finite."""
-    margin = one[3]
-    return math.isfinite(one[1]) and math.isfinite(one[4]) and (margin is None or math.isfinite(margin))
+def _finite(one: OneAssignment) -> bool:
+    """Whether the distance, residual and margin (None when k == 1) of one record are all finite."""
+    margin = one.margin
+    return math.isfinite(one.distance) and math.isfinite(one.residual) and (margin is None or math.isfinite(margin))
 
 
-def score_one(loaded: LoadedVersion, row) -> tuple:
-    """``run_assignment`` for one record with no missing value, as ``assign_one``'s tuple of Python numbers (no
-    arrays): the same scoring and the same 422 for a record whose distances overflow float64."""
+def score_one(loaded: LoadedVersion, row) -> OneAssignment:
+    """``run_assignment`` for one record with no missing value, as ``assign_one``'s Python numbers (no arrays):
+    the same scoring and the same 422 for a record whose distances overflow float64."""
     try:
         one = assign_one(loaded.compiled, row)
     except (FloatingPointError, RuntimeWarning):
@@ -112,8 +112,8 @@ def score_one(loaded: LoadedVersion, row) -> tuple:
     return one
 
 
-def result_of(record_id: Any, one: tuple, label_of, imputed: list[str]) -> dict[str, Any]:
-    """One answer item from ``assign_one``'s tuple (``build_results`` for one record)."""
+def result_of(record_id: Any, one: OneAssignment, label_of, imputed: list[str]) -> dict[str, Any]:
+    """One answer item from ``assign_one``'s answer (``build_results`` for one record)."""
     segment, distance, runner_up, margin, residual, far, off_plane = one
     reason = int(far) + 2 * int(off_plane)
     return {"id": record_id, "segment": segment, "label": label_of(segment), "distance": distance,
@@ -157,7 +157,7 @@ def build_results(loaded: LoadedVersion, labels: dict[int, str], ids: list[Any],
 def count_assigned(metrics, name: str, version: int, result: Assignment) -> None:
     one = result.one
     if one is not None:              # one record: its Python values instead of a bincount and a count
-        metrics.count_assigned(name, version, ((one[0], 1),), int(one[5] or one[6]))
+        metrics.count_assigned(name, version, ((one.segment, 1),), int(one.far or one.off_plane))
         return
     flagged = int(np.count_nonzero(result.far | result.off_plane))
     counts = np.bincount(result.segment).tolist()
@@ -198,9 +198,9 @@ def one_record_answer(metrics, live, name: str, loaded: LoadedVersion, labels: d
     of Python numbers (the assign lane's ``PlainRecord.row``) or a 1-D array: scored as Python numbers
     (``score_one``), no arrays built per request, the same answer bytes, counters and live drift."""
     one = score_one(loaded, row)
-    segment, far, off_plane = one[0], one[5], one[6]
+    segment, far, off_plane = one.segment, one.far, one.off_plane
     metrics.count_assigned(name, loaded.version, ((segment, 1),), int(far or off_plane))
-    live.observe_one(loaded, row, segment, far, off_plane, one[4])
+    live.observe_one(loaded, row, segment, far, off_plane, one.residual)
     return orjson.dumps({"name": name, "version": loaded.version,
                          "results": [result_of(record_id, one, labels.get, _NO_IMPUTED)], "errors": []})
 

@@ -33,7 +33,7 @@ from array import array
 from dataclasses import dataclass
 from functools import cached_property
 from operator import sub
-from typing import Sequence
+from typing import NamedTuple, Sequence
 
 import numpy as np
 from sklearn.preprocessing import MinMaxScaler, RobustScaler, StandardScaler
@@ -193,6 +193,18 @@ class CompiledBundle:
         return np.sqrt(np.einsum("ij,ij->i", u, u))
 
 
+class OneAssignment(NamedTuple):
+    """One record's assignment as Python numbers (``assign_one``): the fields of ``Assignment`` for one row."""
+
+    segment: int
+    distance: float
+    runner_up: int | None       # None when k == 1
+    margin: float | None        # None when k == 1
+    residual: float
+    far: bool
+    off_plane: bool
+
+
 @dataclass(slots=True)      # not frozen: a frozen dataclass's __init__ costs ~1 us, a tenth of one record's scoring
 class Assignment:
     segment: np.ndarray            # (n,) int
@@ -202,9 +214,9 @@ class Assignment:
     residual: np.ndarray           # (n,) distance to the PCA reconstruction (0 without PCA)
     far: np.ndarray                # (n,) bool: distance over the segment's threshold
     off_plane: np.ndarray          # (n,) bool: residual over the segment's residual threshold
-    # One record scored by the single-record path: the same values as Python numbers (``assign_one``'s tuple),
+    # One record scored by the single-record path: the same values as Python numbers (``assign_one``'s answer),
     # so that callers reading one record need not read them back out of the arrays. None otherwise.
-    one: tuple | None = None
+    one: OneAssignment | None = None
 
     @property
     def outlier(self) -> np.ndarray:
@@ -278,10 +290,9 @@ def assign(compiled: CompiledBundle, values: np.ndarray) -> Assignment:
     return Assignment(segment, distance, runner_up, margin, residual, far, off_plane)
 
 
-def assign_one(compiled: CompiledBundle, row: Sequence[float]) -> tuple:
+def assign_one(compiled: CompiledBundle, row: Sequence[float]) -> OneAssignment:
     """One record with no NaN (p numbers: a tuple of Python numbers, as the single-record call reads them, or a
-    1-D array) -> its assignment as Python numbers: (segment, distance, runner_up, margin, residual, far,
-    off_plane), runner_up and margin None when k == 1 (``as_assignment`` makes the arrays).
+    1-D array) -> its assignment as Python numbers (``as_assignment`` makes the arrays).
 
     One product with the folded matrix (``SingleRecordForm.product``) on a buffer of the record's values, then
     the ranking of the k squared distances, the residual and the threshold tests on Python floats: two numpy
@@ -311,7 +322,7 @@ def assign_one(compiled: CompiledBundle, row: Sequence[float]) -> tuple:
     return _one_values(compiled, order, squared, residual, has_residual)
 
 
-def _assign_one_directly(compiled: CompiledBundle, row: np.ndarray) -> tuple:
+def _assign_one_directly(compiled: CompiledBundle, row: np.ndarray) -> OneAssignment:
     """One record step by step: the direct path's arithmetic on vectors (no expansion, no p x p matrix)."""
     u = row - compiled.centre
     u *= compiled.scale
@@ -333,20 +344,21 @@ def _assign_one_directly(compiled: CompiledBundle, row: np.ndarray) -> tuple:
 
 
 def _one_values(compiled: CompiledBundle, order: list[int], squared: list[float], residual: float,
-                has_residual: bool) -> tuple:
-    """``assign_one``'s tuple from the ranked squared distances and the residual (Python floats)."""
+                has_residual: bool) -> OneAssignment:
+    """``assign_one``'s answer from the ranked squared distances and the residual (Python floats)."""
     nearest = order[0]
     distance = math.sqrt(squared[nearest])
     far = distance > compiled.distance_thresholds_list[nearest]
     off_plane = has_residual and residual > compiled.residual_thresholds_list[nearest]
     if len(order) > 1:
         runner = order[1]
-        return nearest, distance, runner, math.sqrt(squared[runner]) - distance, residual, far, off_plane
-    return nearest, distance, None, None, residual, far, off_plane
+        return OneAssignment(nearest, distance, runner, math.sqrt(squared[runner]) - distance, residual, far,
+                             off_plane)
+    return OneAssignment(nearest, distance, None, None, residual, far, off_plane)
 
 
-def as_assignment(one: tuple) -> Assignment:
-    """``assign_one``'s tuple as a one-record Assignment (which keeps the tuple as ``one``)."""
+def as_assignment(one: OneAssignment) -> Assignment:
+    """``assign_one``'s answer as a one-record Assignment (which keeps it as ``one``)."""
     segment, distance, runner_up, margin, residual, far, off_plane = one
     # One array per type, sliced into the 1-element fields (a slice costs a third of a new array).
     flags = np.array([far, off_plane])

@@ -229,9 +229,9 @@ def test_single_records_with_a_large_offset_feature_keep_their_precision():
     for i in range(300):
         one = core_assign.assign_one(compiled, x[i])
         if ordered[i, 1] - ordered[i, 0] > 1e-12 * ordered[i, 1]:           # not an exact tie
-            assert one[0] == labels[i]
-        np.testing.assert_allclose(one[1], reference[i, labels[i]], rtol=1e-9, atol=0)
-        np.testing.assert_allclose(one[4], residual[i], rtol=1e-9, atol=1e-9 * np.linalg.norm(scaled[i]))
+            assert one.segment == labels[i]
+        np.testing.assert_allclose(one.distance, reference[i, labels[i]], rtol=1e-9, atol=0)
+        np.testing.assert_allclose(one.residual, residual[i], rtol=1e-9, atol=1e-9 * np.linalg.norm(scaled[i]))
 
 
 def test_single_records_on_centroids_and_midpoints_are_recomputed(monkeypatch):

@@ -214,7 +214,7 @@ def test_single_records_and_batches_mixed_in_one_tally_are_each_counted_once(ver
             for j in range(i, i + 30):
                 one = assign_one(version.compiled, filled[j])
                 row = values[j] if j % 2 else tuple(values[j].tolist())      # a 1-D array, or Python numbers
-                recorder.observe_one(version, row, one[0], one[5], one[6], one[4])
+                recorder.observe_one(version, row, one.segment, one.far, one.off_plane, one.residual)
         if i == 120:
             recorder.tally()                  # a tally of batches and single records mixed
     recorder.flush()
@@ -222,6 +222,7 @@ def test_single_records_and_batches_mixed_in_one_tally_are_each_counted_once(ver
     filled_single, _ = impute(version.compiled, single)
     for j in range(5):                        # a tally of single records only
         one = assign_one(version.compiled, tuple(filled_single[j].tolist()))
-        recorder.observe_one(version, tuple(single[j].tolist()), one[0], one[5], one[6], one[4])
+        recorder.observe_one(version, tuple(single[j].tolist()), one.segment, one.far, one.off_plane,
+                             one.residual)
     recorder.flush()
     assert stored_counts(store, version) == reference_counts(version, np.vstack([values, single]))
