@@ -283,25 +283,26 @@ async def _post_at_once(app, bodies: list[bytes]) -> list[tuple[int, dict, bytes
 
 
 def test_single_records_arriving_together_get_the_answers_they_get_alone(shop, iris, monkeypatch, caplog):
-    """Single records that reach scoring in the same turn are scored back to back (service/api/turns.py): each
-    answer is byte for byte the one the record gets when sent alone, each request keeps its own id, and an error
+    """Single records that reach scoring in the same turn are scored back to back (service/api/turns.py; the
+    turn's first at once, the others at the start of the next turn): each answer is byte for byte the one the
+    record gets when sent alone, each request keeps its own id, and an error
     in one record's scoring (simulated) is that request's 500 only, logged under its own id."""
     records = records_from(iris, id_prefix="c")[::5]            # 30 records from every part of Iris
     bodies = [orjson.dumps({"records": [record]}) for record in records]
-    batches: list[int] = []
+    waited: list[int] = []                  # per turn, the calls that waited for the next turn
     original_run = assign_module.TurnBatch._run
 
-    def recording(self, calls):
-        batches.append(len(calls))
-        original_run(self, calls)
+    def recording(turn):
+        waited.append(len(turn.waiting))
+        original_run(turn)
 
-    monkeypatch.setattr(assign_module.TurnBatch, "_run", recording)
+    monkeypatch.setattr(assign_module.TurnBatch, "_run", staticmethod(recording))
     app = create_app(shop)
     alone = [asyncio.run(_post_at_once(app, [body]))[0] for body in bodies]
-    assert batches == [1] * len(bodies)
-    batches.clear()
+    assert sum(waited) == 0                  # a lone request is scored at once
+    waited.clear()
     together = asyncio.run(_post_at_once(app, bodies))
-    assert max(batches) > 1 and sum(batches) == len(bodies)
+    assert sum(waited) == len(bodies) - 1    # all but the turn's first waited, and were scored back to back
     for i, ((status, headers, body), (status_alone, _, body_alone)) in enumerate(zip(together, alone)):
         assert status == status_alone == 200 and body == body_alone
         assert headers["x-request-id"] == f"at-once-{i}"
