@@ -7,7 +7,7 @@ reach the scoring step in the same turn of the loop: uvicorn starts the tasks of
 readable together. Running their calls one after another pays the cold start once per turn instead of once per
 request.
 
-The first call of a turn runs at once, unless the turn before had more than one call (the loop is busy). Any
+The first call of a turn runs at once, unless the last turn with calls had more than one (the loop is busy). Any
 other call of the turn joins the turn's list and yields (``asyncio.sleep(0)``); at the start of the next turn a
 callback runs the list, then the callers resume and find their results. So a lone request (one connection, a
 quiet server) waits for nothing, and under load a burst's first turn batches all its calls but one, later turns
