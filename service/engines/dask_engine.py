@@ -497,8 +497,9 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
     keep, dropped = _column_checks(stats, features, config, named)
     config = dataclasses.replace(config, features=[features[j] for j in keep],
                                  dropped_features=config.dropped_features + dropped)
+    probes = moments["probe"]          # per column its DISTINCT_PROBE smallest distinct values
     if len(keep) < p:
-        # Refit on the kept columns: re-run the statistics on the narrower blocks.
+        # Refit on the kept columns. Their statistics are the ones above, taken per column: kept, not recomputed.
         narrower = _persist(client, hook, [dask.delayed(_columns, pure=True)(b, keep) for b in blocks], held)
         wide = held[:len(blocks)]
         del held[:len(blocks)]
@@ -506,14 +507,13 @@ def _fit(blocks: list[Any], features: list[str], config: FitConfig, client: Any,
         del wide                        # the full-width copies can go (lineage keeps them recomputable)
         blocks = narrower
         cluster = _Cluster(client, hook, blocks, wheres)
-        moments = cluster.reduce(ops.column_moments)
         observed, sums = observed[keep], sums[keep]
         means, stats = means[keep], {key: value[keep] for key, value in stats.items()}
+        probes = [probes[j] for j in keep]
     features = list(config.features)
     p = len(features)
     _config_checks(config, n, p)
     data_digest = _chunked_digest(cluster, lengths, n, p)
-    probes = moments["probe"]          # per column its DISTINCT_PROBE smallest distinct values
 
     # ---- medians, scaling
     median_of = cluster.medians(ops.observed_by_feature, {j: int(observed[j]) for j in range(p)})

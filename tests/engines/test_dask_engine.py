@@ -476,3 +476,23 @@ def test_what_the_server_receives_from_the_cluster_does_not_grow_with_the_blocks
         assert_profiles_and_reference(fit, in_memory, values)
     # ... and 4x the blocks may not bring 4x the bytes: allow 25 % for the merged results' own variation.
     assert totals[16] <= 1.25 * totals[4], totals
+
+
+def test_a_dask_fit_that_drops_a_constant_column_keeps_the_other_columns_statistics(dask_client, blobs, tmp_path):
+    # Reference: the in-memory fit (service.core.fit, numpy) of the kept columns alone, and numpy.unique for a
+    # column of four distinct values, whose drift bins are its categories. With the default features, a constant
+    # column is dropped and named in the report; the kept columns' statistics, taken before the drop, must be
+    # those of the kept columns alone (drift bins, profiles, assignments).
+    values = blobs[0].copy()
+    values[:, 5] = np.floor(values[:, 5]) % 4                       # 0, 1, 2, 3
+    names = FEATURES[:3] + ["flat"] + FEATURES[3:]
+    wide = np.insert(values, 3, 2.5, axis=1)                        # the constant column, fourth
+    bundle = fit_on_dask(spill_records(wide, names, tmp_path), config(features=[]), client=dask_client)
+    kept = fit_bundle(values, config())
+    assert bundle.features == FEATURES
+    assert [name for name, _ in bundle.config.dropped_features] == ["flat"]
+    assert bundle.reference.bin_kinds[5] == "categories"
+    assert np.array_equal(bundle.reference.bin_edges[5], np.unique(values[:, 5]))
+    assert bundle.k == kept.k
+    assert adjusted_rand_score(labels_of(kept, values), labels_of(bundle, values)) >= 0.95
+    assert_profiles_and_reference(bundle, kept, values)
