@@ -300,11 +300,11 @@ def assign_one(compiled: CompiledBundle, row: Sequence[float]) -> OneAssignment:
     several when the caches are cold, as between a server's requests; building an array from Python numbers
     costs more. Where the expansion is in doubt (as the batch path's rule says), a value is not finite, or the
     bundle has no folded matrix: ``_assign_one_directly``."""
-    if type(row) is np.ndarray:
-        row = row.tolist()
     form = compiled.single_record_form
     if form is None:
-        return _assign_one_directly(compiled, np.array(row, dtype=np.float64))
+        return _assign_one_directly(compiled, np.asarray(row, dtype=np.float64))
+    if type(row) is np.ndarray:
+        row = row.tolist()                                  # Python floats: the buffer and the fallback read them
     values = array("d", row if form.centre_list is None else map(sub, row, form.centre_list))
     values.append(1.0)
     out = form.product.dot(values).tolist()
